@@ -1,0 +1,161 @@
+"""Batch: a slice of one shard's records as Arrow columns, with flat numpy views of list columns.
+
+A tokenized list column (``input_ids``, ``labels`` ...) is seen as one flat numpy array of all values plus an
+offsets array (row ``i`` is ``values[offsets[i]:offsets[i+1]]``).  Rules write numpy expressions over these flat
+arrays; nothing here loops over rows.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import cached_property
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.types as pat
+
+
+@dataclass(frozen=True)
+class Shard:
+    """A file to scan: its uri as the user gave it, its format, and its size in bytes."""
+
+    uri: str
+    path: str
+    format: str  # "jsonl" | "parquet" | "arrow"
+    compression: str | None = None
+    length: int = 0
+
+    @property
+    def line_based(self) -> bool:
+        return self.format == "jsonl"
+
+
+class Flat:
+    """A list column as flat ``values`` plus ``offsets`` (length rows+1, starting at 0)."""
+
+    __slots__ = ("values", "offsets", "__dict__")
+
+    def __init__(self, values: np.ndarray, offsets: np.ndarray):
+        self.values = values
+        self.offsets = offsets
+
+    @cached_property
+    def lengths(self) -> np.ndarray:
+        return np.diff(self.offsets)
+
+    @cached_property
+    def row_of(self) -> np.ndarray:
+        """For every flat position, the batch-local row it belongs to."""
+        return np.repeat(np.arange(self.lengths.size, dtype=np.int64), self.lengths)
+
+    @cached_property
+    def position(self) -> np.ndarray:
+        """For every flat position, its 0-based token index within its row."""
+        return np.arange(self.values.size, dtype=np.int64) - self.offsets[self.row_of]
+
+    @cached_property
+    def is_last(self) -> np.ndarray:
+        """True at the last position of every row."""
+        mask = np.zeros(self.values.size, dtype=bool)
+        ends = self.offsets[1:][self.lengths > 0] - 1
+        mask[ends] = True
+        return mask
+
+    @cached_property
+    def is_first(self) -> np.ndarray:
+        mask = np.zeros(self.values.size, dtype=bool)
+        mask[self.offsets[:-1][self.lengths > 0]] = True
+        return mask
+
+    def row_sums(self, per_position: np.ndarray) -> np.ndarray:
+        """Sum a per-position quantity within each row (rows of length 0 give 0)."""
+        return np.bincount(self.row_of, weights=per_position, minlength=self.lengths.size)
+
+    def count_per_row(self, mask: np.ndarray) -> np.ndarray:
+        """How many positions of each row have ``mask`` set."""
+        return np.bincount(self.row_of[mask], minlength=self.lengths.size).astype(np.int64)
+
+
+def is_list(type_: pa.DataType) -> bool:
+    return pat.is_list(type_) or pat.is_large_list(type_) or pat.is_fixed_size_list(type_)
+
+
+def is_integer_list(type_: pa.DataType) -> bool:
+    return is_list(type_) and pat.is_integer(type_.value_type)
+
+
+def is_text(type_: pa.DataType) -> bool:
+    return pat.is_string(type_) or pat.is_large_string(type_)
+
+
+def flatten_list(array: pa.Array | pa.ChunkedArray) -> Flat:
+    """Flat values + offsets of a (large/fixed-size) list array; null rows count as empty."""
+    if isinstance(array, pa.ChunkedArray):
+        array = array.combine_chunks() if array.num_chunks != 1 else array.chunk(0)
+    if pat.is_fixed_size_list(array.type):
+        size = array.type.list_size
+        array = array.cast(pa.list_(array.type.value_type)) if array.null_count else array
+        if pat.is_fixed_size_list(array.type):
+            values = array.flatten()
+            offsets = np.arange(len(array) + 1, dtype=np.int64) * size
+            return Flat(_to_numpy(values), offsets)
+    if array.null_count:
+        array = pc.fill_null(array, pa.scalar([], type=array.type))
+    offsets = np.asarray(array.offsets, dtype=np.int64)
+    values = array.values.slice(int(offsets[0]), int(offsets[-1] - offsets[0]))
+    return Flat(_to_numpy(values), offsets - offsets[0])
+
+
+def _to_numpy(values: pa.Array) -> np.ndarray:
+    if values.null_count:
+        # A null inside a token list is not a token; -1 is outside every vocabulary and is reported as such.
+        values = pc.fill_null(values.cast(pa.int64()), -1)
+    return values.to_numpy(zero_copy_only=False)
+
+
+class Batch:
+    """Consecutive records of one shard.
+
+    ``rows[i]`` is the 0-based record index of batch row ``i`` within its shard in file order (for JSON Lines the
+    0-based line index, blank lines included).  ``columns`` maps a column name to its Arrow array.
+    """
+
+    def __init__(self, shard: Shard, table: pa.Table | pa.RecordBatch, rows: np.ndarray):
+        self.shard = shard
+        self.table = table
+        self.rows = np.asarray(rows, dtype=np.int64)
+        self.problems: list = []  # lint.sources.Problem objects met while reading these records
+        self._flat: dict[str, Flat] = {}
+
+    def __len__(self) -> int:
+        return self.table.num_rows
+
+    @property
+    def uri(self) -> str:
+        return self.shard.uri
+
+    @property
+    def column_names(self) -> list[str]:
+        return list(self.table.schema.names)
+
+    def has(self, name: str | None) -> bool:
+        return name is not None and name in self.table.schema.names
+
+    def column(self, name: str) -> pa.Array:
+        col = self.table.column(name)
+        if isinstance(col, pa.ChunkedArray):
+            col = col.combine_chunks() if col.num_chunks != 1 else col.chunk(0)
+        return col
+
+    def type_of(self, name: str) -> pa.DataType:
+        return self.table.schema.field(name).type
+
+    def flat(self, name: str) -> Flat:
+        """Flat numpy view of an integer list column (cached per batch)."""
+        if name not in self._flat:
+            self._flat[name] = flatten_list(self.column(name))
+        return self._flat[name]
+
+    def select(self, mask: np.ndarray) -> "Batch":
+        """The rows where ``mask`` is true, as a new batch of the same shard."""
+        return Batch(self.shard, self.table.filter(pa.array(mask)), self.rows[mask])

@@ -1,0 +1,117 @@
+"""Command line: ``corpuscle scan``, ``corpuscle rules``, ``corpuscle explain``.  Thin: parse options, call the
+engine, hand the report to the reporters.  Usage problems exit 2 with a message that says what to do."""
+from __future__ import annotations
+
+import os
+import sys
+
+import click
+
+from . import __version__
+from .engine import run, select_rules
+from .report import json as json_report
+from .report import sarif, text, write_atomic
+from .settings import FAIL_AT, LABEL_CONVENTIONS, SettingsError, build, load_config
+from .sources import NoShardsFound, discover
+
+
+class UsageProblem(click.ClickException):
+    """A mistake in how corpuscle was called or configured: exit status 2."""
+
+    exit_code = 2
+
+
+def _registry():
+    from rules import PluginError, registry
+
+    try:
+        return registry()
+    except PluginError as exc:
+        raise UsageProblem(str(exc)) from None
+
+
+def _progress(enabled: bool):
+    if not enabled:
+        return None
+
+    def show(result, done, total):
+        click.echo(f"\r  scanned {done}/{total} shards ({result.shard.uri})".ljust(79)[:79], err=True, nl=done == total)
+
+    return show
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
+@click.version_option(__version__, prog_name="corpuscle")
+def main():
+    """Lint language-model pretraining shards (JSON Lines, Parquet, Arrow IPC) before they cost GPU time."""
+
+
+@main.command()
+@click.argument("paths", nargs=-1, required=True)
+@click.option("--config", "config_path", type=click.Path(dir_okay=False), help="Settings file (default: corpuscle.toml or [tool.corpuscle] in pyproject.toml).")
+@click.option("--eos-id", type=int, help="End-of-sequence token id.")
+@click.option("--bos-id", type=int, help="Beginning-of-sequence token id.")
+@click.option("--pad-id", type=int, help="Padding token id.")
+@click.option("--vocab-size", type=click.IntRange(min=1), help="Token ids must lie in [0, N).")
+@click.option("--seq-len", type=click.IntRange(min=1), help="Context window in tokens.")
+@click.option("--labels", type=click.Choice(LABEL_CONVENTIONS), help="Label convention of the shards.")
+@click.option("--tokenizer", type=click.Path(dir_okay=False), help="Tokenizer JSON file for counting tokens of text shards.")
+@click.option("--only", help="Run only these rules (comma-separated ids).")
+@click.option("--skip", help="Do not run these rules (comma-separated ids).")
+@click.option("--sarif", "sarif_path", type=click.Path(dir_okay=False), help="Write a SARIF 2.1.0 report here.")
+@click.option("--json", "json_path", type=click.Path(dir_okay=False), help="Write a plain JSON report here.")
+@click.option("--fail-at", type=click.Choice(FAIL_AT), help="Exit 1 when a finding is at or above this level [default: error].")
+@click.option("--jobs", type=click.IntRange(min=1), help="Shards scanned in parallel [default: number of cores].")
+@click.option("--quiet", "-q", is_flag=True, help="No progress on stderr.")
+def scan(paths, config_path, sarif_path, json_path, jobs, quiet, **flags):
+    """Scan shards (files, folders, globs) and report what would hurt training."""
+    try:
+        config, _ = load_config(config_path)
+        settings = build(config, flags)
+        rules = select_rules(settings, _registry())
+        shards = discover(list(paths))
+    except (SettingsError, NoShardsFound) as exc:
+        raise UsageProblem(str(exc)) from None
+    show = _progress(not quiet and sys.stderr.isatty())
+    report = run(shards, settings, rules, jobs=jobs or os.cpu_count() or 1, progress=show)
+    for path, module in ((sarif_path, sarif), (json_path, json_report)):
+        if path:
+            try:
+                write_atomic(path, module.render(report))
+            except OSError as exc:
+                raise UsageProblem(f"cannot write {path}: {exc.strerror or exc}") from None
+    click.echo(text.render(report), nl=False)
+    sys.exit(report.exit_code)
+
+
+@main.command("rules")
+def list_rules():
+    """List the rules: id, default level, what each checks."""
+    available = _registry()
+    width = max(len(i) for i in available)
+    for rule_id, cls in available.items():
+        click.echo(f"{rule_id.ljust(width)}  {cls.level.name.ljust(7)}  {cls.summary}")
+
+
+@main.command()
+@click.argument("rule_id")
+def explain(rule_id):
+    """What a rule checks, why it matters, how to fix it, and its options."""
+    available = _registry()
+    if rule_id not in available:
+        raise UsageProblem(f"unknown rule {rule_id!r}; `corpuscle rules` lists them")
+    rule = available[rule_id]()
+    click.echo(f"{rule.id} (default level: {rule.level.name})\n")
+    click.echo(click.wrap_text(rule.summary, 100) + "\n")
+    click.echo("What it checks and why it matters")
+    click.echo(click.wrap_text(rule.description, 100, initial_indent="  ", subsequent_indent="  ") + "\n")
+    click.echo("How to fix")
+    click.echo(click.wrap_text(rule.help, 100, initial_indent="  ", subsequent_indent="  "))
+    needs = ", ".join(f"{k} ({v})" for k, v in rule.needs.items()) or "none"
+    click.echo(f"\nColumns needed: {needs}")
+    if rule.requires:
+        click.echo(f"Settings needed: {', '.join(rule.requires)}")
+    if rule.options:
+        click.echo(f"Options ([rule.{rule.id}] in corpuscle.toml):")
+        for name, default in rule.options.items():
+            click.echo(f"  {name} = {default!r}")

@@ -1,0 +1,244 @@
+"""The engine: run rules over shards (map), merge their states (reduce), and finish them into a report.
+
+One shard is the unit of work.  ``scan_shard`` reads one shard batch by batch, infers the facts the settings
+leave open from its first batch, and feeds every batch to each rule that can use it; the result is small and
+picklable, so the same function runs in this process or in a pool of processes (``jobs``).  ``scan`` collects the
+results in shard order, so the report is the same for any number of jobs.  The engine knows no particular rule.
+"""
+from __future__ import annotations
+
+import multiprocessing
+import os
+import time
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import dataclass, field
+from typing import Callable, Iterable
+
+from .batch import Shard, is_integer_list
+from .findings import Finding, Level
+from .rule import Rule, ShardState
+from .settings import Settings, SettingsError, infer_from_batch
+from .sources import discover, open_shard
+
+
+@dataclass
+class Note:
+    """Something the user should know about the run that is not a finding (a skipped rule, an inferred value)."""
+
+    level: Level
+    message: str
+    rule_id: str | None = None
+    uri: str | None = None
+
+
+@dataclass
+class ShardResult:
+    shard: Shard
+    states: dict[str, ShardState]
+    skipped: dict[str, str]
+    crashed: dict[str, str]
+    settings: Settings
+    rows: int = 0
+    tokens: int = 0
+    seconds: float = 0.0
+
+
+@dataclass
+class Report:
+    """Everything a reporter needs; reporters know nothing of readers."""
+
+    findings: list[Finding]
+    shards: list[Shard]
+    rules: list[Rule]
+    metrics: dict
+    notes: list[Note] = field(default_factory=list)
+    settings: Settings | None = None
+
+    def worst(self) -> Level | None:
+        return max((f.level for f in self.findings), default=None)
+
+    @property
+    def exit_code(self) -> int:
+        """0 when no finding is at or above ``fail_at``; 1 when one is."""
+        threshold = self.settings.fail_level if self.settings else Level.error
+        if threshold is None:
+            return 0
+        return int(any(f.level >= threshold for f in self.findings))
+
+
+def select_rules(settings: Settings, available: dict[str, type[Rule]]) -> list[Rule]:
+    """Instantiate the rules to run: all, less ``skip``, or only ``only``; options from the settings."""
+    for name in settings.only + settings.skip + tuple(settings.rule):
+        if name not in available:
+            raise SettingsError(f"unknown rule {name!r}; `corpuscle rules` lists them: {', '.join(available)}")
+    ids = [i for i in available if (not settings.only or i in settings.only) and i not in settings.skip]
+    rules = []
+    for rule_id in ids:
+        try:
+            rules.append(available[rule_id](**settings.options_for(rule_id)))
+        except (TypeError, ValueError) as exc:
+            raise SettingsError(str(exc)) from None
+    return rules
+
+
+def scan_shard(shard: Shard, settings: Settings, rules: list[Rule]) -> ShardResult:
+    """Read one shard and feed its batches to the rules; never raises for bad data."""
+    started = time.perf_counter()
+    facts = settings.for_path(shard.path)
+    states: dict[str, ShardState] = {}
+    skipped: dict[str, str] = {}
+    crashed: dict[str, str] = {}
+    counted = {"rows": 0, "tokens": 0}
+
+    def feed(batch) -> None:
+        counted["rows"] += len(batch)
+        if batch.has(facts.tokens_column) and is_integer_list(batch.type_of(facts.tokens_column)):
+            counted["tokens"] += int(batch.flat(facts.tokens_column).values.size)
+        for rule in rules:
+            if rule.id in crashed:
+                continue
+            reason = rule.missing(batch, facts)
+            if reason is not None:
+                if len(batch):
+                    skipped.setdefault(rule.id, reason)
+                continue
+            try:
+                rule.feed(states[rule.id], batch)
+            except Exception as exc:  # noqa: BLE001 - a rule bug must not lose the other rules' findings
+                crashed[rule.id] = f"{type(exc).__name__}: {exc}"
+            states[rule.id].fed = True
+
+    pending = []  # record-less batches (read problems) seen before the first records
+    with open_shard(shard, tokens_column=facts.tokens_column) as reader:
+        for batch in reader:
+            if not states:
+                if not len(batch):
+                    pending.append(batch)
+                    continue
+                facts = infer_from_batch(facts, batch)  # unset facts, from the first records of the shard
+                states = {rule.id: rule.begin(shard, facts) for rule in rules}
+                for waiting in pending:
+                    feed(waiting)
+            feed(batch)
+    if not states:
+        states = {rule.id: rule.begin(shard, facts) for rule in rules}
+        for waiting in pending:
+            feed(waiting)
+    rows, tokens = counted["rows"], counted["tokens"]
+    final = {}
+    for rule in rules:
+        state = states.get(rule.id)
+        if state is None or rule.id in crashed:
+            continue
+        if getattr(state, "fed", False):
+            skipped.pop(rule.id, None)
+        elif rule.id not in skipped:
+            skipped[rule.id] = "no records to check"
+        try:
+            final[rule.id] = rule.end(state)
+        except Exception as exc:  # noqa: BLE001
+            crashed[rule.id] = f"{type(exc).__name__}: {exc}"
+    return ShardResult(shard, final, skipped, crashed, facts, rows, tokens, time.perf_counter() - started)
+
+
+def _scan_args(args):
+    return scan_shard(*args)
+
+
+def run(shards: list[Shard], settings: Settings, rules: list[Rule], jobs: int = 1,
+        progress: Callable[[ShardResult, int, int], None] | None = None) -> Report:
+    """Scan shards (in a process pool when ``jobs`` > 1), then merge and finish every rule."""
+    started = time.perf_counter()
+    work = [(shard, settings, rules) for shard in shards]
+    results: list[ShardResult] = []
+    if jobs > 1 and len(shards) > 1:
+        # forkserver, not fork: a forked child of a process whose Arrow thread pools are running can deadlock.
+        context = multiprocessing.get_context("forkserver" if os.name == "posix" else "spawn")
+        with ProcessPoolExecutor(max_workers=min(jobs, len(shards)), mp_context=context) as pool:
+            for result in pool.map(_scan_args, work):
+                results.append(result)
+                if progress:
+                    progress(result, len(results), len(shards))
+    else:
+        for item in work:
+            results.append(_scan_args(item))
+            if progress:
+                progress(results[-1], len(results), len(shards))
+    return finish(results, settings, rules, time.perf_counter() - started)
+
+
+def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], seconds: float) -> Report:
+    """The reduce step: per-shard findings, cross-shard findings, notes and corpus figures."""
+    findings: list[Finding] = []
+    notes: list[Note] = []
+    metrics: dict = {
+        "shards": len(results),
+        "rows": sum(r.rows for r in results),
+        "tokens": sum(r.tokens for r in results),
+        "bytes": sum(r.shard.length for r in results),
+        "seconds": round(seconds, 3),
+    }
+    for rule in rules:
+        states = [r.states[rule.id] for r in results if rule.id in r.states]
+        for result in results:
+            state = result.states.get(rule.id)
+            if state is None:
+                continue
+            found = _guard(rule, notes, result.shard.uri, lambda: rule.report(state)) or []
+            for f in found:
+                if f.start_line is None and result.shard.line_based and f.uri == result.shard.uri and f.rows.size:
+                    f.start_line = int(f.rows.min()) + 1
+            findings += found
+        corpus = _guard(rule, notes, None, lambda: rule.corpus(states))
+        if corpus:
+            found, figures = corpus
+            findings += found
+            metrics.update(figures)
+    for result in results:
+        for rule_id, why in result.crashed.items():
+            notes.append(Note(Level.error, f"rule stopped on this shard after an internal error ({why}); "
+                                           "its findings for the shard are incomplete", rule_id, result.shard.uri))
+        for rule_id, why in result.skipped.items():
+            notes.append(Note(Level.note, f"skipped: {why}", rule_id, result.shard.uri))
+    notes += _inferred_notes(results)
+    findings.sort(key=Finding.sort_key)
+    return Report(findings, [r.shard for r in results], rules, metrics, notes, settings)
+
+
+def _guard(rule: Rule, notes: list[Note], uri: str | None, call):
+    try:
+        return call()
+    except Exception as exc:  # noqa: BLE001
+        notes.append(Note(Level.error, f"rule failed while reporting ({type(exc).__name__}: {exc})", rule.id, uri))
+        return None
+
+
+def _inferred_notes(results: list[ShardResult]) -> list[Note]:
+    """One note per inferred fact and value, naming how many shards it was inferred in and the evidence."""
+    seen: dict[tuple, list[ShardResult]] = {}
+    for result in results:
+        for key, why in result.settings.evidence.items():
+            seen.setdefault((key, getattr(result.settings, key)), []).append(result)
+    notes = []
+    for (key, value), where in seen.items():
+        first = where[0]
+        shards = first.shard.uri if len(where) == 1 else f"{len(where)} shards (first {first.shard.uri})"
+        notes.append(Note(Level.note, f"{key} = {value} inferred (heuristic) in {shards}: "
+                                      f"{first.settings.evidence[key]}", None, first.shard.uri))
+    return notes
+
+
+def scan(paths: Iterable[str] | str, settings: Settings | None = None, jobs: int = 1,
+         progress=None) -> Report:
+    """Public entry point for a data-prep job: find shards under ``paths``, run all selected rules, return the report.
+
+    Raises :class:`lint.sources.NoShardsFound` or :class:`lint.settings.SettingsError` for usage problems.
+    """
+    from rules import registry
+
+    if isinstance(paths, (str, os.PathLike)):
+        paths = [os.fspath(paths)]
+    settings = settings or Settings()
+    rules = select_rules(settings, registry())
+    shards = discover(list(paths))
+    return run(shards, settings, rules, jobs=jobs, progress=progress)

@@ -1,0 +1,25 @@
+"""Reporters: one module per output format.  They read a :class:`lint.engine.Report` and know nothing of readers."""
+from __future__ import annotations
+
+import os
+import tempfile
+
+
+def write_atomic(path: str, data: bytes) -> None:
+    """Write ``data`` to ``path`` through a temporary file in the same folder and a rename, so an interrupted run
+    never leaves a half-written report behind."""
+    folder = os.path.dirname(os.path.abspath(path))
+    os.makedirs(folder, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=".corpuscle-", suffix=".tmp", dir=folder)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise

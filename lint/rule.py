@@ -1,0 +1,163 @@
+"""The contract between the engine and a rule.
+
+A rule keeps a small, mergeable state per shard.  The engine calls, per shard, ``begin`` once, ``feed`` for every
+batch that has the columns the rule ``needs``, and ``end`` once; then, over the states of all shards, ``report``
+(findings of one shard) and ``corpus`` (findings that span shards, figures for the whole corpus).  States travel
+between processes, so they must pickle; keep them small (counters, capped :class:`~lint.findings.Hits`).
+"""
+from __future__ import annotations
+
+from collections import defaultdict
+
+import numpy as np
+
+from .batch import Batch, Shard, is_integer_list, is_text
+from .findings import Finding, Hits, Level
+
+#: Column kinds a rule can ask for; each is checked against the Arrow type before a batch is fed.
+COLUMN_KINDS = {
+    "int-list": is_integer_list,
+    "text": is_text,
+}
+
+
+class ShardState:
+    """What a rule has gathered about one shard: counters, capped hit lists, and any extra fields it sets."""
+
+    def __init__(self, shard: Shard, settings, cap: int):
+        self.shard = shard
+        self.settings = settings
+        self.cap = cap
+        self.stats: dict[str, float] = defaultdict(int)
+        self.hits: dict[str, Hits] = {}
+
+    @property
+    def uri(self) -> str:
+        return self.shard.uri
+
+    def hit(self, kind: str, rows, offsets=None) -> Hits:
+        """Record locations of one kind of defect (batch-absolute rows; offsets or None)."""
+        hits = self.hits.get(kind)
+        if hits is None:
+            hits = self.hits[kind] = Hits(self.cap)
+        hits.add(rows, offsets)
+        return hits
+
+    def count(self, **amounts) -> None:
+        for key, value in amounts.items():
+            self.stats[key] += value
+
+    def __getstate__(self):
+        state = dict(self.__dict__)
+        state["stats"] = dict(self.stats)
+        return state
+
+    def __setstate__(self, state):
+        stats = state.pop("stats")
+        self.__dict__.update(state)
+        self.stats = defaultdict(int, stats)
+
+
+class Rule:
+    """Base class of all rules.  Subclasses set the class attributes and override ``feed`` and ``report``.
+
+    * ``id``, ``level``, ``summary`` (one line), ``help`` (how to fix), and the class docstring (what is checked
+      and why it matters) make the rule's documentation (``corpuscle explain``, SARIF ``rules[]``).
+    * ``needs`` maps settings keys of columns to their kind, e.g. ``{"tokens_column": "int-list"}``; a batch
+      without them is not fed to the rule, and a shard none of whose batches had them gets a "skipped" note.
+    * ``requires`` names settings that must be known (given or inferred), e.g. ``("vocab_size",)``.
+    * ``options`` maps option names to defaults, set per rule in the config file under ``[rule.<id>]``.
+    """
+
+    id: str = ""
+    level: Level = Level.warning
+    summary: str = ""
+    help: str = ""
+    needs: dict[str, str] = {}
+    requires: tuple[str, ...] = ()
+    options: dict[str, object] = {}
+
+    def __init__(self, **options):
+        unknown = set(options) - set(self.options)
+        if unknown:
+            known = ", ".join(self.options) or "none"
+            raise ValueError(f"rule {self.id}: unknown option(s) {', '.join(sorted(unknown))} (known: {known})")
+        self.opts = {**self.options, **options}
+
+    @property
+    def description(self) -> str:
+        return " ".join((type(self).__doc__ or self.summary).split())
+
+    # -- what the engine calls ----------------------------------------------------------------------------
+    def missing(self, batch: Batch, settings) -> str | None:
+        """Why this batch cannot be fed to the rule, or None when it can."""
+        for key in self.requires:
+            if getattr(settings, key) is None:
+                return f"{key} is not set and could not be inferred (give --{key.replace('_', '-')})"
+        for key, kind in self.needs.items():
+            name = getattr(settings, key)
+            if not batch.has(name):
+                return f"no {name!r} column"
+            if not COLUMN_KINDS[kind](batch.type_of(name)):
+                return f"column {name!r} is {batch.type_of(name)}, not {kind}"
+        return None
+
+    def begin(self, shard: Shard, settings) -> ShardState:
+        return ShardState(shard, settings, settings.instance_cap)
+
+    def feed(self, state: ShardState, batch: Batch) -> None:
+        raise NotImplementedError
+
+    def end(self, state: ShardState) -> ShardState:
+        """Called once per shard after its last batch; may shrink the state before it travels."""
+        return state
+
+    def report(self, state: ShardState) -> list[Finding]:
+        """Findings of one shard."""
+        return []
+
+    def corpus(self, states: list[ShardState]) -> tuple[list[Finding], dict]:
+        """Findings that span shards and figures for the whole corpus (default: none)."""
+        return [], {}
+
+    # -- helpers for subclasses ---------------------------------------------------------------------------
+    def finding(self, state: ShardState, kind: str, message: str, level: Level | None = None,
+                **evidence) -> Finding:
+        """A finding of this rule from the hits of ``kind`` recorded in ``state``."""
+        return Finding.from_hits(self.id, level or self.level, message, state.uri, state.hits[kind], kind=kind,
+                                 **evidence)
+
+
+def share(part, whole) -> float:
+    return float(part) / float(whole) if whole else 0.0
+
+
+def pct(part, whole) -> str:
+    """A share as a short percentage for messages: '12.5%', '<0.1%', '100%'."""
+    if not whole:
+        return "0%"
+    value = 100.0 * part / whole
+    if 0 < value < 0.1:
+        return "<0.1%"
+    if value == 100 or value >= 99.95 and part == whole:
+        return "100%"
+    return f"{value:.1f}%".replace(".0%", "%")
+
+
+def absolute_rows(batch: Batch, local_rows: np.ndarray) -> np.ndarray:
+    """Batch-local row numbers to shard row indices."""
+    return batch.rows[np.asarray(local_rows, dtype=np.int64)]
+
+
+def consistent(batch: Batch, names: list[str]) -> Batch:
+    """The rows in which every named integer-list column present has the same length as the first one.
+
+    Rules comparing parallel columns (input_ids with labels, attention_mask, position_ids) run on these rows only;
+    ``schema-mismatch`` reports the others.
+    """
+    present = [n for n in names if batch.has(n) and is_integer_list(batch.type_of(n))]
+    if len(present) < 2:
+        return batch
+    lengths = [batch.flat(n).lengths for n in present]
+    same = np.logical_and.reduce([lengths[0] == other for other in lengths[1:]])
+    return batch if same.all() else batch.select(same)

@@ -1,0 +1,251 @@
+"""Settings: the facts of a shard (columns, special ids, window length, label convention) and the run's options.
+
+Sources, lowest to highest precedence: built-in defaults, values inferred from the data, ``corpuscle.toml`` in the
+working directory (or ``[tool.corpuscle]`` in ``pyproject.toml``), then command-line flags.  A ``[paths."GLOB"]``
+table in the file gives different facts to the shards whose path matches it.  Every value remembers where it came
+from, and inferred values carry the evidence, so the report can say "inferred" and why.
+"""
+from __future__ import annotations
+
+import dataclasses
+import fnmatch
+import os
+import tomllib
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .findings import DEFAULT_INSTANCE_CAP, Level
+
+LABEL_CONVENTIONS = ("shifted", "aligned")
+SEPARATORS = ("eos-after", "bos-before", "both")
+FAIL_AT = ("error", "warning", "note", "never")
+
+#: Shard facts: may differ per path and may be inferred.
+FACTS = ("text_column", "tokens_column", "labels_column", "mask_column", "positions_column", "eos_id", "bos_id",
+         "pad_id", "vocab_size", "seq_len", "labels", "ignore_index", "separator", "tokenizer")
+#: Run options: one value for the whole scan.
+OPTIONS = ("only", "skip", "fail_at", "instance_cap", "rule")
+
+
+class SettingsError(Exception):
+    """A setting that cannot be used (bad config file, bad value): a usage error, exit status 2."""
+
+
+@dataclass
+class Settings:
+    text_column: str = "text"
+    tokens_column: str = "input_ids"
+    labels_column: str = "labels"
+    mask_column: str = "attention_mask"
+    positions_column: str = "position_ids"
+    eos_id: int | None = None
+    bos_id: int | None = None
+    pad_id: int | None = None
+    vocab_size: int | None = None
+    seq_len: int | None = None
+    labels: str | None = None
+    ignore_index: int = -100  # common practice: PyTorch's cross-entropy ignore_index default
+    separator: str = "eos-after"
+    tokenizer: str | None = None
+    only: tuple[str, ...] = ()
+    skip: tuple[str, ...] = ()
+    fail_at: str = "error"
+    instance_cap: int = DEFAULT_INSTANCE_CAP
+    rule: dict = field(default_factory=dict)  # per-rule options: {"near-duplicate": {"threshold": 0.8}}
+    path_tables: dict = field(default_factory=dict, repr=False)
+    origin: dict = field(default_factory=dict, repr=False)  # key -> "default" | "inferred" | "config" | "flag"
+    evidence: dict = field(default_factory=dict, repr=False)  # key -> why an inferred value was chosen
+
+    def __post_init__(self):
+        self.validate()
+
+    # -- construction -------------------------------------------------------------------------------------
+    def validate(self) -> None:
+        for key in ("eos_id", "bos_id", "pad_id"):
+            value = getattr(self, key)
+            if value is not None and (not isinstance(value, int) or isinstance(value, bool)):
+                raise SettingsError(f"{key} must be an integer token id, got {value!r}")
+        for key in ("vocab_size", "seq_len"):
+            value = getattr(self, key)
+            if value is not None and (not isinstance(value, int) or isinstance(value, bool) or value < 1):
+                raise SettingsError(f"{key} must be a positive integer, got {value!r}")
+        if self.labels is not None and self.labels not in LABEL_CONVENTIONS:
+            raise SettingsError(f"labels must be one of {', '.join(LABEL_CONVENTIONS)}, got {self.labels!r}")
+        if self.separator not in SEPARATORS:
+            raise SettingsError(f"separator must be one of {', '.join(SEPARATORS)}, got {self.separator!r}")
+        if self.fail_at not in FAIL_AT:
+            raise SettingsError(f"fail_at must be one of {', '.join(FAIL_AT)}, got {self.fail_at!r}")
+        if not isinstance(self.instance_cap, int) or self.instance_cap < 0:
+            raise SettingsError(f"instance_cap must be a whole number >= 0, got {self.instance_cap!r}")
+        if not isinstance(self.rule, dict) or not all(isinstance(v, dict) for v in self.rule.values()):
+            raise SettingsError("rule options go in tables, e.g. [rule.near-duplicate] threshold = 0.8")
+
+    def source(self, key: str) -> str:
+        return self.origin.get(key, "default")
+
+    def with_values(self, values: dict, origin: str) -> "Settings":
+        """A copy with ``values`` applied (unknown keys rejected), each marked as coming from ``origin``."""
+        unknown = set(values) - set(FACTS) - set(OPTIONS) - {"paths"}
+        if unknown:
+            raise SettingsError(f"unknown setting(s) {', '.join(sorted(unknown))}: known are "
+                                f"{', '.join(FACTS + OPTIONS)}")
+        values = dict(values)
+        tables = dict(self.path_tables)
+        tables.update(values.pop("paths", {}) or {})
+        for key in ("only", "skip"):
+            if key in values and isinstance(values[key], str):
+                values[key] = tuple(v.strip() for v in values[key].split(",") if v.strip())
+            elif key in values:
+                values[key] = tuple(values[key])
+        new = dataclasses.replace(self, **values, path_tables=tables, origin=dict(self.origin),
+                                  evidence=dict(self.evidence))
+        for key in values:
+            new.origin[key] = origin
+            new.evidence.pop(key, None)
+        return new
+
+    def for_path(self, path: str) -> "Settings":
+        """The facts for one shard: the file's ``[paths."GLOB"]`` tables that match its path, in file order."""
+        out = self
+        norm = path.replace(os.sep, "/")
+        for pattern, values in self.path_tables.items():
+            bad = set(values) - set(FACTS)
+            if bad:
+                raise SettingsError(f"[paths.{pattern!r}] may only set shard facts, not {', '.join(sorted(bad))}")
+            if fnmatch.fnmatch(norm, pattern) or fnmatch.fnmatch(norm, pattern.rstrip("/") + "/*") \
+                    or norm.startswith(pattern.rstrip("/") + "/"):
+                out = out.with_values(values, "config")
+        return out
+
+    def options_for(self, rule_id: str) -> dict:
+        return dict(self.rule.get(rule_id, {}))
+
+    def infer(self, key: str, value, why: str) -> None:
+        """Fill an unset fact from the data (never overrides a config or flag value)."""
+        if getattr(self, key) is None and value is not None:
+            setattr(self, key, value)
+            self.origin[key] = "inferred"
+            self.evidence[key] = why
+
+    @property
+    def fail_level(self) -> Level | None:
+        return None if self.fail_at == "never" else Level.parse(self.fail_at)
+
+
+def load_config(path: str | None = None, cwd: str = ".") -> tuple[dict, str | None]:
+    """Read the settings file: ``path`` if given, else ``corpuscle.toml`` or ``[tool.corpuscle]`` in the cwd."""
+    candidates = [path] if path else [os.path.join(cwd, "corpuscle.toml"), os.path.join(cwd, "pyproject.toml")]
+    for candidate in candidates:
+        if not os.path.exists(candidate):
+            if path:
+                raise SettingsError(f"config file {path} does not exist")
+            continue
+        try:
+            with open(candidate, "rb") as fh:
+                data = tomllib.load(fh)
+        except (OSError, tomllib.TOMLDecodeError) as exc:
+            raise SettingsError(f"cannot read config file {candidate}: {exc}") from None
+        if os.path.basename(candidate) == "pyproject.toml" and not path:
+            data = data.get("tool", {}).get("corpuscle")
+            if data is None:
+                continue
+        elif os.path.basename(candidate) == "pyproject.toml":
+            data = data.get("tool", {}).get("corpuscle", {})
+        return data, candidate
+    return {}, None
+
+
+def build(config: dict | None = None, flags: dict | None = None) -> Settings:
+    """Defaults < config file < flags (inferred values fill what is still unset, per shard, later)."""
+    settings = Settings()
+    if config:
+        settings = settings.with_values(config, "config")
+    if flags:
+        settings = settings.with_values({k: v for k, v in flags.items() if v is not None}, "flag")
+    return settings
+
+
+# -- inference from a shard's first batch -------------------------------------------------------------------
+
+#: A value is inferred only when this share of the evidence agrees, over at least MIN_EVIDENCE observations.
+AGREEMENT = 0.9
+MIN_EVIDENCE = 4
+
+
+def _dominant(values: np.ndarray) -> tuple[int | None, float, int]:
+    """The most common value, its share, and how many observations there were."""
+    if values.size == 0:
+        return None, 0.0, 0
+    uniq, counts = np.unique(values, return_counts=True)
+    top = int(np.argmax(counts))
+    return int(uniq[top]), float(counts[top] / values.size), int(values.size)
+
+
+def infer_from_batch(settings: Settings, batch) -> Settings:
+    """Fill unset facts of a tokenized shard from its first batch, each with its evidence.
+
+    These are heuristics and are reported as inferred: ``seq_len`` (most common row length), ``pad_id`` (the id
+    under attention_mask 0), ``eos_id`` (the id before position restarts, else the last real token of rows),
+    ``bos_id`` (the id at restarts or row starts), and the label convention (shift 0 or 1 that explains labels).
+    """
+    from .batch import is_integer_list  # local: keeps settings importable without Arrow types in scope
+
+    s = dataclasses.replace(settings, origin=dict(settings.origin), evidence=dict(settings.evidence))
+    tok = s.tokens_column
+    if not batch.has(tok) or not is_integer_list(batch.type_of(tok)) or len(batch) == 0:
+        return s
+    flat = batch.flat(tok)
+    n = len(batch)
+    where = f"the first {n:,} rows"
+    if s.seq_len is None:
+        length, share, seen = _dominant(flat.lengths)
+        if length and share >= 0.5 and seen >= MIN_EVIDENCE:
+            s.infer("seq_len", length, f"most common row length ({share:.0%} of {where})")
+
+    real_end = flat.lengths.copy()  # per row: number of real (non-padding) tokens
+    if batch.has(s.mask_column) and is_integer_list(batch.type_of(s.mask_column)):
+        mask = batch.flat(s.mask_column)
+        if mask.values.size == flat.values.size and np.array_equal(mask.lengths, flat.lengths):
+            pad_positions = mask.values == 0
+            pad, share, seen = _dominant(flat.values[pad_positions])
+            if s.pad_id is None and seen >= MIN_EVIDENCE and share >= AGREEMENT:
+                s.infer("pad_id", pad, f"id under attention_mask 0 at {share:.0%} of {seen:,} masked positions "
+                                       f"in {where}")
+            real_end = flat.count_per_row(~pad_positions)
+
+    restarts = None
+    if batch.has(s.positions_column) and is_integer_list(batch.type_of(s.positions_column)):
+        pos = batch.flat(s.positions_column)
+        if np.array_equal(pos.lengths, flat.lengths):
+            restarts = np.flatnonzero((pos.values == 0) & ~flat.is_first)
+    if restarts is not None and restarts.size:
+        eos, share, seen = _dominant(flat.values[restarts - 1])
+        if seen >= MIN_EVIDENCE and share >= AGREEMENT:
+            s.infer("eos_id", eos, f"id before {share:.0%} of {seen:,} position restarts in {where}")
+        bos, share, seen = _dominant(flat.values[restarts])
+        if seen >= MIN_EVIDENCE and share >= AGREEMENT and bos != s.eos_id:
+            s.infer("bos_id", bos, f"id at {share:.0%} of {seen:,} position restarts in {where}")
+    has_real = real_end > 0
+    last_real = flat.values[(flat.offsets[:-1] + real_end - 1)[has_real]]
+    if s.eos_id is None:
+        eos, share, seen = _dominant(last_real)
+        if seen >= MIN_EVIDENCE and share >= AGREEMENT:
+            s.infer("eos_id", eos, f"last real token of {share:.0%} of {where}")
+    if s.bos_id is None and s.separator in ("bos-before", "both"):
+        bos, share, seen = _dominant(flat.values[flat.offsets[:-1][has_real]])
+        if seen >= MIN_EVIDENCE and share >= AGREEMENT and bos != s.eos_id:
+            s.infer("bos_id", bos, f"first token of {share:.0%} of {where}")
+
+    if s.labels is None and batch.has(s.labels_column) and is_integer_list(batch.type_of(s.labels_column)):
+        from .shift import shift_agreement  # measured the same way the label rule measures it
+
+        labels = batch.flat(s.labels_column)
+        if np.array_equal(labels.lengths, flat.lengths):
+            agree = shift_agreement(flat, labels.values, s.ignore_index, shifts=(0, 1))
+            best = max(agree, key=agree.get)
+            if agree[best] >= AGREEMENT:
+                name = "shifted" if best == 1 else "aligned"
+                s.infer("labels", name, f"labels equal input_ids shifted by {best} at {agree[best]:.1%} of "
+                                        f"trained positions in {where}")
+    return s

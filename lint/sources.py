@@ -1,0 +1,404 @@
+"""Finding shards and reading them as streams of :class:`~lint.batch.Batch` with bounded memory.
+
+Readers are context managers that yield batches; they never raise for bad data.  What they cannot read becomes a
+:class:`Problem` attached to the batch it was met in (a bad JSON line, a cut-off last line, invalid UTF-8, a value
+of the wrong type, a row group or a whole file that cannot be read), so the rules that own those findings see it
+and the rest of the shard is still scanned.
+"""
+from __future__ import annotations
+
+import glob
+import os
+from dataclasses import dataclass
+from typing import Iterator
+
+import numpy as np
+import orjson
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from .batch import Batch, Shard
+
+#: File endings we read, and the format/compression each one means.
+SUFFIXES = {
+    ".jsonl": ("jsonl", None),
+    ".jsonl.gz": ("jsonl", "gzip"),
+    ".jsonl.zst": ("jsonl", "zstd"),
+    ".parquet": ("parquet", None),
+    ".arrow": ("arrow", None),
+}
+EXPECTED = ", ".join(SUFFIXES)
+
+#: Default read size: tokens per batch for tokenized shards, bytes per batch for JSON Lines.
+DEFAULT_BATCH_TOKENS = 2_000_000
+DEFAULT_BATCH_BYTES = 16 << 20
+
+
+class NoShardsFound(Exception):
+    """No readable shard under the given paths (a usage error: exit status 2)."""
+
+
+@dataclass(frozen=True)
+class Problem:
+    """Something a reader could not read as it should.
+
+    ``kind`` is one of: ``bad-json`` (a line that is not JSON), ``not-object`` (a JSON value that is not an object),
+    ``cut-off`` (the last line ends without a newline and does not parse), ``invalid-utf8`` (bytes replaced while
+    reading), ``mistyped`` (a value whose type differs from the rest of its column; read as null), ``unreadable``
+    (a file or part of one that cannot be read; ``row`` is where reading stopped) and ``empty`` (no records).
+    """
+
+    kind: str
+    row: int
+    detail: str
+    offset: int = -1
+    column: str | None = None
+
+
+def shard_format(path: str) -> tuple[str, str | None] | None:
+    lower = path.lower()
+    for suffix in sorted(SUFFIXES, key=len, reverse=True):
+        if lower.endswith(suffix):
+            return SUFFIXES[suffix]
+    return None
+
+
+def _display(path: str, given: str, root: str | None) -> str:
+    """The uri a shard is reported under: as given, relative to the working directory where possible."""
+    if root is None:
+        return given
+    rel = os.path.relpath(path, root)
+    joined = os.path.join(given, rel)
+    return joined.replace(os.sep, "/")
+
+
+def discover(paths: list[str]) -> list[Shard]:
+    """Expand files, folders (recursively) and glob patterns into shards, in a stable sorted order per argument.
+
+    Raises :class:`NoShardsFound` with what was expected when nothing matches.
+    """
+    found: dict[str, Shard] = {}
+    missing = []
+    for given in paths:
+        if any(ch in given for ch in "*?["):
+            matches = sorted(glob.glob(given, recursive=True))
+            candidates = [(m, m) for m in matches if os.path.isfile(m)]
+            for m in matches:
+                if os.path.isdir(m):
+                    candidates += [(f, _display(f, m, m)) for f in _walk(m)]
+        elif os.path.isdir(given):
+            candidates = [(f, _display(f, given, given)) for f in _walk(given)]
+        elif os.path.exists(given):
+            candidates = [(given, given)]
+        else:
+            missing.append(given)
+            continue
+        for path, uri in candidates:
+            fmt = shard_format(path)
+            real = os.path.realpath(path)
+            if fmt is None or real in found:
+                continue
+            found[real] = Shard(uri=uri, path=path, format=fmt[0], compression=fmt[1],
+                                length=os.path.getsize(path))
+    if not found:
+        where = ", ".join(paths)
+        hint = f" ({', '.join(missing)} does not exist)" if missing else ""
+        raise NoShardsFound(f"no shard found under {where}{hint}: expected {EXPECTED} files")
+    return list(found.values())
+
+
+def _walk(folder: str) -> list[str]:
+    out = []
+    for root, dirs, files in os.walk(folder):
+        dirs.sort()
+        out += [os.path.join(root, f) for f in sorted(files) if not f.startswith(".")]
+    return out
+
+
+def open_shard(shard: Shard, batch_tokens: int = DEFAULT_BATCH_TOKENS, tokens_column: str = "input_ids",
+               batch_bytes: int = DEFAULT_BATCH_BYTES) -> "ShardReader":
+    """The reader for a shard's format, as a context manager yielding batches."""
+    if shard.format == "parquet":
+        return ParquetReader(shard, batch_tokens, tokens_column)
+    if shard.format == "arrow":
+        return ArrowReader(shard, batch_tokens, tokens_column)
+    return JsonLinesReader(shard, batch_bytes)
+
+
+class ShardReader:
+    """Base reader: a context manager whose iteration yields :class:`Batch` objects and never raises."""
+
+    def __init__(self, shard: Shard):
+        self.shard = shard
+        self._resources: list = []
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False
+
+    def close(self) -> None:
+        for res in self._resources:
+            try:
+                res.close()
+            except Exception:  # closing a broken file must not hide the finding about it
+                pass
+        self._resources.clear()
+
+    def __iter__(self) -> Iterator[Batch]:
+        if self.shard.length == 0:
+            yield self._problem_batch(Problem("empty", 0, "the file is empty (0 bytes)"))
+            return
+        try:
+            yield from self._batches()
+        except Exception as exc:  # noqa: BLE001 - any failure to read becomes a finding, never a traceback
+            yield self._problem_batch(Problem("unreadable", self._row, _describe(exc)))
+
+    _row = 0
+
+    def _batches(self) -> Iterator[Batch]:
+        raise NotImplementedError
+
+    def _problem_batch(self, problem: Problem) -> Batch:
+        batch = Batch(self.shard, pa.table({}), np.zeros(0, dtype=np.int64))
+        batch.problems.append(problem)
+        return batch
+
+
+def _describe(exc: BaseException) -> str:
+    text = str(exc).strip().splitlines()
+    return f"{type(exc).__name__}: {text[0].rstrip('.') if text else 'no detail'}"
+
+
+def _rows_per_batch(avg_tokens: float, batch_tokens: int) -> int:
+    return int(min(65_536, max(1, batch_tokens // max(1.0, avg_tokens))))
+
+
+class ParquetReader(ShardReader):
+    """Streams a Parquet file row group by row group; a corrupt row group is reported and skipped."""
+
+    def __init__(self, shard: Shard, batch_tokens: int, tokens_column: str):
+        super().__init__(shard)
+        self.batch_tokens = batch_tokens
+        self.tokens_column = tokens_column
+
+    def _avg_tokens(self, meta: pq.FileMetaData) -> float:
+        if meta.num_rows == 0 or meta.num_row_groups == 0:
+            return 1.0
+        rg = meta.row_group(0)
+        for i in range(rg.num_columns):
+            col = rg.column(i)
+            if col.path_in_schema.split(".")[0] == self.tokens_column:
+                return col.num_values / max(1, rg.num_rows)
+        return 1.0
+
+    def _batches(self) -> Iterator[Batch]:
+        pf = pq.ParquetFile(self.shard.path, memory_map=False)
+        self._resources.append(pf)
+        meta = pf.metadata
+        if meta.num_rows == 0:
+            yield self._problem_batch(Problem("empty", 0, "the Parquet file holds no rows"))
+            return
+        size = _rows_per_batch(self._avg_tokens(meta), self.batch_tokens)
+        start = 0
+        for group in range(meta.num_row_groups):
+            group_rows = meta.row_group(group).num_rows
+            self._row = start
+            try:
+                for rb in pf.iter_batches(batch_size=size, row_groups=[group]):
+                    rows = np.arange(self._row, self._row + rb.num_rows, dtype=np.int64)
+                    self._row += rb.num_rows
+                    yield Batch(self.shard, rb, rows)
+            except Exception as exc:  # noqa: BLE001
+                yield self._problem_batch(Problem(
+                    "unreadable", self._row,
+                    f"row group {group} (rows {start}-{start + group_rows - 1}) cannot be read: {_describe(exc)}"))
+            start += group_rows
+
+
+class ArrowReader(ShardReader):
+    """Streams an Arrow IPC file (random-access format) or stream, memory-mapped."""
+
+    def __init__(self, shard: Shard, batch_tokens: int, tokens_column: str):
+        super().__init__(shard)
+        self.batch_tokens = batch_tokens
+        self.tokens_column = tokens_column
+
+    def _batches(self) -> Iterator[Batch]:
+        source = pa.memory_map(self.shard.path, "r")
+        self._resources.append(source)
+        magic = source.read(6)
+        source.seek(0)
+        if magic == b"ARROW1":
+            reader = pa.ipc.open_file(source)
+            stored = (reader.get_batch(i) for i in range(reader.num_record_batches))
+        else:
+            stored = pa.ipc.open_stream(source)
+        seen_any = False
+        for rb in stored:
+            seen_any = True
+            for piece in self._split(rb):
+                rows = np.arange(self._row, self._row + piece.num_rows, dtype=np.int64)
+                self._row += piece.num_rows
+                yield Batch(self.shard, piece, rows)
+        if not seen_any:
+            yield self._problem_batch(Problem("empty", 0, "the Arrow file holds no record batches"))
+
+    def _split(self, rb: pa.RecordBatch):
+        """Slice a stored batch (zero-copy) so that one batch stays near the token budget."""
+        if rb.num_rows == 0:
+            return
+        avg = 1.0
+        if self.tokens_column in rb.schema.names:
+            col = rb.column(self.tokens_column)
+            if hasattr(col, "offsets"):
+                avg = (col.offsets[-1].as_py() - col.offsets[0].as_py()) / rb.num_rows
+        size = _rows_per_batch(avg, self.batch_tokens)
+        for start in range(0, rb.num_rows, size):
+            yield rb.slice(start, size)
+
+
+class JsonLinesReader(ShardReader):
+    """Streams JSON Lines (plain, gzip or zstd) in blocks of about ``batch_bytes``, parsing lines with orjson.
+
+    Row indices are 0-based line indices, blank lines included.  Each block's records become one Arrow table;
+    a value whose type disagrees with the rest of its column is read as null and reported as ``mistyped``.
+    """
+
+    def __init__(self, shard: Shard, batch_bytes: int):
+        super().__init__(shard)
+        self.batch_bytes = batch_bytes
+
+    def _open(self):
+        raw = pa.OSFile(self.shard.path, "rb")
+        self._resources.append(raw)
+        if self.shard.compression:
+            stream = pa.CompressedInputStream(raw, self.shard.compression)
+            self._resources.append(stream)
+            return stream
+        return raw
+
+    def _batches(self) -> Iterator[Batch]:
+        stream = self._open()
+        carry = b""
+        line_no = 0
+        any_record = False
+        while True:
+            chunk = stream.read(self.batch_bytes)
+            if not chunk:
+                break
+            data = carry + chunk
+            cut = data.rfind(b"\n")
+            if cut < 0:
+                carry = data
+                continue
+            lines = data[:cut].split(b"\n")
+            carry = data[cut + 1:]
+            batch = self._parse(lines, line_no, last_cut_off=False)
+            line_no += len(lines)
+            any_record |= len(batch) > 0
+            yield batch
+        if carry.strip():
+            batch = self._parse([carry], line_no, last_cut_off=True)
+            any_record |= len(batch) > 0
+            yield batch
+        if not any_record:
+            yield self._problem_batch(Problem("empty", 0, "the file holds no JSON records"))
+
+    def _parse(self, lines: list[bytes], first_line: int, last_cut_off: bool) -> Batch:
+        records, rows, problems = [], [], []
+        loads = orjson.loads
+        for i, line in enumerate(lines):
+            row = first_line + i
+            self._row = row
+            if not line.strip():
+                continue
+            try:
+                value = loads(line)
+            except orjson.JSONDecodeError as exc:
+                value, problem = self._recover(line, row, exc, last_cut_off)
+                problems.append(problem)
+                if value is None:
+                    continue
+            if not isinstance(value, dict):
+                problems.append(Problem("not-object", row, f"a JSON {type(value).__name__} where an object was expected"))
+                continue
+            records.append(value)
+            rows.append(row)
+        table = _to_table(records, rows, problems)
+        batch = Batch(self.shard, table, np.asarray(rows, dtype=np.int64))
+        batch.problems.extend(problems)
+        return batch
+
+    @staticmethod
+    def _recover(line: bytes, row: int, exc: Exception, last: bool):
+        """A line orjson rejects: invalid UTF-8 is replaced and the record kept; anything else is reported."""
+        try:
+            line.decode("utf-8")
+        except UnicodeDecodeError as bad:
+            fixed = line.decode("utf-8", errors="replace")
+            problem = Problem("invalid-utf8", row, f"invalid UTF-8 byte(s) at byte {bad.start} of the line, "
+                              "replaced by U+FFFD", offset=bad.start)
+            try:
+                return orjson.loads(fixed), problem
+            except orjson.JSONDecodeError as exc2:
+                exc = exc2
+        kind = "cut-off" if last else "bad-json"
+        detail = "the last line ends without a newline and is not complete JSON" if last else f"not JSON: {exc}"
+        return None, Problem(kind, row, detail, offset=getattr(exc, "pos", -1))
+
+
+def _to_table(records: list[dict], rows: list[int], problems: list[Problem]) -> pa.Table:
+    if not records:
+        return pa.table({})
+    try:
+        return pa.Table.from_pylist(records)
+    except (pa.ArrowInvalid, pa.ArrowTypeError, OverflowError):
+        pass
+    names = list(dict.fromkeys(k for r in records for k in r))
+    columns = {}
+    for name in names:
+        values = [r.get(name) for r in records]
+        try:
+            columns[name] = pa.array(values)
+        except (pa.ArrowInvalid, pa.ArrowTypeError, OverflowError):
+            columns[name] = _majority_array(name, values, rows, problems)
+    return pa.table(columns)
+
+
+def _shape(value) -> str:
+    """A coarse type signature of a JSON value: what Arrow would need to hold it."""
+    if isinstance(value, list):
+        inner = {_shape(v) for v in value[:64]} - {"null"}
+        return "list<" + ("|".join(sorted(inner)) or "null") + ">"
+    if isinstance(value, bool):
+        return "bool"
+    if isinstance(value, (int, float)):
+        return "number"
+    return type(value).__name__ if value is not None else "null"
+
+
+def _majority_array(name: str, values: list, rows: list[int], problems: list[Problem]) -> pa.Array:
+    """Keep the values of the column's most common type; read the others as null and report them."""
+    shapes = [_shape(v) for v in values]
+    counts: dict[str, int] = {}
+    for s in shapes:
+        if s != "null":
+            counts[s] = counts.get(s, 0) + 1
+    keep = max(counts, key=counts.get)
+    cleaned = []
+    for value, shape, row in zip(values, shapes, rows):
+        if shape in (keep, "null"):
+            cleaned.append(value)
+        else:
+            cleaned.append(None)
+            problems.append(Problem("mistyped", row, f"column {name!r} holds {shape} here but {keep} in most rows",
+                                    column=name))
+    try:
+        return pa.array(cleaned)
+    except (pa.ArrowInvalid, pa.ArrowTypeError, OverflowError) as exc:
+        for row in rows:
+            problems.append(Problem("mistyped", row, f"column {name!r} cannot be read: {_describe(exc)}", column=name))
+        return pa.nulls(len(values))
