@@ -43,37 +43,79 @@ class Flat:
     def lengths(self) -> np.ndarray:
         return np.diff(self.offsets)
 
+    @property
+    def starts(self) -> np.ndarray:
+        return self.offsets[:-1]
+
+    @property
+    def ends(self) -> np.ndarray:
+        return self.offsets[1:]
+
+    # Segment operations: per-row results from whole-array passes, without an N-sized row index.  Prefer these to
+    # ``row_of``/``position`` in hot paths: a cumulative sum is one pass, a gather over N positions is several.
+
+    def row_counts(self, mask: np.ndarray, lo: np.ndarray | None = None, hi: np.ndarray | None = None) -> np.ndarray:
+        """How many positions of each row have ``mask`` set, optionally only within ``[lo, hi)`` (flat indices).
+
+        ``mask`` may also be a running count from :func:`running_count`, to reuse it for several ranges."""
+        csum = mask if mask.size == self.values.size + 1 and mask.dtype == np.int64 else running_count(mask)
+        lo = self.starts if lo is None else lo
+        hi = self.ends if hi is None else np.maximum(hi, lo)
+        return csum[hi] - csum[lo]
+
+    def rows_at(self, positions: np.ndarray) -> np.ndarray:
+        """Batch-local row of each flat position (binary search: cheap for a few positions, not for all)."""
+        return np.searchsorted(self.offsets, positions, side="right") - 1
+
+    def first_in_row(self, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Rows having at least one position with ``mask`` set, and the in-row offset of the first such position."""
+        hits = np.flatnonzero(mask)
+        if hits.size == 0:
+            empty = np.zeros(0, dtype=np.int64)
+            return empty, empty
+        rows = self.rows_at(hits)
+        rows, first = np.unique(rows, return_index=True)
+        return rows, hits[first] - self.offsets[rows]
+
+    def locate(self, positions: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Batch-local (row, in-row offset) of flat positions."""
+        rows = self.rows_at(positions)
+        return rows, positions - self.offsets[rows]
+
     @cached_property
     def row_of(self) -> np.ndarray:
-        """For every flat position, the batch-local row it belongs to."""
+        """For every flat position, the batch-local row it belongs to (N-sized: avoid in hot paths)."""
         return np.repeat(np.arange(self.lengths.size, dtype=np.int64), self.lengths)
 
     @cached_property
     def position(self) -> np.ndarray:
-        """For every flat position, its 0-based token index within its row."""
+        """For every flat position, its 0-based token index within its row (N-sized: avoid in hot paths)."""
         return np.arange(self.values.size, dtype=np.int64) - self.offsets[self.row_of]
 
     @cached_property
     def is_last(self) -> np.ndarray:
         """True at the last position of every row."""
         mask = np.zeros(self.values.size, dtype=bool)
-        ends = self.offsets[1:][self.lengths > 0] - 1
-        mask[ends] = True
+        mask[self.ends[self.lengths > 0] - 1] = True
         return mask
 
     @cached_property
     def is_first(self) -> np.ndarray:
+        """True at the first position of every row."""
         mask = np.zeros(self.values.size, dtype=bool)
-        mask[self.offsets[:-1][self.lengths > 0]] = True
+        mask[self.starts[self.lengths > 0]] = True
         return mask
-
-    def row_sums(self, per_position: np.ndarray) -> np.ndarray:
-        """Sum a per-position quantity within each row (rows of length 0 give 0)."""
-        return np.bincount(self.row_of, weights=per_position, minlength=self.lengths.size)
 
     def count_per_row(self, mask: np.ndarray) -> np.ndarray:
         """How many positions of each row have ``mask`` set."""
-        return np.bincount(self.row_of[mask], minlength=self.lengths.size).astype(np.int64)
+        return self.row_counts(mask)
+
+
+def running_count(mask: np.ndarray) -> np.ndarray:
+    """``out[i]`` = how many of ``mask[:i]`` are set (length N+1): segment counts are differences of it."""
+    csum = np.zeros(mask.size + 1, dtype=np.int64)
+    np.cumsum(mask, out=csum[1:])
+    return csum
 
 
 def is_list(type_: pa.DataType) -> bool:

@@ -81,8 +81,8 @@ class UnreadableShard(Rule):
                 msg = f"{p.detail}: nothing to train on. Remove the file or rerun the writer that produced it."
                 out.append(self.finding(state, p.kind, msg, level=Level.warning))
             else:
-                msg = (f"cannot read the shard past row {p.row:,}: {p.detail}. Rows before it were scanned; "
-                       "re-copy or re-write the file.")
+                scanned = f"rows before row {p.row:,} were scanned" if p.row else "nothing in it could be read"
+                msg = f"cannot read the shard: {p.detail}. {scanned.capitalize()}; re-copy or re-write the file."
                 out.append(self.finding(state, p.kind, msg))
             state.hits.pop(p.kind)
         return out
