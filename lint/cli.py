@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import os
 import sys
+import textwrap
 
 import click
 
@@ -102,11 +103,11 @@ def explain(rule_id):
         raise UsageProblem(f"unknown rule {rule_id!r}; `corpuscle rules` lists them")
     rule = available[rule_id]()
     click.echo(f"{rule.id} (default level: {rule.level.name})\n")
-    click.echo(click.wrap_text(rule.summary, 100) + "\n")
+    click.echo(_fill(rule.summary, "") + "\n")
     click.echo("What it checks and why it matters")
-    click.echo(click.wrap_text(rule.description, 100, initial_indent="  ", subsequent_indent="  ") + "\n")
+    click.echo(_fill(rule.description, "  ") + "\n")
     click.echo("How to fix")
-    click.echo(click.wrap_text(rule.help, 100, initial_indent="  ", subsequent_indent="  "))
+    click.echo(_fill(rule.help, "  "))
     needs = ", ".join(f"{k} ({v})" for k, v in rule.needs.items()) or "none"
     click.echo(f"\nColumns needed: {needs}")
     if rule.requires:
@@ -115,3 +116,9 @@ def explain(rule_id):
         click.echo(f"Options ([rule.{rule.id}] in corpuscle.toml):")
         for name, default in rule.options.items():
             click.echo(f"  {name} = {default!r}")
+
+
+def _fill(text: str, indent: str) -> str:
+    """Wrap at 100 columns without breaking a word or at its hyphens (rule ids and kinds stay copyable)."""
+    return textwrap.fill(text, 100, initial_indent=indent, subsequent_indent=indent, break_long_words=False,
+                         break_on_hyphens=False)

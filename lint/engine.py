@@ -132,8 +132,6 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule]) -> ShardResu
             continue
         if getattr(state, "fed", False):
             skipped.pop(rule.id, None)
-        elif rule.id not in skipped:
-            skipped[rule.id] = "no records to check"
         try:
             final[rule.id] = rule.end(state)
         except Exception as exc:  # noqa: BLE001

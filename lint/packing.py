@@ -28,6 +28,11 @@ The lengths are taken as given: if the layout adds a separator token per documen
 ``lower_bound`` is ``ceil(total / seq_len)``: no layout that keeps every token can
 use fewer windows.
 
+Every function also takes the documents as a length histogram: ``counts[i]``
+documents of length ``lengths[i]`` (``counts=None``: one document per entry). The
+results are the same as for the expanded list ``np.repeat(lengths, counts)``, at a
+cost that depends on the number of distinct lengths, not on the number of documents.
+
 Everything is numpy over the whole length array. Best-fit decreasing works on
 counts: there are at most ``seq_len - 1`` distinct piece sizes, and the windows
 are kept as counts per remaining room, so its cost after one ``bincount`` depends
@@ -186,37 +191,69 @@ def _check_lengths(lengths) -> np.ndarray:
     return arr.astype(np.int64, copy=False)
 
 
+def _check_counts(counts, arr: np.ndarray) -> np.ndarray | None:
+    """Documents per length (same shape as the lengths); None (one document per length) when not given."""
+    if counts is None:
+        return None
+    cnt = np.asarray(counts)
+    if cnt.size == 0 and arr.size == 0:
+        return np.zeros(0, dtype=np.int64)
+    if cnt.shape != arr.shape:
+        raise ValueError(
+            f"counts must have one entry per length, got shape {cnt.shape} for lengths of shape {arr.shape}; "
+            "hint: counts[i] is how many documents have length lengths[i]"
+        )
+    if cnt.dtype == np.bool_ or not np.issubdtype(cnt.dtype, np.integer):
+        raise ValueError(f"counts must hold integers, got dtype {cnt.dtype}; hint: cast with .astype(np.int64)")
+    if np.issubdtype(cnt.dtype, np.signedinteger) and cnt.size and cnt.min() < 0:
+        raise ValueError(
+            f"counts must be >= 0, found {int(cnt.min())} at index {int(cnt.argmin())}; "
+            "hint: a count of documents cannot be negative"
+        )
+    return cnt.astype(np.int64, copy=False)
+
+
+def _total(arr: np.ndarray, cnt: np.ndarray | None) -> int:
+    """Sum of the lengths, each taken ``cnt`` times when counts are given."""
+    if cnt is None:
+        return int(arr.sum())
+    return int(np.dot(arr, cnt)) if arr.size else 0
+
+
 # --------------------------------------------------------------------------- layouts
 
 
-def lower_bound(lengths, seq_len) -> int:
+def lower_bound(lengths, seq_len, counts=None) -> int:
     """``ceil(total / seq_len)``: the fewest windows any layout keeping every token needs."""
     seq_len = _check_seq_len(seq_len)
-    total = int(_check_lengths(lengths).sum())
+    arr = _check_lengths(lengths)
+    total = _total(arr, _check_counts(counts, arr))
     return -(-total // seq_len)
 
 
-def one_per_window(lengths, seq_len) -> Layout:
+def one_per_window(lengths, seq_len, counts=None) -> Layout:
     """Each non-empty document in its own window, cut to ``seq_len``, padded to it.
 
     Empty documents take no window. Dropped tokens are ``sum(max(0, L - seq_len))``.
     """
     seq_len = _check_seq_len(seq_len)
     arr = _check_lengths(lengths)
-    total = int(arr.sum())
-    kept = int(np.minimum(arr, seq_len).sum())
-    windows = int(np.count_nonzero(arr))
+    cnt = _check_counts(counts, arr)
+    total = _total(arr, cnt)
+    kept = _total(np.minimum(arr, seq_len), cnt)
+    windows = int(np.count_nonzero(arr)) if cnt is None else int(cnt[arr > 0].sum())
     return Layout("one_per_window", seq_len, windows, kept, total - kept)
 
 
-def concat_chunk(lengths, seq_len) -> Layout:
+def concat_chunk(lengths, seq_len, counts=None) -> Layout:
     """All documents end to end, cut every ``seq_len`` tokens; the last partial window is padded."""
     seq_len = _check_seq_len(seq_len)
-    total = int(_check_lengths(lengths).sum())
+    arr = _check_lengths(lengths)
+    total = _total(arr, _check_counts(counts, arr))
     return Layout("concat_chunk", seq_len, -(-total // seq_len), total, 0)
 
 
-def best_fit_decreasing_fills(lengths, seq_len) -> np.ndarray:
+def best_fit_decreasing_fills(lengths, seq_len, counts=None) -> np.ndarray:
     """Window fills of the best-fit-decreasing layout, as counts.
 
     Returns an int64 array ``fills`` of length ``seq_len + 1``: ``fills[f]`` is the
@@ -258,8 +295,14 @@ def best_fit_decreasing_fills(lengths, seq_len) -> np.ndarray:
     if arr.size == 0:
         return fills
     full_windows, pieces = np.divmod(arr, seq_len)
-    fills[seq_len] = int(full_windows.sum())
-    piece_counts = np.bincount(pieces, minlength=seq_len)
+    if counts is None:
+        fills[seq_len] = int(full_windows.sum())
+        piece_counts = np.bincount(pieces, minlength=seq_len)
+    else:  # a histogram: count[i] documents of length arr[i]
+        cnt = _check_counts(counts, arr)
+        fills[seq_len] = _total(full_windows, cnt)
+        piece_counts = np.zeros(seq_len, dtype=np.int64)
+        np.add.at(piece_counts, pieces, cnt)
     piece_counts[0] = 0  # no remainder piece
 
     room = [0] * (seq_len + 1)  # room[r]: open windows with r tokens of room left
@@ -308,7 +351,7 @@ def best_fit_decreasing_fills(lengths, seq_len) -> np.ndarray:
     return fills
 
 
-def best_fit_decreasing(lengths, seq_len) -> Layout:
+def best_fit_decreasing(lengths, seq_len, counts=None) -> Layout:
     """Split documents longer than ``seq_len``, pack the pieces by best-fit decreasing.
 
     Nothing is dropped; padding is the room left in the windows. See
@@ -316,19 +359,21 @@ def best_fit_decreasing(lengths, seq_len) -> Layout:
     """
     seq_len = _check_seq_len(seq_len)
     arr = _check_lengths(lengths)
-    windows = int(best_fit_decreasing_fills(arr, seq_len).sum())
-    return Layout("best_fit_decreasing", seq_len, windows, int(arr.sum()), 0)
+    cnt = _check_counts(counts, arr)
+    windows = int(best_fit_decreasing_fills(arr, seq_len, cnt).sum())
+    return Layout("best_fit_decreasing", seq_len, windows, _total(arr, cnt), 0)
 
 
-def compare_layouts(lengths, seq_len) -> Layouts:
+def compare_layouts(lengths, seq_len, counts=None) -> Layouts:
     """All three layouts of the same documents, and ``lower_bound``."""
     seq_len = _check_seq_len(seq_len)
     arr = _check_lengths(lengths)
+    cnt = _check_counts(counts, arr)
     return Layouts(
-        one_per_window=one_per_window(arr, seq_len),
-        concat_chunk=concat_chunk(arr, seq_len),
-        best_fit_decreasing=best_fit_decreasing(arr, seq_len),
-        lower_bound=lower_bound(arr, seq_len),
+        one_per_window=one_per_window(arr, seq_len, cnt),
+        concat_chunk=concat_chunk(arr, seq_len, cnt),
+        best_fit_decreasing=best_fit_decreasing(arr, seq_len, cnt),
+        lower_bound=lower_bound(arr, seq_len, cnt),
     )
 
 

@@ -36,10 +36,17 @@ class ShardState:
         return self.shard.uri
 
     def hit(self, kind: str, rows, offsets=None) -> Hits:
-        """Record locations of one kind of defect (batch-absolute rows; offsets or None)."""
+        """Record locations of one kind of defect (batch-absolute rows; offsets or None).
+
+        A kind appears in ``hits`` only once it has at least one location, so a rule that reports every kind in
+        ``hits`` never reports a defect found zero times."""
         hits = self.hits.get(kind)
         if hits is None:
-            hits = self.hits[kind] = Hits(self.cap)
+            hits = Hits(self.cap)
+            hits.add(rows, offsets)
+            if hits:
+                self.hits[kind] = hits
+            return hits
         hits.add(rows, offsets)
         return hits
 

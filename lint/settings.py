@@ -62,6 +62,15 @@ class Settings:
 
     # -- construction -------------------------------------------------------------------------------------
     def validate(self) -> None:
+        for key in ("text_column", "tokens_column", "labels_column", "mask_column", "positions_column"):
+            if not isinstance(getattr(self, key), str) or not getattr(self, key):
+                raise SettingsError(f"{key} must be a column name (a string), got {getattr(self, key)!r}")
+        if not isinstance(self.ignore_index, int) or isinstance(self.ignore_index, bool):
+            raise SettingsError(f"ignore_index must be an integer label value, got {self.ignore_index!r}")
+        if self.tokenizer is not None and not isinstance(self.tokenizer, str):
+            raise SettingsError(f"tokenizer must be the path of a tokenizer JSON file, got {self.tokenizer!r}")
+        if not all(isinstance(name, str) for name in (*self.only, *self.skip)):
+            raise SettingsError("only and skip take rule ids, e.g. only = [\"label-alignment\"]")
         for key in ("eos_id", "bos_id", "pad_id"):
             value = getattr(self, key)
             if value is not None and (not isinstance(value, int) or isinstance(value, bool)):
@@ -76,7 +85,7 @@ class Settings:
             raise SettingsError(f"separator must be one of {', '.join(SEPARATORS)}, got {self.separator!r}")
         if self.fail_at not in FAIL_AT:
             raise SettingsError(f"fail_at must be one of {', '.join(FAIL_AT)}, got {self.fail_at!r}")
-        if not isinstance(self.instance_cap, int) or self.instance_cap < 0:
+        if not isinstance(self.instance_cap, int) or isinstance(self.instance_cap, bool) or self.instance_cap < 0:
             raise SettingsError(f"instance_cap must be a whole number >= 0, got {self.instance_cap!r}")
         if not isinstance(self.rule, dict) or not all(isinstance(v, dict) for v in self.rule.values()):
             raise SettingsError("rule options go in tables, e.g. [rule.near-duplicate] threshold = 0.8")
@@ -92,11 +101,13 @@ class Settings:
                                 f"{', '.join(FACTS + OPTIONS)}")
         values = dict(values)
         tables = dict(self.path_tables)
-        tables.update(values.pop("paths", {}) or {})
+        tables.update(_check_path_tables(values.pop("paths", {}) or {}))
         for key in ("only", "skip"):
             if key in values and isinstance(values[key], str):
                 values[key] = tuple(v.strip() for v in values[key].split(",") if v.strip())
             elif key in values:
+                if not isinstance(values[key], (list, tuple)):
+                    raise SettingsError(f"{key} takes rule ids, e.g. {key} = [\"label-alignment\"], got {values[key]!r}")
                 values[key] = tuple(values[key])
         new = dataclasses.replace(self, **values, path_tables=tables, origin=dict(self.origin),
                                   evidence=dict(self.evidence))
@@ -108,13 +119,14 @@ class Settings:
     def for_path(self, path: str) -> "Settings":
         """The facts for one shard: the file's ``[paths."GLOB"]`` tables that match its path, in file order."""
         out = self
-        norm = path.replace(os.sep, "/")
+        # The path as found, normalised ("./data/x" is "data/x"), relative to the working directory and absolute.
+        forms = {os.path.normpath(path), os.path.relpath(path), os.path.abspath(path)}
+        forms = {form.replace(os.sep, "/") for form in forms}
         for pattern, values in self.path_tables.items():
-            bad = set(values) - set(FACTS)
-            if bad:
-                raise SettingsError(f"[paths.{pattern!r}] may only set shard facts, not {', '.join(sorted(bad))}")
-            if fnmatch.fnmatch(norm, pattern) or fnmatch.fnmatch(norm, pattern.rstrip("/") + "/*") \
-                    or norm.startswith(pattern.rstrip("/") + "/"):
+            values = {k: v for k, v in values.items() if self.origin.get(k) != "flag"}  # a flag beats the file
+            prefix = pattern.rstrip("/") + "/"
+            if any(fnmatch.fnmatch(norm, pattern) or fnmatch.fnmatch(norm, prefix + "*") or norm.startswith(prefix)
+                   for norm in forms):
                 out = out.with_values(values, "config")
         return out
 
@@ -131,6 +143,22 @@ class Settings:
     @property
     def fail_level(self) -> Level | None:
         return None if self.fail_at == "never" else Level.parse(self.fail_at)
+
+
+def _check_path_tables(tables) -> dict:
+    """Validate ``[paths."GLOB"]`` tables when the file is read, not when the first matching shard is met."""
+    if not isinstance(tables, dict) or not all(isinstance(v, dict) for v in tables.values()):
+        raise SettingsError('per-path facts go in tables, e.g. [paths."data/web/*"] eos_id = 2')
+    for pattern, values in tables.items():
+        bad = set(values) - set(FACTS)
+        if bad:
+            raise SettingsError(f"[paths.{pattern!r}] may only set shard facts ({', '.join(FACTS)}), "
+                                f"not {', '.join(sorted(bad))}")
+        try:
+            Settings(**values)
+        except (SettingsError, TypeError) as exc:
+            raise SettingsError(f"[paths.{pattern!r}]: {exc}") from None
+    return tables
 
 
 def load_config(path: str | None = None, cwd: str = ".") -> tuple[dict, str | None]:
@@ -171,6 +199,7 @@ def build(config: dict | None = None, flags: dict | None = None) -> Settings:
 #: A value is inferred only when this share of the evidence agrees, over at least MIN_EVIDENCE observations.
 AGREEMENT = 0.9
 MIN_EVIDENCE = 4
+MAJORITY = 0.6
 
 
 def _dominant(values: np.ndarray) -> tuple[int | None, float, int]:
@@ -213,6 +242,11 @@ def infer_from_batch(settings: Settings, batch) -> Settings:
                 s.infer("pad_id", pad, f"id under attention_mask 0 at {share:.0%} of {seen:,} masked positions "
                                        f"in {where}")
             real_end = flat.count_per_row(~pad_positions)
+    elif s.pad_id is not None:
+        # No attention mask: a row's real tokens end at its last token that is not the (known) pad id.
+        real = np.flatnonzero(flat.values != s.pad_id)
+        real_end = np.zeros(n, dtype=np.int64)
+        np.maximum.at(real_end, flat.row_of[real], flat.position[real] + 1)
 
     restarts = None
     if batch.has(s.positions_column) and is_integer_list(batch.type_of(s.positions_column)):
@@ -221,7 +255,9 @@ def infer_from_batch(settings: Settings, batch) -> Settings:
             restarts = np.flatnonzero((pos.values == 0) & ~flat.is_first)
     if restarts is not None and restarts.size:
         eos, share, seen = _dominant(flat.values[restarts - 1])
-        if seen >= MIN_EVIDENCE and share >= AGREEMENT:
+        # A majority suffices here: a pipeline that drops some separators still puts eos before most restarts,
+        # and that is exactly the shard whose missing separators must be found.
+        if seen >= MIN_EVIDENCE and share >= MAJORITY:
             s.infer("eos_id", eos, f"id before {share:.0%} of {seen:,} position restarts in {where}")
         bos, share, seen = _dominant(flat.values[restarts])
         if seen >= MIN_EVIDENCE and share >= AGREEMENT and bos != s.eos_id:
@@ -244,7 +280,8 @@ def infer_from_batch(settings: Settings, batch) -> Settings:
         if np.array_equal(labels.lengths, flat.lengths):
             agree = shift_agreement(flat, labels.values, s.ignore_index, shifts=(0, 1))
             best = max(agree, key=agree.get)
-            if agree[best] >= AGREEMENT:
+            # Both shifts explaining the labels (e.g. long runs of one id) is no evidence for either convention.
+            if agree[best] >= AGREEMENT and agree[1 - best] < AGREEMENT:
                 name = "shifted" if best == 1 else "aligned"
                 s.infer("labels", name, f"labels equal input_ids shifted by {best} at {agree[best]:.1%} of "
                                         f"trained positions in {where}")

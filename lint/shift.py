@@ -36,11 +36,7 @@ def shift_matches(tokens: Flat, labels: np.ndarray, ignore_index: int, shifts=SH
     comparable = np.zeros((len(shifts), rows), dtype=np.int64)
     hit = np.zeros(n, dtype=bool)
     for i, k in enumerate(shifts):  # a loop over five shifts, each a few whole-batch passes
-        hit[:] = False
-        if k >= 0:
-            np.equal(labels[:n - k], tokens.values[k:], out=hit[:n - k])
-        else:
-            np.equal(labels[-k:], tokens.values[:n + k], out=hit[-k:])
+        _equal_shifted(tokens.values, labels, k, hit)
         hit &= trained
         lo = tokens.starts + max(0, -k)
         hi = tokens.ends - max(0, k)
@@ -84,16 +80,36 @@ def _rank(shift: int) -> int:
 def first_mismatch(tokens: Flat, labels: np.ndarray, ignore_index: int, shift: int) -> np.ndarray:
     """Per row: the 0-based position of the first trained label that is not ``input_ids[t + shift]`` (a label
     whose ``t + shift`` leaves the row counts as not matching), or -1 when every trained label matches."""
-    pos, row_of = tokens.position, tokens.row_of
-    target = np.arange(tokens.values.size, dtype=np.int64) + shift
-    inside = (pos + shift >= 0) & (pos + shift < tokens.lengths[row_of])
-    same = np.zeros(labels.size, dtype=bool)
-    same[inside] = labels[inside] == tokens.values[target[inside]]
-    bad = np.flatnonzero((labels != ignore_index) & ~same)
-    out = np.full(tokens.lengths.size, -1, dtype=np.int64)
-    if bad.size:
-        rows = row_of[bad]
-        first = np.ones(bad.size, dtype=bool)
-        first[1:] = rows[1:] != rows[:-1]
-        out[rows[first]] = pos[bad[first]]
+    n = tokens.values.size
+    same = np.zeros(n, dtype=bool)
+    _equal_shifted(tokens.values, labels, shift, same)
+    # near a row's end (shift > 0) or start (shift < 0) the comparison reached into the neighbouring row
+    lo, hi = tokens.starts + max(0, -shift), tokens.ends - max(0, shift)
+    if shift > 0:
+        same &= ~spans(n, np.maximum(hi, tokens.starts), tokens.ends)
+    elif shift < 0:
+        same &= ~spans(n, tokens.starts, np.minimum(lo, tokens.ends))
+    bad = running_count((labels != ignore_index) & ~same)
+    before = bad[tokens.starts]
+    has = bad[tokens.ends] > before
+    first = np.searchsorted(bad, before + 1, side="left") - 1  # flat index where the row's count first rises
+    return np.where(has, first - tokens.starts, -1)
+
+
+def _equal_shifted(values: np.ndarray, labels: np.ndarray, shift: int, out: np.ndarray) -> np.ndarray:
+    """``out[t] = labels[t] == values[t + shift]`` where ``t + shift`` lies in the batch, False elsewhere
+    (row bounds are the caller's business)."""
+    n = values.size
+    m = max(n - abs(shift), 0)
+    out[:] = False
+    if shift >= 0:
+        np.equal(labels[:m], values[shift:shift + m], out=out[:m])
+    else:
+        np.equal(labels[n - m:], values[:m], out=out[n - m:])
     return out
+
+
+def spans(n: int, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """A mask of ``n`` flat positions, True within every ``[lo[i], hi[i])`` (ranges must not overlap)."""
+    edges = np.bincount(lo, minlength=n + 1) - np.bincount(hi, minlength=n + 1)
+    return np.cumsum(edges[:n]) > 0

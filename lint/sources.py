@@ -110,7 +110,7 @@ def discover(paths: list[str]) -> list[Shard]:
 def _walk(folder: str) -> list[str]:
     out = []
     for root, dirs, files in os.walk(folder):
-        dirs.sort()
+        dirs[:] = sorted(d for d in dirs if not d.startswith("."))  # hidden folders are skipped like hidden files
         out += [os.path.join(root, f) for f in sorted(files) if not f.startswith(".")]
     return out
 
@@ -195,7 +195,9 @@ class ParquetReader(ShardReader):
         return 1.0
 
     def _batches(self) -> Iterator[Batch]:
-        pf = pq.ParquetFile(self.shard.path, memory_map=False)
+        # Verify page checksums where the writer stored them: a flipped byte in an uncompressed page otherwise
+        # decodes silently into wrong token ids.
+        pf = pq.ParquetFile(self.shard.path, memory_map=False, page_checksum_verification=True)
         self._resources.append(pf)
         meta = pf.metadata
         if meta.num_rows == 0:
@@ -298,6 +300,7 @@ class JsonLinesReader(ShardReader):
             carry = data[cut + 1:]
             batch = self._parse(lines, line_no, last_cut_off=False)
             line_no += len(lines)
+            self._row = line_no  # a read failure from here on stops at the first line not yet read
             any_record |= len(batch) > 0
             yield batch
         if carry.strip():
@@ -353,10 +356,8 @@ class JsonLinesReader(ShardReader):
 def _to_table(records: list[dict], rows: list[int], problems: list[Problem]) -> pa.Table:
     if not records:
         return pa.table({})
-    try:
-        return pa.Table.from_pylist(records)
-    except (pa.ArrowInvalid, pa.ArrowTypeError, OverflowError):
-        pass
+    # Column names from every record, not only the first (pa.Table.from_pylist takes them from the first row and
+    # would silently drop a column that row lacks).
     names = list(dict.fromkeys(k for r in records for k in r))
     columns = {}
     for name in names:

@@ -9,9 +9,9 @@ from lint.findings import Level
 from lint.rule import Rule, absolute_rows
 
 RECORD_PROBLEMS = {
-    "bad-json": "lines that are not valid JSON",
-    "not-object": "lines holding a JSON value that is not an object",
-    "cut-off": "a last line cut off mid-record (the file ends without a newline inside a record)",
+    "bad-json": "line(s) that are not valid JSON",
+    "not-object": "line(s) holding a JSON value that is not an object",
+    "cut-off": "last line cut off mid-record (the file ends without a newline inside a record)",
 }
 
 

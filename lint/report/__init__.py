@@ -12,6 +12,7 @@ def write_atomic(path: str, data: bytes) -> None:
     os.makedirs(folder, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=".corpuscle-", suffix=".tmp", dir=folder)
     try:
+        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes the file private (0600); a report is an ordinary file
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()
@@ -23,3 +24,10 @@ def write_atomic(path: str, data: bytes) -> None:
         except OSError:
             pass
         raise
+
+
+def _umask() -> int:
+    """The process's file-creation mask (read by setting and restoring it)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask

@@ -23,7 +23,9 @@ def _num(value) -> str:
 
 
 def _wrap(text: str, indent: str) -> list[str]:
-    return textwrap.wrap(text, WIDTH, initial_indent=indent, subsequent_indent=indent) or [indent]
+    # Never break inside a word or at its hyphens: rule ids, kinds and shard paths must stay copyable.
+    return textwrap.wrap(text, WIDTH, initial_indent=indent, subsequent_indent=indent, break_long_words=False,
+                         break_on_hyphens=False) or [indent]
 
 
 def _locations(finding) -> str:

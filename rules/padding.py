@@ -1,0 +1,275 @@
+"""Padding that leaks into training: labels trained on padding, an attention mask that disagrees with the padding,
+and real separators never trained on because the pad id equals the eos id.
+
+Where padding is, per position:
+
+* with an ``attention_mask`` column: padding is where the mask is 0, real where it is not 0 (a mask holding
+  document numbers, 1 2 2 3 0 0, counts as real wherever it is not 0);
+* without one, from ``pad_id``: the run of pad ids at the end of a row (right padding) and the run at its start
+  (left padding). When the pad id is also the eos id, the first token of the end run is taken as the row's real
+  eos and the start run is left undecided (a packed window may start on the eos of the previous document); when
+  it is the bos id (and not the eos id), the last token of the start run is the real bos and the end run is left
+  undecided. Pad ids inside a row are neither padding nor real.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from lint.batch import Flat, is_integer_list
+from lint.findings import Finding, Level
+from lint.rule import Rule, absolute_rows, consistent, pct, share
+
+
+# -- per-row arithmetic over flat arrays --------------------------------------------------------------------------
+
+def _cumulative(flat: Flat, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per position: how many positions of its row before it, and at or after it, have ``mask`` set."""
+    cum = np.concatenate(([0], np.cumsum(mask, dtype=np.int64)))
+    starts, ends = flat.offsets[:-1][flat.row_of], flat.offsets[1:][flat.row_of]
+    here = cum[:-1]
+    return here - cum[starts], cum[ends] - here
+
+
+def _previous(flat: Flat, mask: np.ndarray) -> np.ndarray:
+    """``mask`` of the previous position in the same row (False at row starts)."""
+    out = np.zeros_like(mask)
+    out[1:] = mask[:-1]
+    return out & ~flat.is_first
+
+
+def _next(flat: Flat, mask: np.ndarray) -> np.ndarray:
+    """``mask`` of the next position in the same row (False at row ends)."""
+    out = np.zeros_like(mask)
+    out[:-1] = mask[1:]
+    return out & ~flat.is_last
+
+
+def first_per_row(flat: Flat, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Batch-local rows that have ``mask`` set somewhere, and the 0-based offset of the first such position."""
+    where = np.flatnonzero(mask)
+    rows = flat.row_of[where]
+    first = np.ones(where.size, dtype=bool)
+    first[1:] = rows[1:] != rows[:-1]
+    return rows[first], flat.position[where[first]]
+
+
+class PadRuns:
+    """Padding read from the token ids alone (see the module docstring for the reading).
+
+    ``padding``: positions taken as padding; ``undecided``: pad-id runs that may be real separators; ``non_pad``:
+    positions whose id is not the pad id (real whatever the mask says).
+    """
+
+    def __init__(self, flat: Flat, pad_id: int, eos_id: int | None, bos_id: int | None):
+        is_pad = flat.values == pad_id
+        self.non_pad = ~is_pad
+        before, after = _cumulative(flat, self.non_pad)
+        trailing = is_pad & (after == 0)
+        leading = is_pad & (before == 0) & ~trailing  # a row of nothing but pad ids is read as right padding
+        padding = np.zeros_like(is_pad)
+        self.undecided = np.zeros_like(is_pad)
+        if pad_id == eos_id:
+            padding |= trailing & _previous(flat, trailing)  # the first of the end run is the real eos
+            self.undecided |= leading
+        elif pad_id == bos_id:
+            padding |= leading & _next(flat, leading)  # the last of the start run is the real bos
+            self.undecided |= trailing
+        else:
+            padding |= trailing | leading
+        self.padding = padding
+
+
+#: The mask pattern of a padded row, by padding side.
+PATTERN = {"right": "ones then zeros", "left": "zeros then ones"}
+
+
+# -- the rule -----------------------------------------------------------------------------------------------------
+
+class PaddingLoss(Rule):
+    """Padding must cost nothing but compute: no label is trained on it, the attention mask hides exactly the
+    padding, and the real end of every document is still a target. Checks, per shard: (1) labels that are not the
+    ignore index where the input is padding, or, with shifted labels, where the target (the next position) is
+    padding: the loss is spent predicting filler; (2) attention masks that are not one block of ones and one block
+    of zeros (ones then zeros for right padding, zeros then ones for left padding; the shard's side is inferred from
+    the majority of its padded rows and reported as inferred); (3) with a known pad id, a mask of 1 on a pad-id run
+    at either end of a row (padding attended) or a mask of 0 on a token that is not the pad id (real tokens hidden);
+    (4) when the pad id equals the eos id, real eos tokens (mask 1, or without a mask, not in an undecided run; in
+    both cases not padding as read from the ids) whose label is the ignore index: a pipeline that ignores every
+    label equal to the pad id also ignores the real eos, and the model never learns to stop. The label of an eos at
+    position t is the one at t - 1 with shifted labels and at t with aligned labels; (1) and (4) need the labels
+    column, (4) a known label convention. The report's metrics give the real and pad share of all token slots of the
+    checked shards (real = attention mask not 0, or, without a mask, not in a pad-id run as read above). A shard
+    with neither an attention mask nor a pad id is skipped with a note."""
+
+    id = "padding-loss"
+    level = Level.error
+    summary = ("Labels trained on padding; attention masks inconsistent with padding; real eos never trained on "
+               "because the pad id equals the eos id.")
+    help = ("Build labels from the attention mask, not from token ids: set labels to the ignore index (-100) "
+            "wherever attention_mask is 0 and, with shifted labels, at the last real position of a padded row. "
+            "Build the mask from each row's real length (ones for real tokens, zeros for padding, on one side). "
+            "When the pad id equals the eos id, never ignore labels by token id: give padding its own id, or "
+            "ignore by position so the real eos stays a target.")
+    needs = {"tokens_column": "int-list"}
+
+    def missing(self, batch, settings):
+        reason = super().missing(batch, settings)
+        if reason is None and settings.pad_id is None and not _has(batch, settings.mask_column):
+            reason = (f"no {settings.mask_column!r} column and pad_id is not set or inferred: padding cannot be "
+                      "told from real tokens (give --pad-id)")
+        return reason
+
+    def begin(self, shard, settings):
+        state = super().begin(shard, settings)
+        state.sources = set()  # how padding was told: "attention_mask", "pad_id"
+        return state
+
+    def feed(self, state, batch):
+        s = state.settings
+        batch = consistent(batch, [s.tokens_column, s.labels_column, s.mask_column])
+        flat = batch.flat(s.tokens_column)
+        if flat.values.size == 0:
+            return
+        runs = PadRuns(flat, s.pad_id, s.eos_id, s.bos_id) if s.pad_id is not None else None
+        if _has(batch, s.mask_column):
+            real = batch.flat(s.mask_column).values != 0
+            padding = ~real
+            state.sources.add("attention_mask")
+            self._mask_shape(state, batch, flat, real)
+            if runs is not None:
+                self._hit_rows(state, batch, flat, real & runs.padding, "attended-padding")
+                self._hit_rows(state, batch, flat, padding & runs.non_pad, "masked-real-tokens")
+        else:
+            real = None
+            padding = runs.padding
+            state.sources.add("pad_id")
+        state.count(slots=flat.values.size, padding=int(np.count_nonzero(padding)))
+        if not _has(batch, s.labels_column):
+            return
+        labels = batch.flat(s.labels_column).values
+        ignored = labels == s.ignore_index
+        on_padding = padding | _next(flat, padding) if s.labels == "shifted" else padding
+        self._hit_rows(state, batch, flat, on_padding & ~ignored, "trained-padding")
+        if s.pad_id is not None and s.pad_id == s.eos_id and s.labels is not None:
+            self._eos_targets(state, batch, flat, ignored, real, runs)
+
+    def _mask_shape(self, state, batch, flat, real):
+        """Rows whose mask is not one block of ones and one block of zeros, located for either padding side."""
+        pad = ~real
+        pad_before, _ = _cumulative(flat, pad)
+        real_before, _ = _cumulative(flat, real)
+        real_after_pad = real & (pad_before > 0)  # breaks right padding
+        pad_after_real = pad & (real_before > 0)  # breaks left padding
+        broken = (flat.count_per_row(real_after_pad) > 0) & (flat.count_per_row(pad_after_real) > 0)
+        for side, breaks in (("right", real_after_pad), ("left", pad_after_real)):
+            rows, offsets = first_per_row(flat, breaks & broken[flat.row_of])
+            state.hit(f"mask-shape:{side}", absolute_rows(batch, rows), offsets)
+        padded = (flat.count_per_row(pad) > 0) & (flat.count_per_row(real) > 0)
+        starts_real = real[flat.offsets[:-1][padded]]
+        state.count(right_padded=int(np.count_nonzero(starts_real)), left_padded=int(np.count_nonzero(~starts_real)))
+
+    def _eos_targets(self, state, batch, flat, ignored, real, runs):
+        """Real eos tokens whose label (the one that has the eos as its target) is the ignore index."""
+        s = state.settings
+        eos = flat.values == s.eos_id
+        # with a mask: real = mask not 0, less pad ids read as padding (a mask of 1 there is attended padding)
+        real_eos = eos & ~runs.padding & (real if real is not None else ~runs.undecided)
+        if s.labels == "shifted":
+            checked = real_eos & ~flat.is_first  # an eos at a row start is the target of the previous row
+            label_ignored = _previous(flat, ignored)
+        else:
+            checked = real_eos
+            label_ignored = ignored
+        lost = np.flatnonzero(checked & label_ignored)
+        state.hit("eos-never-trained", absolute_rows(batch, flat.row_of[lost]), flat.position[lost])
+        state.count(real_eos=int(np.count_nonzero(checked)))
+
+    @staticmethod
+    def _hit_rows(state, batch, flat, mask, kind):
+        """Record one instance per affected row (offset of its first position) and count the positions."""
+        rows, offsets = first_per_row(flat, mask)
+        state.hit(kind, absolute_rows(batch, rows), offsets)
+        state.count(**{f"{kind}_positions": int(np.count_nonzero(mask))})
+
+    # -- findings -------------------------------------------------------------------------------------------------
+    def report(self, state):
+        s = state.settings
+        st = state.stats
+        out = []
+        told = " and ".join(sorted(state.sources))
+        hits = state.hits.get("trained-padding")
+        if hits:
+            positions, pads = int(st["trained-padding_positions"]), int(st["padding"])
+            target = " or, with shifted labels, whose target is padding" if s.labels == "shifted" else ""
+            out.append(self.finding(
+                state, "trained-padding",
+                f"{hits.count:,} rows train on padding: {positions:,} labels are not the ignore index "
+                f"{s.ignore_index} at positions that are padding{target} (padding told by {told}; the shard has "
+                f"{pads:,} padding positions). The loss is spent predicting filler. Set labels to {s.ignore_index} "
+                "wherever attention_mask is 0" + (" and at the last real position of a padded row"
+                                                   if s.labels == "shifted" else "") + ".",
+                positions=positions, paddingPositions=pads, paddingFrom=told,
+                labelConvention=s.labels or "unknown"))
+        side_hits = self._side(state)
+        if side_hits:
+            side, hits, right, left = side_hits
+            out.append(Finding.from_hits(
+                self.id, self.level,
+                f"{hits.count:,} rows whose attention_mask is not one block of ones and one block of zeros: real "
+                f"tokens after padding, or holes inside the real tokens. The shard is {side}-padded (inferred "
+                f"from the majority, heuristic: {right:,} padded rows start with real tokens, {left:,} with "
+                f"padding); offset = the first position that breaks {PATTERN[side]}. "
+                "Tokens hidden by a hole are trained on without context, and tokens after the padding attend "
+                "across it. Build the mask from each row's real length.",
+                state.uri, hits, kind="mask-shape", paddingSide=side, rightPaddedRows=right, leftPaddedRows=left))
+        hits = state.hits.get("attended-padding")
+        if hits:
+            positions = int(st["attended-padding_positions"])
+            out.append(self.finding(
+                state, "attended-padding",
+                f"{hits.count:,} rows where attention_mask is 1 on {positions:,} pad-id ({s.pad_id}) tokens of "
+                "the padding run: real tokens attend to padding and the result depends on how much padding a row "
+                "has. Set attention_mask to 0 on padding.", positions=positions, padId=s.pad_id))
+        hits = state.hits.get("masked-real-tokens")
+        if hits:
+            positions = int(st["masked-real-tokens_positions"])
+            out.append(self.finding(
+                state, "masked-real-tokens",
+                f"{hits.count:,} rows where attention_mask is 0 on {positions:,} tokens that are not the pad id "
+                f"({s.pad_id}): real tokens hidden from attention (a mask cut shorter than the tokens, or taken "
+                "from another row). Build the mask from each row's real length.",
+                positions=positions, padId=s.pad_id))
+        hits = state.hits.get("eos-never-trained")
+        if hits:
+            real_eos = int(st["real_eos"])
+            where = "the position before it" if s.labels == "shifted" else "its position"
+            out.append(self.finding(
+                state, "eos-never-trained",
+                f"the pad id equals the eos id ({s.eos_id}), and {hits.count:,} of {real_eos:,} real eos tokens "
+                f"({pct(hits.count, real_eos)}) have the ignore index {s.ignore_index} as their label ({s.labels} "
+                f"labels: the label at {where}): the model never learns to end a document. Labels were likely "
+                "ignored by token id (every label equal to the pad id). Ignore labels by attention mask or "
+                "position, or give padding its own id.",
+                eosId=s.eos_id, realEos=real_eos, share=share(hits.count, real_eos), labelConvention=s.labels))
+        return out
+
+    @staticmethod
+    def _side(state):
+        right, left = int(state.stats["right_padded"]), int(state.stats["left_padded"])
+        side = "left" if left > right else "right"
+        hits = state.hits.get(f"mask-shape:{side}")
+        return (side, hits, right, left) if hits else None
+
+    def corpus(self, states):
+        slots = sum(int(st.stats["slots"]) for st in states)
+        if not slots:
+            return [], {}
+        pads = sum(int(st.stats["padding"]) for st in states)
+        return [], {"realTokenFraction": (slots - pads) / slots, "padTokenFraction": pads / slots}
+
+
+def _has(batch, name) -> bool:
+    return batch.has(name) and is_integer_list(batch.type_of(name))
+
+
+RULES = [PaddingLoss]

@@ -1,0 +1,273 @@
+"""Document separators: every document in a packed stream must be marked off from the next one.
+
+A training shard marks where one document ends and the next begins with a separator token: ``eos`` after each
+document (``separator = "eos-after"``, the default), ``bos`` before each (``"bos-before"``), or both. The helpers
+here also tell real tokens from padding, which the ``document-attention`` rule shares.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from lint.batch import Batch, Flat, is_integer_list
+from lint.findings import Finding, Level
+from lint.rule import Rule, absolute_rows, consistent, pct, share
+
+#: The special-token settings each separator convention depends on.
+SEPARATOR_IDS = {"eos-after": ("eos_id",), "bos-before": ("bos_id",), "both": ("eos_id", "bos_id")}
+
+#: Default of ``tokens_per_separator``: a shard of packed windows with fewer separators than one per this many
+#: tokens is reported as glued together (heuristic; documents of a web or book corpus are far shorter).
+TOKENS_PER_SEPARATOR = 100_000
+
+#: A shard is taken as packed windows (and checked for glued documents) when at most this share of its rows, or
+#: one row, is padded: a packer pads only its last window, a shard of one padded document per row pads most rows.
+PACKED_PADDED_SHARE = 0.01
+
+
+# -- shared helpers: real tokens vs padding ------------------------------------------------------------------
+
+def last_index(flat: Flat, mask: np.ndarray) -> np.ndarray:
+    """Per row, the flat index of the last position where ``mask`` is set, or -1 when there is none."""
+    idx = np.flatnonzero(mask)
+    out = np.full(flat.lengths.size, -1, dtype=np.int64)
+    if idx.size:
+        rows = flat.row_of[idx]
+        last = np.ones(idx.size, dtype=bool)
+        last[:-1] = rows[1:] != rows[:-1]
+        out[rows[last]] = idx[last]
+    return out
+
+
+def first_index(flat: Flat, mask: np.ndarray) -> np.ndarray:
+    """Per row, the flat index of the first position where ``mask`` is set, or -1 when there is none."""
+    idx = np.flatnonzero(mask)
+    out = np.full(flat.lengths.size, -1, dtype=np.int64)
+    if idx.size:
+        rows = flat.row_of[idx]
+        first = np.ones(idx.size, dtype=bool)
+        first[1:] = rows[1:] != rows[:-1]
+        out[rows[first]] = idx[first]
+    return out
+
+
+def real_positions(batch: Batch, tokens: Flat, settings) -> np.ndarray:
+    """True at every flat position that holds a real token rather than padding.
+
+    The attention mask decides when the batch has one (``attention_mask != 0``). Without it, a run of ``pad_id``
+    at the end of a row is padding; when ``pad_id`` equals ``eos_id`` the first id of that run is kept as the
+    eos that ends the row's last document and only the rest counts as padding. Without either, every token is
+    real.
+    """
+    name = settings.mask_column
+    if batch.has(name) and is_integer_list(batch.type_of(name)):
+        mask = batch.flat(name)
+        if np.array_equal(mask.lengths, tokens.lengths):
+            return mask.values != 0
+    pad = settings.pad_id
+    if pad is None:
+        return np.ones(tokens.values.size, dtype=bool)
+    end = last_index(tokens, tokens.values != pad) - tokens.offsets[:-1] + 1  # past the last non-pad token
+    end = np.maximum(end, 0)
+    if pad == settings.eos_id:
+        end = np.minimum(end + 1, tokens.lengths)
+    return tokens.position < end[tokens.row_of]
+
+
+def position_restarts(batch: Batch, tokens: Flat, settings, real: np.ndarray) -> np.ndarray | None:
+    """Flat indices where position_ids restart at 0 inside a row, between two real tokens: document starts
+    after the first document of the row. None when the batch has no usable position_ids column."""
+    name = settings.positions_column
+    if not (batch.has(name) and is_integer_list(batch.type_of(name))):
+        return None
+    positions = batch.flat(name)
+    if not np.array_equal(positions.lengths, tokens.lengths):
+        return None
+    before_real = np.zeros_like(real)
+    before_real[1:] = real[:-1]
+    before_real &= ~tokens.is_first
+    return np.flatnonzero((positions.values == 0) & real & before_real)
+
+
+def missing_ids(settings, keys) -> str | None:
+    """Why a rule cannot run without the special ids ``keys`` under the shard's separator convention."""
+    for key in keys:
+        if getattr(settings, key) is None:
+            return (f"{key} is not set and could not be inferred, and separator = {settings.separator} needs it "
+                    f"(give --{key.replace('_', '-')})")
+    return None
+
+
+def parallel_columns(settings) -> list[str]:
+    return [settings.tokens_column, settings.mask_column, settings.positions_column]
+
+
+# -- the rule -------------------------------------------------------------------------------------------------
+
+class MissingSeparator(Rule):
+    """Documents packed into a window must be separated, or the model learns to continue one document with the
+    next and never learns where a document ends (and, at inference, never stops). Four checks, under the shard's
+    separator convention (eos-after, bos-before or both).
+
+    (1) Boundaries: with position_ids, every document start after the first in a row (position_ids restart at 0
+    inside the row) must follow an eos (eos-after), begin with a bos (bos-before), or both; each boundary
+    without it is an instance, offset = the document's first token.
+
+    (2) Padded rows (attention_mask zeros, or a trailing run of pad_id): under eos-after and both, the last real
+    token must be eos, since nothing follows the document; offset = the last real token.
+
+    (3) Glued documents (a heuristic, reported as such): in a shard of packed windows without any position
+    restart, the full rows of exactly seq_len tokens must hold at least one separator per tokens_per_separator
+    tokens; instances = the windows without any separator. A shard counts as packed when at most one row, or 1%
+    of its rows, is padded (a packer pads only its last window; a shard that pads most rows holds one document
+    per row, whose ends check 2 covers).
+
+    (4) Doubled separators: eos eos or bos bos next to each other among real tokens (a tokenizer and a template
+    both adding one); offset = the second. When pad_id equals eos_id, trailing eos padding is padding, not a
+    doubled separator (the attention mask decides when present).
+
+    Needs eos_id (eos-after), bos_id (bos-before) or both (both), given or inferred; otherwise the shard is
+    skipped with a note. A known bos_id is also checked for doubling under eos-after.
+    """
+
+    id = "missing-separator"
+    level = Level.error
+    summary = "Document boundaries without the separator; shards with no separators at all; doubled separators."
+    help = ("Append eos after every document (or prepend bos, per your convention) before packing, exactly once: "
+            "check that the tokenizer's add_eos/add_bos setting and the packing step agree, so that neither both "
+            "nor none of them add it. If the shard uses another convention, set separator = \"eos-after\", "
+            "\"bos-before\" or \"both\". Option tokens_per_separator (default 100,000): a shard of packed windows "
+            "with fewer separators than one per this many tokens is reported as glued (heuristic).")
+    needs = {"tokens_column": "int-list"}
+    options = {"tokens_per_separator": TOKENS_PER_SEPARATOR}
+
+    def __init__(self, **options):
+        super().__init__(**options)
+        n = self.opts["tokens_per_separator"]
+        if isinstance(n, bool) or not isinstance(n, int) or n < 1:
+            raise ValueError(f"rule {self.id}: tokens_per_separator must be a whole number >= 1, got {n!r} "
+                             "(hint: 100000 reports a shard with fewer than one separator per 100,000 tokens)")
+
+    def missing(self, batch, settings):
+        return missing_ids(settings, SEPARATOR_IDS[settings.separator]) or super().missing(batch, settings)
+
+    def feed(self, state, batch):
+        s = state.settings
+        batch = consistent(batch, parallel_columns(s))
+        tokens = batch.flat(s.tokens_column)
+        values = tokens.values
+        real = real_positions(batch, tokens, s)
+        want_eos = s.separator in ("eos-after", "both")
+        want_bos = s.separator in ("bos-before", "both")
+        state.count(rows=tokens.lengths.size, tokens=int(real.sum()))
+        is_eos = real & (values == s.eos_id) if s.eos_id is not None else np.zeros(values.size, dtype=bool)
+        is_bos = real & (values == s.bos_id) if s.bos_id is not None else np.zeros(values.size, dtype=bool)
+        state.count(eos=int(is_eos.sum()), bos=int(is_bos.sum()))
+
+        # document boundaries marked by position_ids
+        starts = position_restarts(batch, tokens, s, real)
+        if starts is not None:
+            state.count(boundaries=starts.size)
+            if want_eos:
+                bad = starts[values[starts - 1] != s.eos_id]
+                state.hit("boundary-no-eos", absolute_rows(batch, tokens.row_of[bad]), tokens.position[bad])
+            if want_bos:
+                bad = starts[values[starts] != s.bos_id]
+                state.hit("boundary-no-bos", absolute_rows(batch, tokens.row_of[bad]), tokens.position[bad])
+
+        # padded rows: the last document ends before the row does, so it must end with eos
+        real_count = tokens.count_per_row(real)
+        padded = (real_count < tokens.lengths) & (real_count > 0)
+        state.count(padded_rows=int(padded.sum()))
+        if want_eos:
+            last = last_index(tokens, real)
+            rows = np.flatnonzero(padded)
+            rows = rows[values[last[rows]] != s.eos_id]
+            state.hit("unterminated-row", absolute_rows(batch, rows), last[rows] - tokens.offsets[rows])
+
+        # packed windows (full rows of seq_len tokens): are there separators at all?
+        if s.seq_len is not None:
+            window = (tokens.lengths == s.seq_len) & (real_count == tokens.lengths)
+            in_window = window[tokens.row_of]
+            state.count(windows=int(window.sum()), window_tokens=int(window.sum()) * s.seq_len)
+            for name, hits, wanted in (("eos", is_eos, want_eos), ("bos", is_bos, want_bos)):
+                if wanted:
+                    per_row = tokens.count_per_row(hits & in_window)
+                    state.count(**{f"window_{name}": int(per_row[window].sum())})
+                    state.hit(f"no-{name}", absolute_rows(batch, np.flatnonzero(window & (per_row == 0))))
+
+        # doubled separators among real tokens (offset = the second of the pair)
+        pair = real[:-1] & real[1:] & ~tokens.is_last[:-1]
+        doubled_bos = s.bos_id is not None and s.bos_id != s.eos_id
+        for name, mark, check in (("eos", is_eos, s.eos_id is not None), ("bos", is_bos, doubled_bos)):
+            if check and not (s.separator == "both" and s.bos_id == s.eos_id):
+                second = np.flatnonzero(pair & mark[:-1] & mark[1:]) + 1
+                state.hit(f"doubled-{name}", absolute_rows(batch, tokens.row_of[second]), tokens.position[second])
+
+    def report(self, state):
+        s, st, out = state.settings, state.stats, []
+        ids = {"eos": s.eos_id, "bos": s.bos_id}
+        fix = {"eos": "Append eos after every document before packing; check that the tokenizer's add_eos setting "
+                      "and the packing step agree.",
+               "bos": "Prepend bos to every document before packing; check that the tokenizer's add_bos setting "
+                      "and the packing step agree."}
+        hits = state.hits
+        for name, verb in (("eos", "are not preceded by eos"), ("bos", "do not begin with bos")):
+            kind = f"boundary-no-{name}"
+            if hits.get(kind):
+                n, total = hits[kind].count, st["boundaries"]
+                out.append(self.finding(
+                    state, kind,
+                    f"{n:,} of {total:,} document boundaries ({pct(n, total)}) {verb} (id {ids[name]}) under "
+                    f"separator = {s.separator}: one document runs into the next and the model never learns where "
+                    f"a document ends. {fix[name]}",
+                    boundaries=int(total), missing=n, share=share(n, total), separator=s.separator,
+                    separatorId=ids[name]))
+        if hits.get("unterminated-row"):
+            n, total = hits["unterminated-row"].count, st["padded_rows"]
+            out.append(self.finding(
+                state, "unterminated-row",
+                f"{n:,} of {total:,} padded rows ({pct(n, total)}) end their last document without eos (id "
+                f"{s.eos_id}) although the row is not full (offset = the last real token): the document stops, but "
+                f"the model is never shown its end. {fix['eos']}",
+                paddedRows=int(total), missing=n, share=share(n, total), separator=s.separator, separatorId=s.eos_id))
+        if not st["boundaries"] and st["padded_rows"] <= max(1, int(st["rows"] * PACKED_PADDED_SHARE)):
+            out += self._glued(state, ids, fix)
+        for name in ("eos", "bos"):
+            kind = f"doubled-{name}"
+            if hits.get(kind):
+                n, total = hits[kind].count, st[name]
+                out.append(self.finding(
+                    state, kind,
+                    f"{n:,} places where {name} (id {ids[name]}) directly follows another {name} (offset = the "
+                    f"second; {pct(n, total)} of {total:,} real {name} tokens): usually the tokenizer and a "
+                    f"template or the packing step both add it, which trains the model on empty documents. Let "
+                    f"exactly one step add the separator.",
+                    doubled=n, separatorCount=int(total), separatorId=ids[name]))
+        return out
+
+    def _glued(self, state, ids, fix) -> list[Finding]:
+        """Shards of packed windows with (almost) no separator: heuristic, reported as such."""
+        s, st, out = state.settings, state.stats, []
+        per = self.opts["tokens_per_separator"]
+        tokens = st["window_tokens"]
+        for name in ("eos", "bos"):
+            kind = f"no-{name}"
+            if kind not in state.hits or not tokens:
+                continue
+            seen = st[f"window_{name}"]
+            if seen * per >= tokens:
+                continue
+            found = "no" if not seen else f"only {seen:,}"
+            out.append(self.finding(
+                state, kind,
+                f"{found} {name} (id {ids[name]}) in {tokens:,} tokens of {st['windows']:,} packed windows of "
+                f"{s.seq_len:,} tokens (heuristic: fewer than one per {per:,} tokens; {state.hits[kind].count:,} "
+                f"windows hold none, listed): documents appear glued together with nothing to mark where one ends. "
+                f"{fix[name]} If each row is instead one long document cut at seq_len, or the windows really hold "
+                "single long documents, raise tokens_per_separator.",
+                windows=int(st["windows"]), windowTokens=int(tokens), separatorCount=int(seen),
+                tokensPerSeparator=per, separatorId=ids[name], heuristic=True))
+        return out
+
+
+RULES = [MissingSeparator]
