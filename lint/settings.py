@@ -69,6 +69,10 @@ class Settings:
             raise SettingsError(f"ignore_index must be an integer label value, got {self.ignore_index!r}")
         if self.tokenizer is not None and not isinstance(self.tokenizer, str):
             raise SettingsError(f"tokenizer must be the path of a tokenizer JSON file, got {self.tokenizer!r}")
+        if self.tokenizer is not None:
+            from .tokenize import check_tokenizer  # local: the tokenizers library is an optional dependency
+
+            check_tokenizer(self.tokenizer)  # library missing, file missing or unreadable: a usage error
         if not all(isinstance(name, str) for name in (*self.only, *self.skip)):
             raise SettingsError("only and skip take rule ids, e.g. only = [\"label-alignment\"]")
         for key in ("eos_id", "bos_id", "pad_id"):

@@ -80,7 +80,7 @@ def discover(paths: list[str]) -> list[Shard]:
     found: dict[str, Shard] = {}
     missing = []
     for given in paths:
-        if any(ch in given for ch in "*?["):
+        if any(ch in given for ch in "*?[") and not os.path.exists(given):  # "part[1].jsonl" may be a name
             matches = sorted(glob.glob(given, recursive=True))
             candidates = [(m, m) for m in matches if os.path.isfile(m)]
             for m in matches:
@@ -197,7 +197,10 @@ class ParquetReader(ShardReader):
     def _batches(self) -> Iterator[Batch]:
         # Verify page checksums where the writer stored them: a flipped byte in an uncompressed page otherwise
         # decodes silently into wrong token ids.
-        pf = pq.ParquetFile(self.shard.path, memory_map=False, page_checksum_verification=True)
+        try:
+            pf = pq.ParquetFile(self.shard.path, memory_map=False, page_checksum_verification=True)
+        except TypeError:  # pyarrow < 15 has no page checksum verification
+            pf = pq.ParquetFile(self.shard.path, memory_map=False)
         self._resources.append(pf)
         meta = pf.metadata
         if meta.num_rows == 0:
@@ -257,6 +260,8 @@ class ArrowReader(ShardReader):
             col = rb.column(self.tokens_column)
             if hasattr(col, "offsets"):
                 avg = (col.offsets[-1].as_py() - col.offsets[0].as_py()) / rb.num_rows
+            elif pa.types.is_fixed_size_list(col.type):  # no offsets: every row holds list_size tokens
+                avg = col.type.list_size
         size = _rows_per_batch(avg, self.batch_tokens)
         for start in range(0, rb.num_rows, size):
             yield rb.slice(start, size)
@@ -287,10 +292,14 @@ class JsonLinesReader(ShardReader):
         carry = b""
         line_no = 0
         any_record = False
+        first = True
         while True:
             chunk = stream.read(self.batch_bytes)
             if not chunk:
                 break
+            if first and chunk.startswith(b"\xef\xbb\xbf"):  # a UTF-8 byte-order mark is not part of the record
+                chunk = chunk[3:]
+            first = False
             data = carry + chunk
             cut = data.rfind(b"\n")
             if cut < 0:

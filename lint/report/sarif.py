@@ -2,6 +2,8 @@
 result whose ``properties`` carry the count, the instances (row, offset) and the rule's evidence."""
 from __future__ import annotations
 
+from urllib.parse import quote
+
 import orjson
 
 from .. import __version__
@@ -9,6 +11,11 @@ from ..findings import Finding
 
 SCHEMA_URI = "https://docs.oasis-open.org/sarif/sarif/v2.1.0/errata01/os/schemas/sarif-schema-2.1.0.json"
 INFORMATION_URI = "https://pypi.org/project/corpuscle/"
+
+
+def artifact_uri(uri: str) -> str:
+    """The shard's uri as given, percent-encoded where a URI reference needs it (spaces, '%', '#', '?')."""
+    return quote(uri, safe="/:@!$&'()*+,;=-._~")
 
 
 def _rule_entry(rule) -> dict:
@@ -27,7 +34,7 @@ def _location(finding: Finding, artifact_index: dict[str, int]) -> list[dict]:
     uris = [finding.uri] if finding.uri else list(dict.fromkeys(finding.instance_uris or []))[:10]
     locations = []
     for uri in uris:
-        physical: dict = {"artifactLocation": {"uri": uri}}
+        physical: dict = {"artifactLocation": {"uri": artifact_uri(uri)}}
         if uri in artifact_index:
             physical["artifactLocation"]["index"] = artifact_index[uri]
         if finding.start_line is not None and uri == finding.uri:
@@ -59,7 +66,7 @@ def _notification(note) -> dict:
     if note.rule_id:
         out["associatedRule"] = {"id": note.rule_id}
     if note.uri:
-        out["locations"] = [{"physicalLocation": {"artifactLocation": {"uri": note.uri}}}]
+        out["locations"] = [{"physicalLocation": {"artifactLocation": {"uri": artifact_uri(note.uri)}}}]
     return out
 
 
@@ -74,7 +81,7 @@ def to_sarif(report) -> dict:
             "informationUri": INFORMATION_URI,
             "rules": [_rule_entry(rule) for rule in report.rules],
         }},
-        "artifacts": [{"location": {"uri": s.uri}, "length": s.length} for s in report.shards],
+        "artifacts": [{"location": {"uri": artifact_uri(s.uri)}, "length": s.length} for s in report.shards],
         "invocations": [{
             "executionSuccessful": not any(n.level.name == "error" for n in report.notes),
             "toolExecutionNotifications": [_notification(n) for n in report.notes],
