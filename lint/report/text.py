@@ -2,6 +2,7 @@
 locations and fix; then the corpus figures, what was inferred or skipped, and the verdict."""
 from __future__ import annotations
 
+import re
 import textwrap
 
 from .. import __version__
@@ -41,9 +42,53 @@ def _locations(finding) -> str:
     return ", ".join(shown) + (f" (+{more:,} more)" if more > 0 else "")
 
 
+#: Corpus figures with a section of their own instead of a line among the others.
+SECTIONS = ("tokenBudget",)
+
+
+def _words(key: str) -> str:
+    """camelCase key to words: 'bestFitDecreasing' -> 'best fit decreasing'."""
+    return re.sub(r"(?<!^)(?=[A-Z])", " ", key).lower()
+
+
+def _pct(value) -> str:
+    return f"{value:.1f}%" if isinstance(value, (int, float)) else "?"
+
+
+def _budget_lines(budget: dict) -> list[str]:
+    """The token budget as built next to each layout the report gives, one line each."""
+    seq_len = budget.get("seqLen")
+    if isinstance(seq_len, list):
+        window = "seq_len " + " / ".join(_num(s) for s in seq_len) if seq_len else "seq_len unknown"
+    else:
+        window = f"seq_len {_num(seq_len)}" if seq_len else "seq_len unknown"
+    head = (f"Token budget ({budget.get('unit', 'tokens')}; {window}; {_num(budget.get('documents', 0))} documents, "
+            f"{_num(budget.get('documentTokens', 0))} document tokens)")
+    lines = [head, "  (saves: share of the as-built slots a layout would not need; negative when it needs more)"]
+    built = budget.get("asBuilt") or {}
+    layouts = budget.get("layouts") or {}
+    rows = [("as built", built)] + [(str(entry.get("name") or _words(key)), entry) for key, entry in layouts.items()]
+    width = max(len(name) for name, _ in rows)
+    for name, entry in rows:
+        text = (f"  {name.ljust(width)}  {_num(entry.get('windows', 0)):>11} windows  "
+                f"{_num(entry.get('slots', 0)):>13} slots  padding {_pct(entry.get('paddingPct')):>6}")
+        if entry is built:
+            bound = "at least " if built.get("truncatedIsLowerBound") and built.get("truncated") else ""
+            text += f"  truncated {bound}{_num(built.get('truncated', 0))} ({_pct(built.get('truncatedPct'))})"
+        else:
+            text += f"  dropped {_pct(entry.get('droppedPct')):>6}  saves {_pct(entry.get('slotsSavedPct'))}"
+        lines.append(text)
+    if "lowerBound" in budget:
+        lines.append(f"  {'lower bound'.ljust(width)}  {_num(budget['lowerBound']):>11} windows (no layout that keeps "
+                     "every token needs fewer)")
+    return lines
+
+
 def _metric_lines(metrics: dict) -> list[str]:
     lines = []
     for key, value in metrics.items():
+        if key in SECTIONS:
+            continue
         if isinstance(value, dict):
             inner = ", ".join(f"{k} {_num(v)}" for k, v in value.items())
             lines += _wrap(f"{key}: {inner}", "  ")
@@ -67,6 +112,8 @@ def render(report) -> str:
         out += ["No findings.", ""]
     out.append("Corpus figures")
     out += _metric_lines(m)
+    if isinstance(m.get("tokenBudget"), dict):
+        out += [""] + _budget_lines(m["tokenBudget"])
     notes = [n for n in report.notes if n.level != Level.note or not n.message.startswith("skipped")]
     skipped = [n for n in report.notes if n.level == Level.note and n.message.startswith("skipped")]
     if notes:

@@ -1,0 +1,540 @@
+"""Documents of a shard: where each one starts, how long it is, and whether its window cut it.
+
+A training shard stores documents in one of a few arrangements, and the length of a document is read differently
+in each:
+
+``text``
+    Raw text, one document per row.  Its length is counted in tokens with a tokenizer file (``tokenizer``
+    setting, :mod:`lint.tokenize`), otherwise in UTF-8 bytes; the unit travels with every figure.
+``position-restarts``
+    Token rows with ``position_ids``: a document starts wherever the position restarts at 0.  A row whose first
+    position is not 0 continues the previous row's last document, so a document can run over several rows (and
+    batches): its length is the sum of its pieces.
+``separators``
+    Packed token rows without ``position_ids``: a document ends at its separator (``eos`` after each document, or
+    starts at ``bos`` under ``separator = "bos-before"``), joined across rows like above.  A padded row ends its
+    last document at the padding.
+``one-per-row``
+    Token rows that each hold at most one document (typically padded to the window): the row's real tokens are
+    the document.
+
+The arrangement of a token shard is inferred once, from its first batch (:func:`infer_arrangement`): position_ids
+decide when present; otherwise a separator inside a row (not as its last real token) means packed rows
+(``separators``); else one document per row.  The choice is a heuristic and is reported with its reason.
+
+Real tokens are told from padding by the attention mask (non-zero) when there is one, else as the row's tokens up
+to its last non-``pad_id`` token (when ``pad_id`` equals ``eos_id``, the first pad is kept as the row's eos),
+else every token is real.
+
+A document is **cut** when its last token is the last token of a full row (no padding, at least ``seq_len``
+tokens), it is not ``eos``, and the next row does not continue it: the document went on beyond the window and the
+rest is not in the row.  This needs ``eos_id`` and a separator convention with ``eos`` after each document.
+
+Everything per batch is a handful of whole-array passes (a comparison, a ``flatnonzero``, at most one cumulative
+count when there is padding); per-document work is on arrays the size of the number of documents, and locations
+are looked up only for the few documents that are reported.  :class:`DocumentTally` carries the one open document
+across batches and keeps the lengths as a :class:`LengthHistogram`, so a shard's state stays small.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Callable
+
+import numpy as np
+
+from .batch import Batch, Flat, is_integer_list
+
+POSITIONS = "position-restarts"
+SEPARATORS = "separators"
+ONE_PER_ROW = "one-per-row"
+TEXT = "text"
+
+#: Quantiles reported for document lengths (percent), and how they are computed.
+QUANTILES = (50, 90, 99)
+QUANTILE_METHOD = "linear interpolation between closest ranks (numpy.percentile default)"
+
+
+# -- length histogram ---------------------------------------------------------------------------------------
+
+class LengthHistogram:
+    """Counts of documents per length: exact, mergeable, and small.
+
+    Lengths below :attr:`DENSE` are counted in a dense array while a shard streams; longer ones are kept as
+    values (there are at most ``tokens / DENSE`` of them).  :meth:`compact` turns both into sorted
+    ``sizes``/``counts`` (one entry per distinct length), the form that travels between processes and that
+    :mod:`lint.packing` takes (``counts=``).
+    """
+
+    DENSE = 1 << 15
+
+    def __init__(self):
+        self._dense: np.ndarray | None = None
+        self._long: list[np.ndarray] = []
+        self._long_size = 0
+        self._sizes = np.zeros(0, dtype=np.int64)
+        self._counts = np.zeros(0, dtype=np.int64)
+
+    def add(self, lengths) -> None:
+        lengths = np.asarray(lengths, dtype=np.int64).ravel()
+        if lengths.size == 0:
+            return
+        short = lengths < self.DENSE
+        if not short.all():
+            self._long.append(lengths[~short])
+            self._long_size += self._long[-1].size
+            lengths = lengths[short]
+            if self._long_size > self.DENSE:
+                self._fold_long()
+        if lengths.size:
+            if self._dense is None:
+                self._dense = np.zeros(self.DENSE, dtype=np.int64)
+            counted = np.bincount(lengths)
+            self._dense[:counted.size] += counted
+
+    def add_counts(self, sizes, counts) -> None:
+        """Add ``counts[i]`` documents of length ``sizes[i]``."""
+        sizes = np.asarray(sizes, dtype=np.int64)
+        counts = np.asarray(counts, dtype=np.int64)
+        self.compact()
+        self._sizes, self._counts = _merge(self._sizes, self._counts, sizes, counts)
+
+    def _fold_long(self) -> None:
+        values = np.concatenate(self._long)
+        self._long, self._long_size = [], 0
+        sizes, counts = np.unique(values, return_counts=True)
+        self._sizes, self._counts = _merge(self._sizes, self._counts, sizes, counts.astype(np.int64))
+
+    def compact(self) -> "LengthHistogram":
+        """Fold everything into sorted ``sizes``/``counts`` (and free the dense array)."""
+        if self._long:
+            self._fold_long()
+        if self._dense is not None:
+            sizes = np.flatnonzero(self._dense)
+            self._sizes, self._counts = _merge(self._sizes, self._counts, sizes, self._dense[sizes])
+            self._dense = None
+        return self
+
+    @property
+    def sizes(self) -> np.ndarray:
+        return self.compact()._sizes
+
+    @property
+    def counts(self) -> np.ndarray:
+        return self.compact()._counts
+
+    @property
+    def documents(self) -> int:
+        return int(self.counts.sum())
+
+    @property
+    def tokens(self) -> int:
+        return int(np.dot(self.sizes, self.counts)) if self.sizes.size else 0
+
+    @property
+    def max(self) -> int:
+        return int(self.sizes[-1]) if self.sizes.size else 0
+
+    def quantiles(self, percents=QUANTILES) -> dict[str, float]:
+        """``{"p50": ..., "p90": ..., "p99": ...}`` of the lengths, as :func:`numpy.percentile` gives them with its
+        default method (linear interpolation between the closest ranks), computed from the counts."""
+        return {f"p{p:g}": percentile(self.sizes, self.counts, p) for p in percents}
+
+    def expand(self) -> np.ndarray:
+        """Every length once per document (``np.repeat``; for tests and small shards)."""
+        return np.repeat(self.sizes, self.counts)
+
+    @classmethod
+    def merged(cls, histograms) -> "LengthHistogram":
+        out = cls()
+        for h in histograms:
+            out.add_counts(h.sizes, h.counts)
+        return out
+
+    def __getstate__(self):
+        self.compact()
+        return dict(self.__dict__)
+
+
+def _merge(sizes_a, counts_a, sizes_b, counts_b) -> tuple[np.ndarray, np.ndarray]:
+    if sizes_b.size == 0:
+        return sizes_a, counts_a
+    both = np.concatenate([sizes_a, sizes_b])
+    weights = np.concatenate([counts_a, counts_b])
+    sizes, inverse = np.unique(both, return_inverse=True)
+    counts = np.zeros(sizes.size, dtype=np.int64)
+    np.add.at(counts, inverse, weights)
+    return sizes, counts
+
+
+def percentile(sizes: np.ndarray, counts: np.ndarray, percent: float) -> float:
+    """The ``percent`` percentile of a length histogram, exactly as ``numpy.percentile`` (method ``"linear"``,
+    its default) gives it for the expanded lengths: virtual index ``(n - 1) * q``, linear interpolation between
+    the two closest ranks (numpy's own interpolation formula, so results agree to the last bit)."""
+    n = int(counts.sum())
+    if n == 0:
+        return 0.0
+    q = np.true_divide(percent, 100)
+    virtual = (n - 1) * q
+    lower = int(np.floor(virtual))
+    upper = min(lower + 1, n - 1)
+    cum = np.cumsum(counts)
+    a = sizes[np.searchsorted(cum, lower, side="right")]
+    b = sizes[np.searchsorted(cum, upper, side="right")]
+    t = virtual - lower
+    diff = b - a
+    return float(b - diff * (1 - t)) if t >= 0.5 else float(a + diff * t)
+
+
+# -- real tokens ----------------------------------------------------------------------------------------------
+
+def _running(mask: np.ndarray) -> np.ndarray:
+    """``out[i]`` = set positions in ``mask[:i]`` (length N+1), int32 when it fits."""
+    dtype = np.int32 if mask.size < np.iinfo(np.int32).max else np.int64
+    out = np.zeros(mask.size + 1, dtype=dtype)
+    np.cumsum(mask, dtype=dtype, out=out[1:])
+    return out
+
+
+class RealTokens:
+    """Which flat positions of a token column hold real tokens, not padding.
+
+    ``mask`` is None when every position is real; ``run`` is then None too (the running count is the index
+    itself).  ``per_row`` is the real tokens of each row.
+    """
+
+    def __init__(self, mask: np.ndarray | None, run: np.ndarray | None, per_row: np.ndarray):
+        self.mask = mask
+        self.run = run
+        self.per_row = per_row
+
+    @property
+    def total(self) -> int:
+        return int(self.per_row.sum())
+
+    def upto(self, index: np.ndarray) -> np.ndarray:
+        """Real tokens before each flat index."""
+        return np.asarray(index, dtype=np.int64) if self.run is None else self.run[index].astype(np.int64)
+
+    def first_from(self, index: np.ndarray) -> np.ndarray:
+        """The first real position at or after each flat index (few indices: binary search)."""
+        if self.run is None:
+            return np.asarray(index, dtype=np.int64)
+        return np.searchsorted(self.run, self.run[index] + 1, side="left") - 1
+
+    @classmethod
+    def of(cls, batch: Batch, tokens: Flat, settings) -> "RealTokens":
+        n = tokens.values.size
+        name = settings.mask_column
+        if batch.has(name) and is_integer_list(batch.type_of(name)):
+            mask_col = batch.flat(name)
+            if np.array_equal(mask_col.lengths, tokens.lengths):
+                real = mask_col.values != 0
+                if np.count_nonzero(real) == n:
+                    return cls(None, None, tokens.lengths)
+                run = _running(real)
+                return cls(real, run, (run[tokens.ends] - run[tokens.starts]).astype(np.int64))
+        pad = settings.pad_id
+        lengths = tokens.lengths
+        nonempty = lengths > 0
+        if pad is None or n == 0:
+            return cls(None, None, lengths)
+        padded = np.zeros(lengths.size, dtype=bool)
+        padded[nonempty] = tokens.values[tokens.ends[nonempty] - 1] == pad
+        if not padded.any():
+            return cls(None, None, lengths)
+        # Past the last non-pad token of each padded row: the first index where the running count of non-pad
+        # tokens reaches the row's total (rows-sized binary search over one cumulative count).
+        nonpad = _running(tokens.values != pad)
+        rows = np.flatnonzero(padded)
+        total = nonpad[tokens.ends[rows]]
+        end = np.maximum(np.searchsorted(nonpad, total, side="left"), tokens.starts[rows])
+        has_real = total > nonpad[tokens.starts[rows]]
+        if pad == settings.eos_id:  # the first pad is the eos that ends the row's last document
+            end = np.where(has_real, np.minimum(end + 1, tokens.ends[rows]), end)
+        per_row = lengths.copy()
+        per_row[rows] = end - tokens.starts[rows]
+        # Real mask: +1 at each row start, -1 past its last real token, accumulated (int8, one pass).
+        step = np.zeros(n + 1, dtype=np.int8)
+        np.add.at(step, tokens.starts[nonempty], 1)
+        np.subtract.at(step, tokens.starts[nonempty] + per_row[nonempty], 1)
+        real = np.cumsum(step[:-1], dtype=np.int8).view(np.bool_)
+        return cls(real, _running(real), per_row)
+
+
+# -- arrangement ------------------------------------------------------------------------------------------------
+
+def _positions(batch: Batch, tokens: Flat, settings) -> Flat | None:
+    name = settings.positions_column
+    if batch.has(name) and is_integer_list(batch.type_of(name)):
+        positions = batch.flat(name)
+        if np.array_equal(positions.lengths, tokens.lengths):
+            return positions
+    return None
+
+
+def _marker(settings) -> tuple[str, int | None]:
+    """The separator that marks document boundaries: ('eos', id) ends a document, ('bos', id) starts one."""
+    if settings.separator == "bos-before":
+        return "bos", settings.bos_id
+    return "eos", settings.eos_id
+
+
+def infer_arrangement(batch: Batch, settings) -> tuple[str, str]:
+    """How documents sit in a shard's rows, from its first batch: ``(arrangement, why)`` (a heuristic; cached
+    on the batch)."""
+    key = ("arrangement", settings.tokens_column, settings.mask_column, settings.positions_column,
+           settings.separator, settings.eos_id, settings.bos_id, settings.pad_id)
+    cache = batch.__dict__.setdefault("_documents", {})
+    if key not in cache:
+        cache[key] = _infer_arrangement(batch, settings)
+    return cache[key]
+
+
+def _infer_arrangement(batch: Batch, settings) -> tuple[str, str]:
+    tok = settings.tokens_column
+    if not (batch.has(tok) and is_integer_list(batch.type_of(tok))):
+        return TEXT, "raw text, one document per row"
+    tokens = batch.flat(tok)
+    if _positions(batch, tokens, settings) is not None:
+        return POSITIONS, "position_ids restart at 0 at each document start"
+    name, marker = _marker(settings)
+    if marker is None:
+        return ONE_PER_ROW, f"no {name}_id known, so each row is taken as one document"
+    real = RealTokens.of(batch, tokens, settings)
+    hits = tokens.values == marker
+    if real.mask is not None:
+        hits &= real.mask
+    inside = int(np.count_nonzero(hits))
+    nonempty = real.per_row > 0
+    if name == "eos":  # an eos that is not the last real token of its row separates two documents in the row
+        edge = _last_real_index(tokens, real)[nonempty]
+    else:  # a bos that is not the first real token of its row
+        edge = real.first_from(tokens.starts[nonempty])
+    inside -= int(np.count_nonzero(tokens.values[edge] == marker))
+    if inside > 0:
+        return SEPARATORS, f"{inside:,} {name} tokens inside rows of the first {len(batch):,} rows: packed documents"
+    return ONE_PER_ROW, f"no {name} inside any of the first {len(batch):,} rows: one document per row"
+
+
+def _last_real_index(tokens: Flat, real: RealTokens) -> np.ndarray:
+    """Per row, the flat index of its last real token (rows without one: its start - 1, to be masked out)."""
+    if real.run is None:
+        return tokens.ends - 1
+    return np.searchsorted(real.run, real.run[tokens.ends], side="left") - 1
+
+
+# -- documents of one batch -------------------------------------------------------------------------------------
+
+@dataclass
+class BatchDocuments:
+    """The documents of one batch, as pieces to join with what came before and after.
+
+    ``head`` real tokens at the start of the batch continue the document left open by the previous batch;
+    ``closes`` says whether that document ends in this batch.  ``lengths``/``cut`` describe the documents that
+    start and end here, ``starts`` where each starts (flat index of its first token, or row for text).  ``tail``
+    real tokens at the end start a document that continues into the next batch (``tail_start``), and
+    ``tail_cut`` says whether it is cut if the next batch does not continue it.
+    """
+
+    arrangement: str
+    unit: str
+    head: int
+    closes: bool
+    head_cut: bool
+    lengths: np.ndarray
+    cut: np.ndarray
+    starts: np.ndarray
+    tail: int
+    tail_start: int
+    tail_cut: bool
+    slots: int
+    real_tokens: int
+    rows: int
+    padded_rows: int
+    locate: Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]
+
+
+def documents_of(batch: Batch, settings, arrangement: str) -> BatchDocuments:
+    """The documents of ``batch`` under ``arrangement`` (cached on the batch, so rules sharing it pay once)."""
+    key = (arrangement, settings.tokens_column, settings.text_column, settings.mask_column,
+           settings.positions_column, settings.eos_id, settings.bos_id, settings.pad_id, settings.seq_len,
+           settings.separator, settings.tokenizer)
+    cache = batch.__dict__.setdefault("_documents", {})
+    if key not in cache:
+        cache[key] = _text_documents(batch, settings) if arrangement == TEXT else \
+            _token_documents(batch, settings, arrangement)
+    return cache[key]
+
+
+def _text_documents(batch: Batch, settings) -> BatchDocuments:
+    from .tokenize import text_lengths
+
+    column = batch.column(settings.text_column)
+    lengths, present, unit = text_lengths(column, settings.tokenizer)
+    keep = lengths > 0
+    rows = np.flatnonzero(present)[keep]
+    lengths = lengths[keep]
+
+    def locate(which):
+        return batch.rows[rows[which]], np.zeros(np.size(which), dtype=np.int64)
+
+    return BatchDocuments(TEXT, unit, 0, True, False, lengths, np.zeros(lengths.size, dtype=bool),
+                          np.arange(lengths.size), 0, -1, False, 0, int(lengths.sum()), len(batch), 0, locate)
+
+
+def _token_documents(batch: Batch, settings, arrangement: str) -> BatchDocuments:
+    tokens = batch.flat(settings.tokens_column)
+    values, offsets = tokens.values, tokens.offsets
+    n = values.size
+    real = RealTokens.of(batch, tokens, settings)
+    name, marker = _marker(settings)
+    nonempty = tokens.lengths > 0
+
+    # Document starts (flat indices, sorted).
+    if arrangement == POSITIONS:
+        restart = _positions(batch, tokens, settings).values == 0
+        if real.mask is not None:
+            restart &= real.mask
+        starts = np.flatnonzero(restart)
+    elif arrangement == SEPARATORS:
+        hits = values == marker
+        if real.mask is not None:
+            hits &= real.mask
+        starts = np.flatnonzero(hits)
+        if name == "eos":
+            starts += 1  # a document starts after each eos
+        ended = tokens.ends[nonempty & (real.per_row < tokens.lengths)]  # padding ends a row's last document
+        if ended.size:
+            starts = np.sort(np.concatenate([starts, ended]))
+            starts = starts[np.r_[True, starts[1:] != starts[:-1]]]
+    else:  # ONE_PER_ROW
+        starts = tokens.starts[nonempty]
+
+    # Real tokens of each segment: [0, s0), [s0, s1), ..., [s_last, n).
+    bounds = np.empty(starts.size + 2, dtype=np.int64)
+    bounds[0], bounds[-1] = 0, n
+    bounds[1:-1] = starts
+    seg = np.diff(real.upto(bounds))
+
+    # A segment is cut when it ends at the end of a full row whose last token is not eos.
+    cut = np.zeros(seg.size, dtype=bool)
+    if marker is not None and name == "eos" and settings.seq_len is not None and n:
+        full_cut = nonempty & (real.per_row == tokens.lengths) & (tokens.lengths >= settings.seq_len)
+        full_cut[nonempty] &= values[tokens.ends[nonempty] - 1] != marker
+        if full_cut.any():
+            ends = bounds[1:]
+            at = np.searchsorted(offsets, ends, side="left")
+            at_row_end = (ends > 0) & (at < offsets.size)
+            at_row_end[at_row_end] &= offsets[at[at_row_end]] == ends[at_row_end]
+            cut[at_row_end] = full_cut[at[at_row_end] - 1]
+
+    k = starts.size
+    closed_tail = arrangement == ONE_PER_ROW
+    middle = slice(1, k + 1) if closed_tail else slice(1, k)
+    lengths, doc_cut = seg[middle], cut[middle]
+    doc_starts = starts[:lengths.size]
+    keep = lengths > 0
+    if not keep.all():
+        lengths, doc_cut, doc_starts = lengths[keep], doc_cut[keep], doc_starts[keep]
+    tail, tail_start, tail_cut = 0, -1, bool(cut[k])  # with no start in the batch, cut[0] is the candidate
+    if k and not closed_tail:
+        tail, tail_start = int(seg[k]), int(starts[-1])
+    head = int(seg[0])
+
+    def locate(flat_index):
+        flat_index = real.first_from(np.minimum(np.asarray(flat_index, dtype=np.int64), n))
+        rows, offs = tokens.locate(flat_index)
+        return batch.rows[rows], offs
+
+    return BatchDocuments(arrangement, "tokens", head, k > 0, bool(cut[0]) if k else False, lengths, doc_cut,
+                          doc_starts, tail, tail_start, tail_cut, n, real.total, len(batch),
+                          int(np.count_nonzero(real.per_row < tokens.lengths)), locate)
+
+
+# -- a shard's documents ----------------------------------------------------------------------------------------
+
+Hit = Callable[[np.ndarray, np.ndarray], None]
+
+
+class DocumentTally:
+    """Streaming tally of a shard's documents: lengths (histogram), documents over the window, cut documents,
+    and the token budget as built (slots, real tokens), with the one open document carried across batches.
+
+    ``add`` takes the :class:`BatchDocuments` of each batch in order; ``close`` ends the shard (the open document
+    is complete then, but never counted as cut: it may continue in the next shard).  ``on_overlong`` and
+    ``on_cut`` receive ``(rows, offsets)`` of the start of each such document, in shard order.
+    """
+
+    def __init__(self, seq_len: int | None, on_overlong: Hit | None = None, on_cut: Hit | None = None):
+        self.seq_len = seq_len
+        self.unit: str | None = None
+        self.arrangement: str | None = None
+        self.lengths = LengthHistogram()
+        self.overlong = 0
+        self.overlong_tokens = 0
+        self.beyond_window = 0
+        self.cut = 0
+        self.slots = 0
+        self.real_tokens = 0
+        self.rows = 0
+        self.padded_rows = 0
+        self.carry: list | None = None  # [length, row, offset, cut if closed at the next boundary]
+        self._on_overlong = on_overlong
+        self._on_cut = on_cut
+
+    def add(self, docs: BatchDocuments) -> None:
+        self.unit = self.unit or docs.unit
+        self.arrangement = self.arrangement or docs.arrangement
+        self.slots += docs.slots
+        self.real_tokens += docs.real_tokens
+        self.rows += docs.rows
+        self.padded_rows += docs.padded_rows
+        if docs.head:
+            if self.carry is None:
+                row, off = docs.locate(np.zeros(1, dtype=np.int64))
+                self.carry = [0, int(row[0]), int(off[0]), False]
+            self.carry[0] += docs.head
+            self.carry[3] = docs.head_cut if docs.closes else docs.tail_cut
+        if docs.closes and self.carry is not None:
+            self._close_carry(self.carry[3])
+        self._emit(docs.lengths, docs.cut, docs.starts, docs.locate)
+        if docs.tail:
+            row, off = docs.locate(np.asarray([docs.tail_start]))
+            self.carry = [docs.tail, int(row[0]), int(off[0]), docs.tail_cut]
+
+    def close(self) -> None:
+        """The shard ended: its open document is complete (not counted as cut)."""
+        if self.carry is not None:
+            self._close_carry(False)
+        self.lengths.compact()
+        self._on_overlong = self._on_cut = None  # callbacks do not travel between processes
+
+    def _close_carry(self, cut: bool) -> None:
+        length, row, off, _ = self.carry
+        self.carry = None
+        one = np.asarray([length], dtype=np.int64)
+        self._emit(one, np.asarray([cut]), np.zeros(1, dtype=np.int64),
+                   lambda which: (np.full(np.size(which), row, dtype=np.int64),
+                                  np.full(np.size(which), off, dtype=np.int64)))
+
+    def _emit(self, lengths: np.ndarray, cut: np.ndarray, starts: np.ndarray, locate) -> None:
+        if lengths.size == 0:
+            return
+        self.lengths.add(lengths)
+        if self.seq_len is not None and self.unit == "tokens":
+            over = lengths > self.seq_len
+            if over.any():
+                self.overlong += int(over.sum())
+                self.overlong_tokens += int(lengths[over].sum())
+                self.beyond_window += int(lengths[over].sum()) - int(over.sum()) * self.seq_len
+                if self._on_overlong:
+                    self._on_overlong(*locate(starts[over]))
+        if cut.any():
+            self.cut += int(cut.sum())
+            if self._on_cut:
+                self._on_cut(*locate(starts[cut]))
+
+    def __getstate__(self):
+        state = dict(self.__dict__)
+        state["_on_overlong"] = state["_on_cut"] = None
+        return state

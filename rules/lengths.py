@@ -1,0 +1,319 @@
+"""Document lengths against the context window, and what the shard's layout spends its token budget on.
+
+Both rules read the shard's documents the same way (:mod:`lint.documents`: position restarts, separators, one
+document per row, or raw text counted with a tokenizer or in UTF-8 bytes) and keep their lengths as a histogram,
+so a shard's state stays small however many documents it holds.
+"""
+from __future__ import annotations
+
+from lint.batch import is_integer_list, is_text
+from lint.documents import (ONE_PER_ROW, QUANTILE_METHOD, QUANTILES, TEXT, DocumentTally, LengthHistogram,
+                            documents_of, infer_arrangement)
+from lint.findings import Finding, Level
+from lint.packing import AsBuilt, compare_layouts, savings
+from lint.rule import Rule, consistent, pct, share
+
+#: Names of the three layouts in reports (camelCase keys) and in messages.
+LAYOUT_KEYS = {"one_per_window": "oneDocumentPerWindow", "concat_chunk": "concatenateAndChunk",
+               "best_fit_decreasing": "bestFitDecreasing"}
+LAYOUT_WORDS = {"one_per_window": "one document per window", "concat_chunk": "concatenate-and-chunk",
+                "best_fit_decreasing": "best-fit decreasing"}
+
+
+def _tokenized(batch, settings) -> bool:
+    return batch.has(settings.tokens_column) and is_integer_list(batch.type_of(settings.tokens_column))
+
+
+def _textual(batch, settings) -> bool:
+    return batch.has(settings.text_column) and is_text(batch.type_of(settings.text_column))
+
+
+def length_summary(lengths: LengthHistogram) -> dict:
+    """Documents, mean, quantiles and max of a length histogram, as plain numbers for reports."""
+    n = lengths.documents
+    out = {"documents": n, "mean": round(lengths.tokens / n, 2) if n else 0.0}
+    out.update(lengths.quantiles())
+    out["max"] = lengths.max
+    return out
+
+
+class _DocumentRule(Rule):
+    """Shared by the length rules: feeds every batch's documents to a :class:`~lint.documents.DocumentTally`."""
+
+    def missing(self, batch, settings):
+        if _tokenized(batch, settings) or _textual(batch, settings):
+            return None
+        return f"no {settings.tokens_column!r} token column and no {settings.text_column!r} text column"
+
+    def begin(self, shard, settings):
+        state = super().begin(shard, settings)
+        state.arrangement = None
+        state.why = ""
+        state.tally = DocumentTally(settings.seq_len, **self._callbacks(state))
+        return state
+
+    def _callbacks(self, state) -> dict:
+        return {}
+
+    def feed(self, state, batch):
+        s = state.settings
+        if not len(batch):
+            return
+        if state.arrangement is None:
+            state.arrangement, state.why = infer_arrangement(batch, s)
+        if state.arrangement != TEXT:
+            if not _tokenized(batch, s):
+                return
+            batch = consistent(batch, [s.tokens_column, s.mask_column, s.positions_column])
+        elif not _textual(batch, s):
+            return
+        state.tally.add(documents_of(batch, s, state.arrangement))
+
+    def end(self, state):
+        state.tally.close()
+        return state
+
+
+class OverlongDocument(_DocumentRule):
+    """Documents longer than the context window (``seq_len``) never reach the model whole. A pipeline either
+    cuts them at the window, losing every token past it, or splits them, so that each continuation window starts
+    mid-document without the context its tokens depend on; either way, the longer the document, the less of it is
+    learned as written. Checks every document's length in tokens against ``seq_len``: documents joined across rows
+    by their position_ids or separators, one document per row, or raw text counted with ``--tokenizer``
+    (raw text counted in UTF-8 bytes cannot be compared with a window of tokens; the rule is skipped with a note).
+    In rows that hold their window full, end without eos and are not continued by the next row, the document was
+    cut at the window: those are reported separately, with the row where each cut document starts. Each instance
+    is the start of an offending document (row, token offset; character offset 0 for raw text). Length quantiles
+    use linear interpolation between the closest ranks (numpy.percentile's default)."""
+
+    id = "overlong-document"
+    level = Level.warning
+    summary = "Documents longer than the context window (cut or split); rows cut at the window."
+    help = ("Split long documents at natural boundaries (sections, paragraphs) before tokenizing, so that each "
+            "piece fits the window; or pack them into full windows plus a remainder (best-fit decreasing) instead "
+            "of cutting them; or train with a longer seq_len if the model supports it. For cut rows, rebuild the "
+            "shard from the source documents without truncating at the window, or give every continuation its own "
+            "row that follows the first.")
+
+    def missing(self, batch, settings):
+        reason = super().missing(batch, settings)
+        if reason:
+            return reason
+        if not _tokenized(batch, settings) and settings.tokenizer is None:
+            return ("text lengths are UTF-8 bytes, which cannot be compared with a window of tokens: give "
+                    "--tokenizer FILE (and --seq-len N) to count tokens")
+        if settings.seq_len is None:
+            return "seq_len is not set and could not be inferred (give --seq-len)"
+        return None
+
+    def _callbacks(self, state):
+        return {"on_overlong": lambda rows, offs: state.hit("longer-than-window", rows, offs),
+                "on_cut": lambda rows, offs: state.hit("cut", rows, offs)}
+
+    def report(self, state):
+        s, t, out = state.settings, state.tally, []
+        lengths = t.lengths
+        documents, tokens = lengths.documents, lengths.tokens
+        summary = length_summary(lengths)
+        figures = ", ".join(f"{k} {summary[k]:,.6g}" for k in [f"p{p}" for p in QUANTILES] + ["max"])
+        common = dict(documents=documents, documentTokens=tokens, seqLen=s.seq_len, unit=t.unit,
+                      lengthQuantiles={k: summary[k] for k in summary if k.startswith("p") or k == "max"},
+                      quantileMethod=QUANTILE_METHOD, arrangement=state.arrangement, arrangementWhy=state.why)
+        if state.hits.get("longer-than-window"):
+            n = t.overlong
+            if state.arrangement == TEXT:
+                fate = ("A training job cuts them at the window (the tokens past it are lost) or splits them "
+                        "(each continuation window starts mid-document, without its context)")
+            elif state.arrangement == ONE_PER_ROW:
+                fate = ("These rows are longer than the window: the loader cuts them (the tokens past the window "
+                        "are lost) or splits them (the continuation starts mid-document, without its context)")
+            else:
+                fate = ("They are split over several windows: each continuation window starts mid-document, "
+                        "without the context its tokens depend on")
+            out.append(self.finding(
+                state, "longer-than-window",
+                f"{n:,} of {documents:,} documents ({pct(n, documents)}) are longer than the {s.seq_len:,}-token "
+                f"window; they hold {pct(t.overlong_tokens, tokens)} of the {tokens:,} document tokens, "
+                f"{t.beyond_window:,} of them past the first window. {fate}. Document lengths ({t.unit}): "
+                f"{figures}. Split long documents at natural boundaries before tokenizing, or train with a longer "
+                f"window.",
+                overlong=n, documentShare=share(n, documents), tokenShare=share(t.overlong_tokens, tokens),
+                overlongTokens=t.overlong_tokens, tokensBeyondWindow=t.beyond_window, **common))
+        if state.hits.get("cut"):
+            n = t.cut
+            out.append(self.finding(
+                state, "cut",
+                f"{n:,} of {documents:,} documents ({pct(n, documents)}) fill their {s.seq_len:,}-token window, "
+                f"end without eos (id {s.eos_id}) and are not continued by the next row: they were cut at the "
+                f"window, and the rest of each (at least {n:,} tokens in all) was lost; if the pipeline put the rest "
+                f"in another row, that row starts mid-document without its context. Rebuild the shard without "
+                f"truncating documents at the window (split them at natural boundaries, or pack them).",
+                cut=n, documentShare=share(n, documents), **common))
+        return out
+
+
+class TruncationWaste(_DocumentRule):
+    """Every window a training job reads costs the same compute, whether it holds document tokens or padding;
+    tokens cut off at the window are never trained on at all. Counts the shard's token budget as built — slots
+    (every position of every row), real tokens, padding, and tokens lost to truncation where the shard shows them
+    (at least one per document cut at its window) — and, from the lengths of its documents, what three layouts
+    would make of the same documents at the same seq_len: one document per window (cut and padded),
+    concatenate-and-chunk (no padding but one partial window, documents split at window edges) and best-fit
+    decreasing packing (documents kept whole up to the window, little padding). Warns when more than
+    ``max_waste`` of the slots are padding or truncation. The corpus figures (``tokenBudget`` in the report's
+    metrics) add the layouts up over all shards with the same seq_len, and the lengths of all documents
+    (``documentTokens``, or ``documentBytes`` for raw text counted without a tokenizer)."""
+
+    id = "truncation-waste"
+    level = Level.warning
+    summary = "Share of the token budget lost to padding and truncation; what packing would save."
+    help = ("Pack documents instead of padding each to the window: best-fit decreasing keeps documents whole and "
+            "wastes little; concatenate-and-chunk wastes least but splits documents at window edges (use "
+            "position_ids that restart per document and a document-aware attention mask). Do not truncate "
+            "documents at the window: split long ones into window-sized pieces. Option max_waste (default 0.10): "
+            "the share of slots spent on padding and truncation above which the rule warns.")
+    options = {"max_waste": 0.10}
+
+    def __init__(self, **options):
+        super().__init__(**options)
+        value = self.opts["max_waste"]
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 <= value <= 1:
+            raise ValueError(f"rule {self.id}: max_waste must be a share between 0 and 1, got {value!r} "
+                             "(hint: 0.1 warns when more than 10% of the slots are padding or truncation)")
+
+    def report(self, state):
+        s, t = state.settings, state.tally
+        if t.unit != "tokens" or state.arrangement == TEXT or not t.slots:
+            return []
+        if share(t.slots - t.real_tokens + t.cut, t.slots) <= self.opts["max_waste"]:
+            return []  # (the layouts, the costly part, are computed only for a finding)
+        budget = shard_budget(t, s.seq_len)
+        built = budget["asBuilt"]
+        n = t.padded_rows + t.cut
+        message = (f"{pct(built['padding'] + built['truncated'], built['slots'])} of this shard's "
+                   f"{built['slots']:,} token slots ({t.rows:,} rows) train on nothing (max_waste "
+                   f"{self.opts['max_waste']:.0%}): {built['padding']:,} padding "
+                   f"({pct(built['padding'], built['slots'])}, in {t.padded_rows:,} rows)")
+        if t.cut:
+            message += (f" and at least {built['truncated']:,} tokens lost to truncation ({t.cut:,} documents cut "
+                        f"at the window; the tokens past it are not in the shard, so this is a lower bound)")
+        message += "."
+        layouts = budget.get("layouts")
+        if layouts:
+            parts = []
+            for name, key in LAYOUT_KEYS.items():
+                lay = layouts[key]
+                parts.append(f"{LAYOUT_WORDS[name]} {lay['windows']:,} windows (padding "
+                             f"{lay['paddingPct']:.1f}%, dropped {lay['droppedPct']:.1f}%, saves "
+                             f"{lay['slotsSavedPct']:.1f}% of the slots)")
+            best = layouts["bestFitDecreasing"]
+            message += (f" The same {budget['documents']:,} documents at seq_len {s.seq_len:,}: "
+                        + "; ".join(parts) + f"; no layout needs fewer than {budget['lowerBound']:,} windows. "
+                        f"Pack the documents (best-fit decreasing saves {best['slotsSavedPct']:.1f}% of the slots "
+                        f"and keeps documents whole up to the window).")
+        else:
+            message += " Give --seq-len to see what packing would save. Pack documents instead of padding them."
+        if t.cut:
+            message += " Do not truncate documents at the window."
+        return [Finding(rule_id=self.id, level=self.level, message=message, uri=state.uri, kind="budget",
+                        count=n, evidence=budget)]
+
+    def corpus(self, states):
+        metrics: dict = {}
+        by_unit: dict[str, list] = {}
+        for st in states:
+            if st.tally.unit:
+                by_unit.setdefault(st.tally.unit, []).append(st.tally.lengths)
+        for unit, key in (("tokens", "documentTokens"), ("bytes", "documentBytes")):
+            if unit in by_unit:
+                metrics[key] = {"unit": unit, **length_summary(LengthHistogram.merged(by_unit[unit]))}
+        token_states = [st for st in states
+                        if st.tally.unit == "tokens" and st.arrangement != TEXT and st.tally.slots]
+        if token_states:
+            metrics["tokenBudget"] = corpus_budget([st.tally for st in token_states],
+                                                   [st.settings.seq_len for st in token_states])
+        return [], metrics
+
+
+# -- token budget figures ----------------------------------------------------------------------------------------
+
+def _as_built(slots: int, real: int, truncated: int, rows: int) -> dict:
+    padding = slots - real
+    return {"windows": rows, "slots": slots, "realTokens": real, "padding": padding, "truncated": truncated,
+            "truncatedIsLowerBound": True, "paddingPct": 100.0 * share(padding, slots),
+            "truncatedPct": 100.0 * share(truncated, real + truncated),
+            "wastedFraction": share(padding + truncated, slots)}
+
+
+def _layout_figures(layouts, built: AsBuilt) -> dict:
+    saved = savings(built, layouts)
+    out = {}
+    for layout in layouts:
+        out[LAYOUT_KEYS[layout.name]] = {
+            "name": LAYOUT_WORDS[layout.name], "windows": layout.windows, "slots": layout.slots, "padding": layout.padding, "dropped": layout.dropped,
+            "paddingPct": layout.padding_pct, "droppedPct": layout.dropped_pct,
+            "slotsSavedPct": saved[layout.name].slots_saved_pct,
+            "tokensRecovered": saved[layout.name].tokens_recovered,
+        }
+    return out
+
+
+def shard_budget(tally: DocumentTally, seq_len: int | None) -> dict:
+    """The token budget of one shard as built and, when ``seq_len`` is known, under the three layouts."""
+    built = _as_built(tally.slots, tally.real_tokens, tally.cut, tally.rows)
+    out = {"unit": "tokens", "seqLen": seq_len, "documents": tally.lengths.documents,
+           "documentTokens": tally.lengths.tokens, "asBuilt": built,
+           "realTokenFraction": share(tally.real_tokens, tally.slots),
+           "padTokenFraction": share(tally.slots - tally.real_tokens, tally.slots),
+           "truncatedTokenFraction": share(tally.cut, tally.real_tokens + tally.cut)}
+    if seq_len is not None:
+        layouts = compare_layouts(tally.lengths.sizes, seq_len, tally.lengths.counts)
+        out["layouts"] = _layout_figures(
+            layouts, AsBuilt(tally.slots, tally.real_tokens, tally.slots - tally.real_tokens, tally.cut))
+        out["lowerBound"] = layouts.lower_bound
+    return out
+
+
+def corpus_budget(tallies: list[DocumentTally], seq_lens: list[int | None]) -> dict:
+    """The token budget over many shards: as built, summed; the layouts of all documents packed together, per
+    seq_len (shards with different windows are packed separately and the windows added up)."""
+    slots = sum(t.slots for t in tallies)
+    real = sum(t.real_tokens for t in tallies)
+    truncated = sum(t.cut for t in tallies)
+    rows = sum(t.rows for t in tallies)
+    merged = LengthHistogram.merged(t.lengths for t in tallies)
+    known = sorted({s for s in seq_lens if s is not None})
+    out = {"unit": "tokens", "seqLen": known[0] if len(known) == 1 else known, "shards": len(tallies),
+           "documents": merged.documents, "documentTokens": merged.tokens,
+           "asBuilt": _as_built(slots, real, truncated, rows),
+           "realTokenFraction": share(real, slots), "padTokenFraction": share(slots - real, slots),
+           "truncatedTokenFraction": share(truncated, real + truncated)}
+    # The layouts cover the shards whose seq_len is known; as built is compared over the same shards.
+    with_window = [(t, s) for t, s in zip(tallies, seq_lens) if s is not None]
+    if not with_window:
+        return out
+    totals = {key: {"name": LAYOUT_WORDS[name], **dict.fromkeys(("windows", "slots", "padding", "dropped"), 0)}
+              for name, key in LAYOUT_KEYS.items()}
+    lower = 0
+    for seq_len in known:
+        group = LengthHistogram.merged(t.lengths for t, s in with_window if s == seq_len)
+        layouts = compare_layouts(group.sizes, seq_len, group.counts)
+        lower += layouts.lower_bound
+        for layout in layouts:
+            entry = totals[LAYOUT_KEYS[layout.name]]
+            for field in ("windows", "slots", "padding", "dropped"):
+                entry[field] += getattr(layout, field)
+    b_slots = sum(t.slots for t, _ in with_window)
+    b_truncated = sum(t.cut for t, _ in with_window)
+    document_tokens = sum(t.lengths.tokens for t, _ in with_window)
+    for entry in totals.values():
+        entry["paddingPct"] = 100.0 * share(entry["padding"], entry["slots"])
+        entry["droppedPct"] = 100.0 * share(entry["dropped"], document_tokens)
+        entry["slotsSavedPct"] = 100.0 * share(b_slots - entry["slots"], b_slots)
+        entry["tokensRecovered"] = b_truncated - entry["dropped"]
+    out["layouts"] = totals
+    out["lowerBound"] = lower
+    return out
+
+
+RULES = [OverlongDocument, TruncationWaste]
