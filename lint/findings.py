@@ -73,6 +73,11 @@ class Hits:
         return np.concatenate(self._offsets) if self._offsets else np.zeros(0, dtype=np.int64)
 
     @property
+    def kept(self) -> int:
+        """How many locations are stored (at most ``cap``)."""
+        return self._kept
+
+    @property
     def truncated(self) -> bool:
         return self.count > self._kept
 

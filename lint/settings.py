@@ -248,9 +248,8 @@ def infer_from_batch(settings: Settings, batch) -> Settings:
             real_end = flat.count_per_row(~pad_positions)
     elif s.pad_id is not None:
         # No attention mask: a row's real tokens end at its last token that is not the (known) pad id.
-        real = np.flatnonzero(flat.values != s.pad_id)
-        real_end = np.zeros(n, dtype=np.int64)
-        np.maximum.at(real_end, flat.row_of[real], flat.position[real] + 1)
+        last = flat.last_where(flat.values != s.pad_id)
+        real_end = np.where(last >= 0, last - flat.starts + 1, 0)
 
     restarts = None
     if batch.has(s.positions_column) and is_integer_list(batch.type_of(s.positions_column)):

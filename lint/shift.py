@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .batch import Flat, running_count
+from .batch import Flat, running_count, spans  # noqa: F401 - spans is re-exported for rules
 
 #: Shifts the label rule measures.
 SHIFTS = (-1, 0, 1, 2, 3)
@@ -107,9 +107,3 @@ def _equal_shifted(values: np.ndarray, labels: np.ndarray, shift: int, out: np.n
     else:
         np.equal(labels[n - m:], values[:m], out=out[n - m:])
     return out
-
-
-def spans(n: int, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
-    """A mask of ``n`` flat positions, True within every ``[lo[i], hi[i])`` (ranges must not overlap)."""
-    edges = np.bincount(lo, minlength=n + 1) - np.bincount(hi, minlength=n + 1)
-    return np.cumsum(edges[:n]) > 0

@@ -73,7 +73,7 @@ class DocumentAttention(Rule):
             affected = packed
             state.count(rows_without_positions=int(packed.sum()))
         else:
-            restarted = np.bincount(tokens.row_of[restarts], minlength=tokens.lengths.size) > 0
+            restarted = np.bincount(tokens.rows_at(restarts), minlength=tokens.lengths.size) > 0
             affected = packed & ~restarted
         rows = np.flatnonzero(affected)
         first_separator = first_index(tokens, separator)[rows] - tokens.offsets[rows]

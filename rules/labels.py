@@ -242,6 +242,42 @@ class LabelAlignment(Rule):
         row is compared with — the expected one, or for shift 0/1 rows the other convention). Returns which rows
         follow the expected shift."""
         s, expected = state.settings, state.expected
+        # Rows whose every trained label follows the expected shift are settled by one comparison; only the
+        # others (none in a clean shard) are measured against every shift.
+        m0, c0 = shift_matches(tokens, labels, s.ignore_index, (expected,))
+        perfect = (c0[0] > 0) & (m0[0] == c0[0])
+        settled = np.flatnonzero(perfect)
+        state.hit(shift_kind(expected), absolute_rows(batch, settled), self._other_break(state, tokens, labels, settled))
+        state.count(measured=int(settled.size), **{f"matched{expected:+d}": int(m0[0, settled].sum()),
+                                                   f"compared{expected:+d}": int(c0[0, settled].sum())})
+        follows = perfect.copy()
+        rest = np.flatnonzero(~perfect)
+        if rest.size:
+            sub, source = tokens.take(rest)
+            follows[rest] = self._measure(state, batch.rows[rest], sub, labels[source])
+        return follows
+
+    def _other_break(self, state, tokens, labels, rows) -> np.ndarray:
+        """Offsets of the first label breaking the other convention (0 vs 1) in the rows the hit list will keep
+        (at most ``instance_cap`` per shard, so a clean shard pays for this only until the list is full); -1 for
+        rows past the cap or when the expected shift is neither 0 nor 1."""
+        offsets = np.full(rows.size, -1, dtype=np.int64)
+        hits = state.hits.get(shift_kind(state.expected))
+        room = state.cap - (hits.kept if hits else 0)
+        keep = rows[:max(room, 0)]
+        if keep.size and state.expected in (0, 1):
+            if keep.size == tokens.lengths.size:
+                offsets[:] = first_mismatch(tokens, labels, state.settings.ignore_index, 1 - state.expected)
+            else:
+                sub, source = tokens.take(keep)
+                offsets[:keep.size] = first_mismatch(sub, labels[source], state.settings.ignore_index,
+                                                     1 - state.expected)
+        return offsets
+
+    def _measure(self, state, rows_in_shard, tokens, labels) -> np.ndarray:
+        """Best shift of each given row against every shift in SHIFTS; records hits; says which rows follow the
+        expected shift."""
+        s, expected = state.settings, state.expected
         matches, comparable = shift_matches(tokens, labels, s.ignore_index, SHIFTS)
         best, agreement, measured = best_shift(matches, comparable, SHIFTS, prefer=expected)
         steady = measured & (agreement >= self.opts["min_agreement"])
@@ -252,11 +288,11 @@ class LabelAlignment(Rule):
         for i, k in enumerate(SHIFTS):
             rows = np.flatnonzero(steady & (best == k))
             if rows.size:
-                state.hit(shift_kind(k), absolute_rows(batch, rows), offsets[rows])
+                state.hit(shift_kind(k), rows_in_shard[rows], offsets[rows])
                 state.count(**{f"matched{k:+d}": int(matches[i, rows].sum()),
                                f"compared{k:+d}": int(comparable[i, rows].sum())})
         loose = np.flatnonzero(measured & ~steady)
-        state.hit("no-shift", absolute_rows(batch, loose), breaks[expected][loose])
+        state.hit("no-shift", rows_in_shard[loose], breaks[expected][loose])
         state.count(loose_agreement=float(agreement[loose].sum()))
         return steady & (best == expected)
 

@@ -15,20 +15,12 @@ from __future__ import annotations
 
 import numpy as np
 
-from lint.batch import Flat, is_integer_list
+from lint.batch import Flat, is_integer_list, spans
 from lint.findings import Finding, Level
 from lint.rule import Rule, absolute_rows, consistent, pct, share
 
 
 # -- per-row arithmetic over flat arrays --------------------------------------------------------------------------
-
-def _cumulative(flat: Flat, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Per position: how many positions of its row before it, and at or after it, have ``mask`` set."""
-    cum = np.concatenate(([0], np.cumsum(mask, dtype=np.int64)))
-    starts, ends = flat.offsets[:-1][flat.row_of], flat.offsets[1:][flat.row_of]
-    here = cum[:-1]
-    return here - cum[starts], cum[ends] - here
-
 
 def _previous(flat: Flat, mask: np.ndarray) -> np.ndarray:
     """``mask`` of the previous position in the same row (False at row starts)."""
@@ -46,11 +38,7 @@ def _next(flat: Flat, mask: np.ndarray) -> np.ndarray:
 
 def first_per_row(flat: Flat, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Batch-local rows that have ``mask`` set somewhere, and the 0-based offset of the first such position."""
-    where = np.flatnonzero(mask)
-    rows = flat.row_of[where]
-    first = np.ones(where.size, dtype=bool)
-    first[1:] = rows[1:] != rows[:-1]
-    return rows[first], flat.position[where[first]]
+    return flat.first_in_row(mask)
 
 
 class PadRuns:
@@ -63,9 +51,11 @@ class PadRuns:
     def __init__(self, flat: Flat, pad_id: int, eos_id: int | None, bos_id: int | None):
         is_pad = flat.values == pad_id
         self.non_pad = ~is_pad
-        before, after = _cumulative(flat, self.non_pad)
-        trailing = is_pad & (after == 0)
-        leading = is_pad & (before == 0) & ~trailing  # a row of nothing but pad ids is read as right padding
+        n = is_pad.size
+        first, last = flat.first_where(self.non_pad), flat.last_where(self.non_pad)
+        none = last < 0  # a row of nothing but pad ids is read as right padding
+        trailing = spans(n, np.where(none, flat.starts, last + 1), flat.ends)
+        leading = spans(n, flat.starts, np.where(none, flat.starts, first))
         padding = np.zeros_like(is_pad)
         self.undecided = np.zeros_like(is_pad)
         if pad_id == eos_id:
@@ -156,14 +146,20 @@ class PaddingLoss(Rule):
     def _mask_shape(self, state, batch, flat, real):
         """Rows whose mask is not one block of ones and one block of zeros, located for either padding side."""
         pad = ~real
-        pad_before, _ = _cumulative(flat, pad)
-        real_before, _ = _cumulative(flat, real)
-        real_after_pad = real & (pad_before > 0)  # breaks right padding
-        pad_after_real = pad & (real_before > 0)  # breaks left padding
-        broken = (flat.count_per_row(real_after_pad) > 0) & (flat.count_per_row(pad_after_real) > 0)
-        for side, breaks in (("right", real_after_pad), ("left", pad_after_real)):
-            rows, offsets = first_per_row(flat, breaks & broken[flat.row_of])
-            state.hit(f"mask-shape:{side}", absolute_rows(batch, rows), offsets)
+        # A row's mask changes between real and padding at most once when it is one block of each; a row with
+        # two changes or more is broken. A change to real breaks right padding, a change to padding left padding.
+        inside = ~flat.is_first[1:]
+        to_real = np.flatnonzero(real[1:] & pad[:-1] & inside) + 1
+        to_pad = np.flatnonzero(pad[1:] & real[:-1] & inside) + 1
+        changes = np.bincount(flat.rows_at(to_real), minlength=flat.lengths.size) + \
+            np.bincount(flat.rows_at(to_pad), minlength=flat.lengths.size)
+        broken = changes >= 2
+        for side, breaks in (("right", to_real), ("left", to_pad)):
+            rows, offsets = flat.locate(breaks)
+            first = np.ones(rows.size, dtype=bool)
+            first[1:] = rows[1:] != rows[:-1]
+            keep = first & broken[rows]
+            state.hit(f"mask-shape:{side}", absolute_rows(batch, rows[keep]), offsets[keep])
         padded = (flat.count_per_row(pad) > 0) & (flat.count_per_row(real) > 0)
         starts_real = real[flat.offsets[:-1][padded]]
         state.count(right_padded=int(np.count_nonzero(starts_real)), left_padded=int(np.count_nonzero(~starts_real)))
@@ -181,7 +177,8 @@ class PaddingLoss(Rule):
             checked = real_eos
             label_ignored = ignored
         lost = np.flatnonzero(checked & label_ignored)
-        state.hit("eos-never-trained", absolute_rows(batch, flat.row_of[lost]), flat.position[lost])
+        rows, offsets = flat.locate(lost)
+        state.hit("eos-never-trained", absolute_rows(batch, rows), offsets)
         state.count(real_eos=int(np.count_nonzero(checked)))
 
     @staticmethod

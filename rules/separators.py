@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from lint.batch import Batch, Flat, is_integer_list
+from lint.batch import Batch, Flat, is_integer_list, spans
 from lint.findings import Finding, Level
 from lint.rule import Rule, absolute_rows, consistent, pct, share
 
@@ -28,26 +28,12 @@ PACKED_PADDED_SHARE = 0.01
 
 def last_index(flat: Flat, mask: np.ndarray) -> np.ndarray:
     """Per row, the flat index of the last position where ``mask`` is set, or -1 when there is none."""
-    idx = np.flatnonzero(mask)
-    out = np.full(flat.lengths.size, -1, dtype=np.int64)
-    if idx.size:
-        rows = flat.row_of[idx]
-        last = np.ones(idx.size, dtype=bool)
-        last[:-1] = rows[1:] != rows[:-1]
-        out[rows[last]] = idx[last]
-    return out
+    return flat.last_where(mask)
 
 
 def first_index(flat: Flat, mask: np.ndarray) -> np.ndarray:
     """Per row, the flat index of the first position where ``mask`` is set, or -1 when there is none."""
-    idx = np.flatnonzero(mask)
-    out = np.full(flat.lengths.size, -1, dtype=np.int64)
-    if idx.size:
-        rows = flat.row_of[idx]
-        first = np.ones(idx.size, dtype=bool)
-        first[1:] = rows[1:] != rows[:-1]
-        out[rows[first]] = idx[first]
-    return out
+    return flat.first_where(mask)
 
 
 def real_positions(batch: Batch, tokens: Flat, settings) -> np.ndarray:
@@ -70,7 +56,7 @@ def real_positions(batch: Batch, tokens: Flat, settings) -> np.ndarray:
     end = np.maximum(end, 0)
     if pad == settings.eos_id:
         end = np.minimum(end + 1, tokens.lengths)
-    return tokens.position < end[tokens.row_of]
+    return spans(tokens.values.size, tokens.starts, tokens.starts + end)
 
 
 def position_restarts(batch: Batch, tokens: Flat, settings, real: np.ndarray) -> np.ndarray | None:
@@ -169,10 +155,12 @@ class MissingSeparator(Rule):
             state.count(boundaries=starts.size)
             if want_eos:
                 bad = starts[values[starts - 1] != s.eos_id]
-                state.hit("boundary-no-eos", absolute_rows(batch, tokens.row_of[bad]), tokens.position[bad])
+                rows, offsets = tokens.locate(bad)
+                state.hit("boundary-no-eos", absolute_rows(batch, rows), offsets)
             if want_bos:
                 bad = starts[values[starts] != s.bos_id]
-                state.hit("boundary-no-bos", absolute_rows(batch, tokens.row_of[bad]), tokens.position[bad])
+                rows, offsets = tokens.locate(bad)
+                state.hit("boundary-no-bos", absolute_rows(batch, rows), offsets)
 
         # padded rows: the last document ends before the row does, so it must end with eos
         real_count = tokens.count_per_row(real)
@@ -187,11 +175,10 @@ class MissingSeparator(Rule):
         # packed windows (full rows of seq_len tokens): are there separators at all?
         if s.seq_len is not None:
             window = (tokens.lengths == s.seq_len) & (real_count == tokens.lengths)
-            in_window = window[tokens.row_of]
             state.count(windows=int(window.sum()), window_tokens=int(window.sum()) * s.seq_len)
             for name, hits, wanted in (("eos", is_eos, want_eos), ("bos", is_bos, want_bos)):
                 if wanted:
-                    per_row = tokens.count_per_row(hits & in_window)
+                    per_row = tokens.count_per_row(hits)
                     state.count(**{f"window_{name}": int(per_row[window].sum())})
                     state.hit(f"no-{name}", absolute_rows(batch, np.flatnonzero(window & (per_row == 0))))
 
@@ -201,7 +188,8 @@ class MissingSeparator(Rule):
         for name, mark, check in (("eos", is_eos, s.eos_id is not None), ("bos", is_bos, doubled_bos)):
             if check and not (s.separator == "both" and s.bos_id == s.eos_id):
                 second = np.flatnonzero(pair & mark[:-1] & mark[1:]) + 1
-                state.hit(f"doubled-{name}", absolute_rows(batch, tokens.row_of[second]), tokens.position[second])
+                rows, offsets = tokens.locate(second)
+                state.hit(f"doubled-{name}", absolute_rows(batch, rows), offsets)
 
     def report(self, state):
         s, st, out = state.settings, state.stats, []

@@ -59,7 +59,8 @@ class TokenRange(Rule):
         if state.max_id is None or hi > state.max_id:
             at = int(np.argmax(values))
             state.max_id = int(hi)
-            state.max_at = (int(batch.rows[flat.row_of[at]]), int(flat.position[at]))
+            row, offset = flat.locate(np.array([at]))
+            state.max_at = (int(batch.rows[row[0]]), int(offset[0]))
         if lo < 0:
             where = np.flatnonzero(values < 0)
             self._record(state, batch, flat, where, "negative")
@@ -71,8 +72,8 @@ class TokenRange(Rule):
 
     @staticmethod
     def _record(state, batch, flat, where, kind):
-        rows = flat.row_of[where]
-        state.hit(kind, absolute_rows(batch, rows), flat.position[where])
+        rows, offsets = flat.locate(where)
+        state.hit(kind, absolute_rows(batch, rows), offsets)
         state.count(**{f"{kind}_rows": int(np.count_nonzero(np.diff(rows)) + 1)})
 
     def report(self, state):
