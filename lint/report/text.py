@@ -122,13 +122,17 @@ def render(report) -> str:
             prefix = f"[{n.rule_id}] " if n.rule_id else ""
             out += _wrap(prefix + n.message, "  ")
     if skipped:
-        by_rule: dict[str, list] = {}
+        # One line per reason and set of shards, naming every rule skipped for it.
+        shards_of: dict[tuple, list] = {}
         for n in skipped:
-            by_rule.setdefault(f"{n.rule_id}: {n.message[len('skipped: '):]}", []).append(n.uri)
+            shards_of.setdefault((n.rule_id, n.message[len("skipped: "):]), []).append(n.uri)
+        rules_of: dict[tuple, list] = {}
+        for (rule_id, why), uris in shards_of.items():
+            rules_of.setdefault((why, tuple(uris)), []).append(rule_id)
         out += ["", "Rules skipped"]
-        for what, uris in by_rule.items():
+        for (why, uris), rule_ids in rules_of.items():
             where = uris[0] if len(uris) == 1 else f"{len(uris)} shards"
-            out += _wrap(f"{what} ({where})", "  ")
+            out += _wrap(f"{', '.join(rule_ids)}: {why} ({where})", "  ")
     counts = {lvl: sum(1 for f in report.findings if f.level == lvl) for lvl in Level}
     fail_at = report.settings.fail_at if report.settings else "error"
     out += ["", f"{counts[Level.error]} error(s), {counts[Level.warning]} warning(s), {counts[Level.note]} note(s); "
