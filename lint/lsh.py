@@ -1,0 +1,337 @@
+"""Locality-sensitive hashing over MinHash signatures: bands, candidates, clusters.
+
+The signature of a window is cut into ``b`` bands of ``r`` values. Two windows
+become a *candidate pair* when all ``r`` values of at least one band agree,
+which for windows of Jaccard similarity ``s`` happens with probability
+``1 - (1 - s**r)**b``: an S-shaped curve whose steep part sits near the
+threshold that :func:`optimal_bands` aims at. Candidates are then *verified*
+with :func:`estimated_jaccard` (the fraction of equal signature values, an
+unbiased estimate of the Jaccard similarity with standard error
+``sqrt(s * (1 - s) / num_perm)``), and :func:`clusters` joins the verified
+pairs into groups of near-duplicate windows. All results here are
+statistical estimates, not proofs of similarity.
+
+Sharded use: each shard keeps ``band_keys(signatures, b, r)``, its window ids
+and, optionally, ``signature_digests(signatures)``. Merging shards is
+concatenating those arrays; :func:`candidate_pairs` on the merged arrays gives
+the same answer as on one big shard.
+"""
+
+from __future__ import annotations
+
+import math
+import operator
+from functools import lru_cache
+from typing import NamedTuple
+
+import numpy as np
+
+from .minhash import POLY, mix64
+
+DEFAULT_MAX_BUCKET = 1024
+"""Distinct signatures per bucket above which only a linear set of pairs is made."""
+
+# Upper bound on Gauss-Legendre nodes: exact integration of the candidate
+# curves holds for num_perm up to 2 * _MAX_NODES - 2.
+_MAX_NODES = 1024
+# (band, row) combinations times nodes evaluated per step of optimal_bands.
+_CURVE_CHUNK = 1 << 22
+
+
+class Candidates(NamedTuple):
+    """Candidate pairs and what the bucket cap did to them.
+
+    ``pairs`` is an int64 array of shape ``(m, 2)``, each row ``(i, j)`` with
+    ``i < j``, rows unique and sorted. ``capped_buckets`` counts buckets that
+    held more than the cap of distinct signatures and so got only a linear
+    set of pairs; when it is non-zero, clusters may be split where the only
+    similar pairs were among those left out. ``largest_bucket`` is the size
+    of the largest bucket seen (in distinct signatures when digests were given).
+    """
+
+    pairs: np.ndarray
+    capped_buckets: int
+    largest_bucket: int
+
+
+def optimal_bands(threshold: float, num_perm: int, weights: tuple[float, float] = (0.5, 0.5)) -> tuple[int, int]:
+    """The ``(b, r)`` that ``datasketch.MinHashLSH(threshold, num_perm, weights)`` chooses.
+
+    Among all ``b`` bands of ``r`` rows with ``b * r <= num_perm`` it picks
+    the pair minimising ``w_fp * FP + w_fn * FN``, where ``FP`` is the area
+    under the candidate curve ``1 - (1 - s**r)**b`` for ``s`` in
+    ``[0, threshold]`` and ``FN`` the area above it for ``s`` in
+    ``[threshold, 1]``; ties go to the smaller ``b``, then the smaller ``r``,
+    as in datasketch's search. The curves are polynomials of degree
+    ``b * r``, integrated exactly (up to rounding) by Gauss-Legendre
+    quadrature with ``num_perm // 2 + 1`` nodes, for ``num_perm`` up to 2046
+    (larger ``num_perm`` use 1024 nodes: very close, no longer exact).
+    Unlike datasketch this returns ``b == 1`` when that is optimal (only at
+    thresholds near 1) instead of refusing it.
+    """
+    threshold = float(threshold)
+    if not 0.0 <= threshold <= 1.0:
+        raise ValueError(f"threshold must be between 0 and 1, got {threshold}; hint: 0.8 is a common choice")
+    num_perm = _check_positive("num_perm", num_perm, "use the num_perm of the signatures")
+    if len(weights) != 2 or min(weights) < 0 or not math.isclose(sum(weights), 1.0):
+        raise ValueError(f"weights must be two non-negative numbers summing to 1, got {weights}; hint: (0.5, 0.5)")
+    false_positive_weight, false_negative_weight = (float(w) for w in weights)
+
+    bands = np.concatenate([np.full(num_perm // b, b) for b in range(1, num_perm + 1)])
+    rows = np.concatenate([np.arange(1, num_perm // b + 1) for b in range(1, num_perm + 1)])
+    nodes, node_weights = _gauss_legendre(min(num_perm // 2 + 1, _MAX_NODES))
+    # Map the nodes from [-1, 1] onto [0, threshold] and [threshold, 1].
+    below = threshold / 2 * (nodes + 1)
+    above = threshold + (1 - threshold) / 2 * (nodes + 1)
+    error = np.empty(len(bands))
+    step = max(1, _CURVE_CHUNK // len(nodes))
+    for lo in range(0, len(bands), step):
+        b = bands[lo : lo + step, None].astype(float)
+        r = rows[lo : lo + step, None].astype(float)
+        false_positive = threshold / 2 * ((1 - (1 - below**r) ** b) @ node_weights)
+        false_negative = (1 - threshold) / 2 * (((1 - above**r) ** b) @ node_weights)
+        error[lo : lo + step] = false_positive_weight * false_positive + false_negative_weight * false_negative
+    best = int(np.argmin(error))
+    return int(bands[best]), int(rows[best])
+
+
+def band_keys(signatures, b: int, r: int) -> np.ndarray:
+    """One 64-bit key per window and band, shape ``(windows, b)``, uint64.
+
+    Band ``k`` covers signature columns ``k * r`` to ``(k + 1) * r - 1``
+    (columns past ``b * r`` are not banded, as in datasketch). Its key is
+    ``mix64(h)`` with ``h = mix64(k)`` followed, for each of the ``r``
+    values ``v``, by ``h = h * POLY + mix64(v)`` (mod 2**64; ``mix64`` and
+    ``POLY`` from :mod:`lint.minhash`). Equal bands give equal keys; starting
+    from the band index keeps equal values in different bands apart. Two
+    different bands share a key with probability about 2**-64.
+    """
+    signatures = _as_signatures(signatures)
+    b = _check_positive("b", b, "take (b, r) from optimal_bands")
+    r = _check_positive("r", r, "take (b, r) from optimal_bands")
+    if b * r > signatures.shape[1]:
+        raise ValueError(
+            f"b * r = {b * r} exceeds the {signatures.shape[1]} values per signature; "
+            "hint: take (b, r) from optimal_bands"
+        )
+    values = signatures[:, : b * r].reshape(len(signatures), b, r)
+    keys = np.empty((len(signatures), b), dtype=np.uint64)
+    keys[:] = mix64(np.arange(b, dtype=np.uint64))
+    for j in range(r):
+        keys *= np.uint64(POLY)
+        keys += mix64(values[:, :, j].astype(np.uint64))
+    return mix64(keys)
+
+
+def signature_digests(signatures) -> np.ndarray:
+    """A 64-bit digest of each whole signature (uint64, one per window).
+
+    Windows with identical signatures have equal digests; different
+    signatures share a digest with probability about 2**-64. Passed to
+    :func:`candidate_pairs`, digests collapse floods of exact duplicates.
+    """
+    signatures = _as_signatures(signatures)
+    return band_keys(signatures, 1, signatures.shape[1])[:, 0]
+
+
+def candidate_pairs(keys, window_ids=None, *, digests=None, max_bucket: int = DEFAULT_MAX_BUCKET) -> Candidates:
+    """Pairs of windows that share at least one band key.
+
+    ``keys`` has shape ``(windows, b)`` as from :func:`band_keys`;
+    ``window_ids`` (default ``0 .. windows - 1``) names the rows, and may be
+    any int64 ids, e.g. global ids across shards. All entries
+    ``(key, window)`` are sorted together and each run of equal keys is a
+    bucket; within a bucket of ``m`` windows every one of the
+    ``m * (m - 1) / 2`` pairs is a candidate.
+
+    Huge buckets are guarded in two steps:
+
+    1. With ``digests`` (from :func:`signature_digests`), windows with the
+       same digest -- identical signatures -- are reduced to the one with the
+       smallest id. The result holds the pairs (that window, each other copy),
+       whose estimated Jaccard is 1, and the buckets are formed from these
+       representatives only. This loses nothing: a copy has the same
+       buckets and the same estimated Jaccard to every other window as its
+       representative, so the clusters of verified pairs are exactly those
+       that all pairs would give, however many copies there are.
+    2. A bucket that still holds more than ``max_bucket`` windows gets only
+       the pairs of its first (smallest) window with every other one and of
+       consecutive windows in id order: ``2m - 3`` pairs instead of
+       ``m * (m - 1) / 2``. These keep the bucket connected but cannot show
+       every similar pair, so verified clusters may then come out split;
+       ``Candidates.capped_buckets`` counts such buckets so that a report can
+       say so. Finding every similar pair in such a bucket requires checking
+       all of them, which is what the cap refuses to do.
+    """
+    keys = np.asarray(keys)
+    if keys.ndim != 2 or keys.dtype != np.uint64:
+        raise TypeError("keys must be a (windows, bands) uint64 array; hint: pass the result of band_keys")
+    ids = _window_ids(window_ids, len(keys))
+    max_bucket = _check_positive("max_bucket", max_bucket, f"the default is {DEFAULT_MAX_BUCKET}")
+    found = []
+    if digests is not None:
+        digests = np.asarray(digests)
+        if digests.shape != (len(keys),) or digests.dtype != np.uint64:
+            raise TypeError("digests must be one uint64 per window; hint: pass the result of signature_digests")
+        order = np.lexsort((ids, digests))
+        ordered = ids[order]
+        first = np.ones(len(order), dtype=bool)
+        first[1:] = digests[order][1:] != digests[order][:-1]
+        representative = ordered[np.maximum.accumulate(np.where(first, np.arange(len(order)), 0))]
+        found.append(np.column_stack((representative[~first], ordered[~first])))
+        keys, ids = keys[order[first]], ordered[first]
+
+    bucket_keys = keys.ravel()
+    members = np.repeat(ids, keys.shape[1])
+    order = np.lexsort((members, bucket_keys))
+    bucket_keys, members = bucket_keys[order], members[order]
+    repeated = np.zeros(len(members), dtype=bool)
+    repeated[1:] = (bucket_keys[1:] == bucket_keys[:-1]) & (members[1:] == members[:-1])
+    bucket_keys, members = bucket_keys[~repeated], members[~repeated]
+
+    starts = np.flatnonzero(np.concatenate(([True], bucket_keys[1:] != bucket_keys[:-1])))
+    sizes = np.diff(np.append(starts, len(members)))
+    largest = int(sizes.max()) if len(sizes) else 0
+    small = (sizes >= 2) & (sizes <= max_bucket)
+    # Every pair of a small bucket: each member pairs with the members after it.
+    after = np.repeat(np.where(small, starts + sizes, 0), sizes) - np.arange(len(members)) - 1
+    after = np.maximum(after, 0)
+    left = np.repeat(np.arange(len(members)), after)
+    right = left + 1 + _ragged_arange(after)
+    found.append(np.column_stack((members[left], members[right])))
+    # Large buckets: first member with each other one, and consecutive members.
+    large = np.flatnonzero(sizes > max_bucket)
+    if len(large):
+        position = np.repeat(starts[large], sizes[large] - 1) + _ragged_arange(sizes[large] - 1) + 1
+        head = np.repeat(starts[large], sizes[large] - 1)
+        found.append(np.column_stack((members[head], members[position])))
+        found.append(np.column_stack((members[position - 1], members[position])))
+
+    pairs = np.concatenate(found) if found else np.empty((0, 2), dtype=np.int64)
+    # Members are sorted by id, so every pair is (smaller, larger) already; a
+    # window id given twice could still pair with itself.
+    pairs = pairs[pairs[:, 0] != pairs[:, 1]]
+    pairs = pairs[np.lexsort((pairs[:, 1], pairs[:, 0]))]
+    keep = np.ones(len(pairs), dtype=bool)
+    keep[1:] = np.any(pairs[1:] != pairs[:-1], axis=1)
+    return Candidates(pairs[keep], int(len(large)), largest)
+
+
+def estimated_jaccard(sig_a, sig_b) -> np.ndarray:
+    """Estimated Jaccard similarity: the fraction of positions where two signatures agree.
+
+    ``sig_a`` and ``sig_b`` have shape ``(pairs, num_perm)`` (or broadcast to
+    it); returns float64 of shape ``(pairs,)``. The standard error of the
+    estimate for true similarity ``s`` is ``sqrt(s * (1 - s) / num_perm)``.
+    """
+    sig_a, sig_b = np.asarray(sig_a), np.asarray(sig_b)
+    if sig_a.shape[-1] != sig_b.shape[-1]:
+        raise ValueError("signatures must have the same num_perm; hint: make both with the same MinHash settings")
+    return np.count_nonzero(sig_a == sig_b, axis=-1) / sig_a.shape[-1]
+
+
+def clusters(pairs, windows) -> np.ndarray:
+    """Connected components of windows joined by pairs: one label per window.
+
+    ``windows`` is the number of windows (ids ``0 .. windows - 1``) or an
+    array of distinct window ids; ``pairs`` an ``(m, 2)`` array of ids. The
+    label of a window is the smallest id in its component -- its
+    representative, the first of the group in scan order when ids follow
+    scan order -- so a window that pairs with nothing is labelled with its
+    own id. Returns int64 labels aligned with ``windows``.
+
+    Union-find in whole-array steps: each step hooks, for every pair whose
+    ends lie in different trees, the larger root onto the smaller one
+    (``np.minimum.at`` keeps the smallest offer) and then compresses all
+    paths by pointer jumping. Every step merges at least one pair of trees,
+    so the loop ends; in practice the number of steps grows like the
+    logarithm of the component size (14 for a million windows chained in
+    random order).
+    """
+    if np.ndim(windows) == 0:
+        ids = np.arange(_check_count(windows), dtype=np.int64)
+    else:
+        ids = _window_ids(windows, np.size(windows))
+    sorted_ids = np.sort(ids)
+    if np.any(sorted_ids[1:] == sorted_ids[:-1]):
+        raise ValueError("window ids must be distinct; hint: give each window of the scan its own id")
+    pairs = np.asarray(pairs, dtype=np.int64).reshape(-1, 2)
+    where = np.searchsorted(sorted_ids, pairs)
+    if len(pairs) and (
+        np.any(where >= len(sorted_ids)) or np.any(sorted_ids[np.minimum(where, len(sorted_ids) - 1)] != pairs)
+    ):
+        raise ValueError("pairs name a window that is not among the windows; hint: pass every window id")
+    u, v = where[:, 0], where[:, 1]
+    parent = np.arange(len(sorted_ids))
+    while True:
+        root_u, root_v = parent[u], parent[v]
+        apart = root_u != root_v
+        if not apart.any():
+            break
+        np.minimum.at(parent, np.maximum(root_u, root_v)[apart], np.minimum(root_u, root_v)[apart])
+        while True:
+            jumped = parent[parent]
+            if np.array_equal(jumped, parent):
+                break
+            parent = jumped
+    return sorted_ids[parent[np.searchsorted(sorted_ids, ids)]]
+
+
+# --- helpers -------------------------------------------------------------------
+
+
+def _check_positive(name: str, value, hint: str) -> int:
+    if isinstance(value, bool):
+        raise TypeError(f"{name} must be an integer, got {value!r}; hint: {hint}")
+    try:
+        number = operator.index(value)
+    except TypeError:
+        raise TypeError(f"{name} must be an integer, got {value!r}; hint: {hint}") from None
+    if number < 1:
+        raise ValueError(f"{name} must be at least 1, got {number}; hint: {hint}")
+    return number
+
+
+def _check_count(windows) -> int:
+    if isinstance(windows, bool):
+        raise TypeError(f"windows must be a count or an array of ids, got {windows!r}; hint: pass len(signatures)")
+    try:
+        count = operator.index(windows)
+    except TypeError:
+        raise TypeError(
+            f"windows must be a count or an array of ids, got {windows!r}; hint: pass len(signatures)"
+        ) from None
+    if count < 0:
+        raise ValueError(f"windows must not be negative, got {count}; hint: pass len(signatures)")
+    return count
+
+
+def _as_signatures(signatures) -> np.ndarray:
+    signatures = np.asarray(signatures)
+    if signatures.ndim != 2 or signatures.dtype != np.uint32:
+        raise TypeError(
+            "signatures must be a (windows, num_perm) uint32 array; hint: pass the result of lint.minhash.signatures"
+        )
+    return signatures
+
+
+def _window_ids(window_ids, count: int) -> np.ndarray:
+    if window_ids is None:
+        return np.arange(count, dtype=np.int64)
+    ids = np.asarray(window_ids)
+    if ids.shape != (count,) or ids.dtype.kind not in "iu":
+        raise TypeError(
+            f"window ids must be {count} integers, one per window; hint: omit them to number rows 0, 1, ..."
+        )
+    return ids.astype(np.int64)
+
+
+def _ragged_arange(counts: np.ndarray) -> np.ndarray:
+    """0 .. c-1 for each count c, concatenated."""
+    total = int(counts.sum())
+    return np.arange(total) - np.repeat(np.cumsum(counts) - counts, counts)
+
+
+@lru_cache(maxsize=8)
+def _gauss_legendre(count: int) -> tuple[np.ndarray, np.ndarray]:
+    return np.polynomial.legendre.leggauss(count)
