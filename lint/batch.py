@@ -57,22 +57,43 @@ class Flat:
     def row_counts(self, mask: np.ndarray, lo: np.ndarray | None = None, hi: np.ndarray | None = None) -> np.ndarray:
         """How many positions of each row have ``mask`` set, optionally only within ``[lo, hi)`` (flat indices).
 
-        One ``np.add.reduceat`` over the mask with the row bounds interleaved: about one pass over the batch.
-        ``mask`` may also be a running count from :func:`running_count`, to reuse it for several ranges.
+        Whole rows take one ``np.add.reduceat`` over the mask as it is (no copy); a range that leaves out a few
+        positions at a row's ends subtracts those few. ``mask`` may also be a running count from
+        :func:`running_count`, to reuse it for several ranges.
         """
         n = self.values.size
-        lo = self.starts if lo is None else np.clip(lo, 0, n).astype(np.int64, copy=False)
-        hi = self.ends if hi is None else np.clip(np.maximum(hi, lo), 0, n).astype(np.int64, copy=False)
-        if mask.size == self.values.size + 1 and mask.dtype != bool:
+        if mask.size == n + 1 and mask.dtype != bool:
+            lo = self.starts if lo is None else np.clip(lo, 0, n)
+            hi = self.ends if hi is None else np.clip(np.maximum(hi, lo), 0, n)
             return mask[hi].astype(np.int64) - mask[lo]
-        if lo.size == 0:
-            return np.zeros(0, dtype=np.int64)
-        padded = np.zeros(mask.size + 1, dtype=np.int8)  # a zero at index N keeps every bound a valid index
-        padded[:-1] = mask
-        bounds = np.empty(2 * lo.size, dtype=np.int64)
-        bounds[0::2], bounds[1::2] = lo, hi
-        sums = np.add.reduceat(padded, bounds, dtype=np.int64)[0::2]
-        sums[lo >= hi] = 0  # reduceat gives the element itself for an empty range
+        full = self._segment_sums(mask)
+        if lo is None and hi is None:
+            return full
+        lo = self.starts if lo is None else np.clip(lo, self.starts, self.ends)
+        hi = self.ends if hi is None else np.clip(np.maximum(hi, lo), lo, self.ends)
+        head, tail = lo - self.starts, self.ends - hi
+        if max(int(head.max(initial=0)), int(tail.max(initial=0))) > EDGE_LIMIT:
+            return running_count_between(mask, lo, hi)
+        for j in range(int(head.max(initial=0))):  # a few edge positions per row, e.g. the k of a label shift
+            cut = head > j
+            full[cut] -= mask[self.starts[cut] + j]
+        for j in range(int(tail.max(initial=0))):
+            cut = tail > j
+            full[cut] -= mask[self.ends[cut] - 1 - j]
+        return full
+
+    def _segment_sums(self, mask: np.ndarray) -> np.ndarray:
+        """Per row, the sum of ``mask`` over the row (bool or integer mask)."""
+        rows = self.lengths.size
+        if rows == 0 or mask.size == 0:
+            return np.zeros(rows, dtype=np.int64)
+        data = mask.view(np.int8) if mask.dtype == bool else mask
+        filled = self.lengths > 0
+        if filled.all():
+            return np.add.reduceat(data, self.starts, dtype=np.int64)
+        # The starts of non-empty rows increase strictly, and each one's sum runs to the next one's start: its end.
+        sums = np.zeros(rows, dtype=np.int64)
+        sums[filled] = np.add.reduceat(data, self.starts[filled], dtype=np.int64)
         return sums
 
     def first_where(self, mask: np.ndarray) -> np.ndarray:
@@ -155,6 +176,16 @@ def running_count(mask: np.ndarray) -> np.ndarray:
     csum = np.zeros(mask.size + 1, dtype=np.int32 if mask.size < 2**31 - 1 else np.int64)
     np.cumsum(mask, out=csum[1:])
     return csum
+
+
+#: Ranges that leave out more than this many positions at a row's ends are counted with a running count.
+EDGE_LIMIT = 8
+
+
+def running_count_between(mask: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """Per range, how many of ``mask[lo:hi]`` are set (one cumulative sum over the mask)."""
+    count = running_count(mask)
+    return count[hi].astype(np.int64) - count[lo]
 
 
 def spans(n: int, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:

@@ -1,0 +1,68 @@
+"""Flat views of list columns and the segment primitives rules build on, against plain Python over the same
+rows (list slicing is the reference) and against pyarrow's own flattening."""
+from __future__ import annotations
+
+import numpy as np
+import pyarrow as pa
+import pytest
+
+from lint.batch import Flat, flatten_list, running_count, spans
+
+
+def random_rows(rng, max_rows=20, max_len=14):
+    lengths = rng.integers(0, max_len, size=rng.integers(0, max_rows))
+    offsets = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
+    return Flat(rng.integers(0, 5, size=offsets[-1]), offsets), offsets
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_row_counts_within_ranges_equal_slicing(seed):
+    rng = np.random.default_rng(seed)
+    for _ in range(300):
+        flat, offs = random_rows(rng)
+        mask = rng.random(offs[-1]) < 0.5
+        k = int(rng.integers(-12, 12))
+        lo, hi = flat.starts + max(0, -k), flat.ends - max(0, k)
+        expected = [int(mask[max(a, s):min(b, e)].sum()) if min(b, e) > max(a, s) else 0
+                    for a, b, s, e in zip(lo, hi, offs[:-1], offs[1:])]
+        assert flat.row_counts(mask, lo, hi).tolist() == expected
+        assert flat.row_counts(running_count(mask), lo, hi).tolist() == expected
+        assert flat.row_counts(mask).tolist() == [int(mask[s:e].sum()) for s, e in zip(offs[:-1], offs[1:])]
+
+
+def test_first_and_last_where_locate_take_and_spans():
+    rng = np.random.default_rng(7)
+    for _ in range(300):
+        flat, offs = random_rows(rng)
+        mask = rng.random(offs[-1]) < 0.3
+        rows = [np.flatnonzero(mask[s:e]) + s for s, e in zip(offs[:-1], offs[1:])]
+        assert flat.first_where(mask).tolist() == [int(r[0]) if r.size else -1 for r in rows]
+        assert flat.last_where(mask).tolist() == [int(r[-1]) if r.size else -1 for r in rows]
+        hits = np.flatnonzero(mask)
+        r, o = flat.locate(hits)
+        assert list(zip(r.tolist(), o.tolist())) == [(i, int(p - offs[i])) for i, rr in enumerate(rows) for p in rr]
+        pick = np.flatnonzero(rng.random(flat.lengths.size) < 0.5)
+        sub, source = flat.take(pick)
+        assert [sub.values[a:b].tolist() for a, b in zip(sub.starts, sub.ends)] == \
+            [flat.values[offs[i]:offs[i + 1]].tolist() for i in pick]
+        assert np.array_equal(flat.values[source], sub.values)
+        cuts = np.sort(rng.integers(0, offs[-1] + 1, size=2 * int(rng.integers(0, 5))))
+        expected = np.zeros(offs[-1], dtype=bool)
+        for a, b in zip(cuts[0::2], cuts[1::2]):
+            expected[a:b] = True
+        assert np.array_equal(spans(int(offs[-1]), cuts[0::2], cuts[1::2]), expected)
+
+
+@pytest.mark.parametrize("type_", [pa.list_(pa.int32()), pa.large_list(pa.int64()), pa.list_(pa.uint16())])
+def test_flatten_list_matches_pyarrow_including_slices_and_nulls(type_):
+    rows = [[1, 2, 3], None, [], [4], [5, 6]]
+    array = pa.array(rows, type=type_).slice(1)  # a sliced array: offsets do not start at 0
+    flat = flatten_list(array)
+    assert flat.lengths.tolist() == [0, 0, 1, 2]  # a null row reads as empty
+    assert flat.values.tolist() == pa.array(rows[1:], type=type_).flatten().to_pylist() == [4, 5, 6]
+
+
+def test_fixed_size_lists_flatten_with_regular_offsets():
+    array = pa.array([[1, 2], [3, 4], [5, 6]], type=pa.list_(pa.int32(), 2))
+    flat = flatten_list(array)
+    assert flat.offsets.tolist() == [0, 2, 4, 6] and flat.values.tolist() == [1, 2, 3, 4, 5, 6]
