@@ -26,7 +26,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from .minhash import POLY, mix64
+from .minhash import POLY, _check_int, mix64
 
 DEFAULT_MAX_BUCKET = 1024
 """Distinct signatures per bucket above which only a linear set of pairs is made."""
@@ -72,7 +72,7 @@ def optimal_bands(threshold: float, num_perm: int, weights: tuple[float, float] 
     threshold = float(threshold)
     if not 0.0 <= threshold <= 1.0:
         raise ValueError(f"threshold must be between 0 and 1, got {threshold}; hint: 0.8 is a common choice")
-    num_perm = _check_positive("num_perm", num_perm, "use the num_perm of the signatures")
+    num_perm = _check_int("num_perm", num_perm, 1, "use the num_perm of the signatures")
     if len(weights) != 2 or min(weights) < 0 or not math.isclose(sum(weights), 1.0):
         raise ValueError(f"weights must be two non-negative numbers summing to 1, got {weights}; hint: (0.5, 0.5)")
     false_positive_weight, false_negative_weight = (float(w) for w in weights)
@@ -107,8 +107,8 @@ def band_keys(signatures, b: int, r: int) -> np.ndarray:
     different bands share a key with probability about 2**-64.
     """
     signatures = _as_signatures(signatures)
-    b = _check_positive("b", b, "take (b, r) from optimal_bands")
-    r = _check_positive("r", r, "take (b, r) from optimal_bands")
+    b = _check_int("b", b, 1, "take (b, r) from optimal_bands")
+    r = _check_int("r", r, 1, "take (b, r) from optimal_bands")
     if b * r > signatures.shape[1]:
         raise ValueError(
             f"b * r = {b * r} exceeds the {signatures.shape[1]} values per signature; "
@@ -167,7 +167,7 @@ def candidate_pairs(keys, window_ids=None, *, digests=None, max_bucket: int = DE
     if keys.ndim != 2 or keys.dtype != np.uint64:
         raise TypeError("keys must be a (windows, bands) uint64 array; hint: pass the result of band_keys")
     ids = _window_ids(window_ids, len(keys))
-    max_bucket = _check_positive("max_bucket", max_bucket, f"the default is {DEFAULT_MAX_BUCKET}")
+    max_bucket = _check_int("max_bucket", max_bucket, 1, f"the default is {DEFAULT_MAX_BUCKET}")
     found = []
     if digests is not None:
         digests = np.asarray(digests)
@@ -278,18 +278,6 @@ def clusters(pairs, windows) -> np.ndarray:
 
 
 # --- helpers -------------------------------------------------------------------
-
-
-def _check_positive(name: str, value, hint: str) -> int:
-    if isinstance(value, bool):
-        raise TypeError(f"{name} must be an integer, got {value!r}; hint: {hint}")
-    try:
-        number = operator.index(value)
-    except TypeError:
-        raise TypeError(f"{name} must be an integer, got {value!r}; hint: {hint}") from None
-    if number < 1:
-        raise ValueError(f"{name} must be at least 1, got {number}; hint: {hint}")
-    return number
 
 
 def _check_count(windows) -> int:
