@@ -7,14 +7,13 @@ results in shard order, so the report is the same for any number of jobs.  The e
 """
 from __future__ import annotations
 
-import multiprocessing
 import os
 import time
-from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 from typing import Callable, Iterable
 
 from .batch import Shard, is_integer_list
+from .executors import LocalExecutor
 from .findings import Finding, Level
 from .rule import Rule, ShardState
 from .settings import Settings, SettingsError, infer_from_batch
@@ -144,24 +143,16 @@ def _scan_args(args):
 
 
 def run(shards: list[Shard], settings: Settings, rules: list[Rule], jobs: int = 1,
-        progress: Callable[[ShardResult, int, int], None] | None = None) -> Report:
-    """Scan shards (in a process pool when ``jobs`` > 1), then merge and finish every rule."""
+        progress: Callable[[ShardResult, int, int], None] | None = None, executor=None) -> Report:
+    """Scan shards with ``executor`` (default: a :class:`LocalExecutor` of ``jobs`` processes), then merge and
+    finish every rule in this process."""
     started = time.perf_counter()
-    work = [(shard, settings, rules) for shard in shards]
+    executor = executor or LocalExecutor(jobs)
     results: list[ShardResult] = []
-    if jobs > 1 and len(shards) > 1:
-        # forkserver, not fork: a forked child of a process whose Arrow thread pools are running can deadlock.
-        context = multiprocessing.get_context("forkserver" if os.name == "posix" else "spawn")
-        with ProcessPoolExecutor(max_workers=min(jobs, len(shards)), mp_context=context) as pool:
-            for result in pool.map(_scan_args, work):
-                results.append(result)
-                if progress:
-                    progress(result, len(results), len(shards))
-    else:
-        for item in work:
-            results.append(_scan_args(item))
-            if progress:
-                progress(results[-1], len(results), len(shards))
+    for result in executor.map(_scan_args, [(shard, settings, rules) for shard in shards]):
+        results.append(result)
+        if progress:
+            progress(result, len(results), len(shards))
     return finish(results, settings, rules, time.perf_counter() - started)
 
 
