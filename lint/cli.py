@@ -10,8 +10,8 @@ import click
 
 from . import __version__
 from .engine import run, select_rules
+from .report import droplist, sarif, text, write_atomic
 from .report import json as json_report
-from .report import sarif, text, write_atomic
 from .settings import FAIL_AT, LABEL_CONVENTIONS, SettingsError, build, load_config
 from .sources import NoShardsFound, discover
 
@@ -61,10 +61,13 @@ def main():
 @click.option("--skip", help="Do not run these rules (comma-separated ids).")
 @click.option("--sarif", "sarif_path", type=click.Path(dir_okay=False), help="Write a SARIF 2.1.0 report here.")
 @click.option("--json", "json_path", type=click.Path(dir_okay=False), help="Write a plain JSON report here.")
+@click.option("--drop-list", "drop_list_path", type=click.Path(dir_okay=False),
+              help="Write the windows to drop here, one JSON line {\"uri\", \"row\"} each: every exact or near "
+                   "duplicate but the first copy (scan order), from the rules exact-duplicate and near-duplicate.")
 @click.option("--fail-at", type=click.Choice(FAIL_AT), help="Exit 1 when a finding is at or above this level [default: error].")
 @click.option("--jobs", type=click.IntRange(min=1), help="Shards scanned in parallel [default: number of cores].")
 @click.option("--quiet", "-q", is_flag=True, help="No progress on stderr.")
-def scan(paths, config_path, sarif_path, json_path, jobs, quiet, **flags):
+def scan(paths, config_path, sarif_path, json_path, drop_list_path, jobs, quiet, **flags):
     """Scan shards (files, folders, globs) and report what would hurt training."""
     try:
         config, _ = load_config(config_path)
@@ -75,14 +78,27 @@ def scan(paths, config_path, sarif_path, json_path, jobs, quiet, **flags):
         raise UsageProblem(str(exc)) from None
     show = _progress(not quiet and sys.stderr.isatty())
     report = run(shards, settings, rules, jobs=jobs or os.cpu_count() or 1, progress=show)
-    for path, module in ((sarif_path, sarif), (json_path, json_report)):
+    for path, module in ((sarif_path, sarif), (json_path, json_report), (drop_list_path, droplist)):
         if path:
             try:
                 write_atomic(path, module.render(report))
             except OSError as exc:
                 raise UsageProblem(f"cannot write {path}: {exc.strerror or exc}") from None
+    if drop_list_path and droplist.NAME not in report.outputs:
+        click.echo(f"note: the drop list {drop_list_path} is empty: {_why_no_output(droplist.NAME, rules)}", err=True)
     click.echo(text.render(report), nl=False)
     sys.exit(report.exit_code)
+
+
+def _why_no_output(name: str, rules) -> str:
+    """Why no rule gave the output ``name``: none that makes it was selected, or the ones selected failed."""
+    makers = [rule_id for rule_id, cls in _registry().items() if name in cls.outputs]
+    ran = [rule.id for rule in rules if name in rule.outputs]
+    if ran:
+        return f"{', '.join(ran)} failed while reporting (see the notes in the summary)"
+    if not makers:
+        return f"no rule makes a {name}"
+    return f"only {', '.join(makers)} make(s) one, and none of them was selected (see --only / --skip)"
 
 
 @main.command("rules")

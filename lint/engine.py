@@ -52,6 +52,9 @@ class Report:
     metrics: dict
     notes: list[Note] = field(default_factory=list)
     settings: Settings | None = None
+    #: Extra outputs of the rules' ``corpus`` step by name (e.g. ``"drop-list"``); when several rules give the same
+    #: name, their lists are concatenated in rule order (entries may repeat; the writer of each output decides).
+    outputs: dict[str, list] = field(default_factory=dict)
 
     def worst(self) -> Level | None:
         return max((f.level for f in self.findings), default=None)
@@ -160,6 +163,7 @@ def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], se
     """The reduce step: per-shard findings, cross-shard findings, notes and corpus figures."""
     findings: list[Finding] = []
     notes: list[Note] = []
+    outputs: dict[str, list] = {}
     metrics: dict = {
         "shards": len(results),
         "rows": sum(r.rows for r in results),
@@ -180,9 +184,11 @@ def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], se
             findings += found
         corpus = _guard(rule, notes, None, lambda: rule.corpus(states))
         if corpus:
-            found, figures = corpus
+            found, figures, *extra = corpus
             findings += found
             metrics.update(figures)
+            for name, items in (extra[0] if extra else {}).items():
+                outputs.setdefault(name, []).extend(items)
     for result in results:
         for rule_id, why in result.crashed.items():
             notes.append(Note(Level.error, f"rule stopped on this shard after an internal error ({why}); "
@@ -191,7 +197,7 @@ def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], se
             notes.append(Note(Level.note, f"skipped: {why}", rule_id, result.shard.uri))
     notes += _inferred_notes(results)
     findings.sort(key=Finding.sort_key)
-    return Report(findings, [r.shard for r in results], rules, metrics, notes, settings)
+    return Report(findings, [r.shard for r in results], rules, metrics, notes, settings, outputs)
 
 
 def _guard(rule: Rule, notes: list[Note], uri: str | None, call):

@@ -74,6 +74,8 @@ class Rule:
       without them is not fed to the rule, and a shard none of whose batches had them gets a "skipped" note.
     * ``requires`` names settings that must be known (given or inferred), e.g. ``("vocab_size",)``.
     * ``options`` maps option names to defaults, set per rule in the config file under ``[rule.<id>]``.
+    * ``outputs`` names the extra outputs ``corpus`` may return (e.g. ``("drop-list",)``), so that a front end
+      can tell "no rule that makes it ran" from "nothing in it".
     """
 
     id: str = ""
@@ -83,6 +85,7 @@ class Rule:
     needs: dict[str, str] = {}
     requires: tuple[str, ...] = ()
     options: dict[str, object] = {}
+    outputs: tuple[str, ...] = ()
 
     def __init__(self, **options):
         unknown = set(options) - set(self.options)
@@ -123,8 +126,11 @@ class Rule:
         """Findings of one shard."""
         return []
 
-    def corpus(self, states: list[ShardState]) -> tuple[list[Finding], dict]:
-        """Findings that span shards and figures for the whole corpus (default: none)."""
+    def corpus(self, states: list[ShardState]) -> tuple[list[Finding], dict] | tuple[list[Finding], dict, dict]:
+        """Findings that span shards and figures for the whole corpus (default: none).
+
+        May return a third element: named outputs, each a list (e.g. ``{"drop-list": [{"uri": ..., "row": ...}]}``,
+        names listed in ``outputs``); the engine collects them into ``Report.outputs``."""
         return [], {}
 
     # -- helpers for subclasses ---------------------------------------------------------------------------

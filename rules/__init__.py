@@ -11,7 +11,8 @@ from importlib.metadata import entry_points
 from lint.rule import Rule
 
 #: Built-in rule families, one module each, in the order their rules are listed.
-FAMILIES = ("integrity", "separators", "attention", "token_range", "padding", "labels", "text", "lengths")
+FAMILIES = ("integrity", "separators", "attention", "token_range", "padding", "labels", "text", "lengths",
+            "duplicates")
 
 ENTRY_POINT_GROUP = "corpuscle.rules"
 

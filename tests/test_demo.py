@@ -16,6 +16,10 @@ DEMO = REPO / "fixtures" / "demo"
 CONFIG = REPO / "fixtures" / "demo.toml"
 
 
+def name(uri):
+    return uri.rsplit("/", 1)[-1] if uri else None
+
+
 def scan_demo(tmp_path):
     out = tmp_path / "demo.json"
     result = CliRunner().invoke(main, ["scan", str(DEMO), "--config", str(CONFIG), "--jobs", "1", "--json", str(out)])
@@ -26,7 +30,7 @@ def test_the_demo_scan_exits_1_and_finds_each_planted_defect(tmp_path):
     result, report = scan_demo(tmp_path)
     assert result.exit_code == 1, result.output
     assert "Traceback" not in result.output
-    found = {(f["rule"], f["uri"].rsplit("/", 1)[-1]) for f in report["findings"] if f["level"] != "note"}
+    found = {(f["rule"], name(f["uri"])) for f in report["findings"] if f["level"] != "note"}
     assert found == {
         ("label-alignment", "pantry_shifted_twice.parquet"),
         ("label-alignment", "recipes_padded.jsonl"),
@@ -41,14 +45,20 @@ def test_the_demo_scan_exits_1_and_finds_each_planted_defect(tmp_path):
         ("special-token-text", "notes_forum.jsonl"),
         ("encoding-error", "notes_forum.jsonl"),
         ("empty-document", "notes_forum.jsonl"),
+        ("exact-duplicate", None),  # notes_mirror.jsonl copies four notes of notes_text.jsonl word for word
+        ("near-duplicate", None),  # ... and three with their last word changed
     }
+    copies = {(f["rule"], tuple((name(i["uri"]), i["row"]) for i in f["instances"]))
+              for f in report["findings"] if f["rule"].endswith("duplicate")}
+    assert copies == {("exact-duplicate", (("notes_mirror.jsonl", r), ("notes_text.jsonl", r))) for r in range(4)} | \
+        {("near-duplicate", (("notes_mirror.jsonl", r), ("notes_text.jsonl", r))) for r in (4, 5, 6)}
     clean = {"pantry_packed_clean.parquet", "pantry_packed_aligned.parquet", "notes_text.jsonl"}
-    assert not [f for f in report["findings"] if f["uri"] and f["uri"].rsplit("/", 1)[-1] in clean]
+    assert not [f for f in report["findings"] if name(f["uri"]) in clean]
 
 
 def test_the_demo_counts_match_the_shards(tmp_path):
     _, report = scan_demo(tmp_path)
-    by = {(f["rule"], f["uri"].rsplit("/", 1)[-1] if f["uri"] else None, f["kind"]): f for f in report["findings"]}
+    by = {(f["rule"], name(f["uri"]), f["kind"]): f for f in report["findings"]}
 
     # Boundaries without eos (eos id 2 in the demo vocabulary): a position restart inside a row whose previous
     # token is not eos, counted with plain Python over the columns as pyarrow reads them.

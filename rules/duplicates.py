@@ -1,0 +1,716 @@
+"""Duplicate windows and documents across the whole scan: exact copies and near-duplicates.
+
+A duplicate is content the model sees more than once per epoch: it is weighted as if it were several examples,
+it is memorised more readily, and it spends budget that unseen text would have used. Two rules look for it:
+
+* ``exact-duplicate``: windows (or documents) whose content is identical;
+* ``near-duplicate``: windows whose shingle sets are similar above a threshold, estimated with MinHash and
+  locality-sensitive hashing (:mod:`lint.minhash`, :mod:`lint.lsh`) -- a statistical estimate, and the findings
+  say so.
+
+Windows
+    In a tokenized shard every row of the tokens column (``tokens_column``) is a window; in a text shard (no
+    tokens column) every document of the text column (``text_column``). Empty windows -- no tokens, or null or
+    empty text -- are left to ``empty-document``; a document with bytes but no words (punctuation only) has no
+    shingles and takes part in ``exact-duplicate`` only. Windows are compared as stored, padding included (a run
+    of padding adds one shingle to a window's shingle set, so it hardly moves a Jaccard similarity).
+
+Content hash (``exact-duplicate``, and ``near-duplicate`` to fold exact copies)
+    A window is a vector of 32-bit words: its token ids modulo 2**32 (so the same ids stored as int32 or int64
+    hash the same; ids that differ by a multiple of 2**32 -- never valid ids -- alias), or the bytes of its
+    UTF-8 text exactly as stored (no normalization: text that differs only in Unicode normalization or
+    whitespace is not an exact copy; the near-duplicate rule, which lowercases and splits into words, sees it).
+    Each of four lanes hashes the words ``s_0 .. s_{L-1}`` of a window with the multilinear family::
+
+        lane = (k_c + k_len * (2 * L + domain) + sum_j k_j * s_j)  mod 2**64,   keep lane >> 32
+
+    with ``domain`` 0 for token windows and 1 for text documents (a token window never equals a document), and
+    64-bit keys ``k`` from :func:`lint.minhash.mix64` of fixed inputs, independent per lane. For keys drawn at
+    random this family is strongly universal on its top 32 bits (multilinear hashing of 32-bit words, from
+    memory: Lemire and Kaser, "Strongly universal string hashing is fast", 2014), so two different windows agree
+    in one lane with probability 2**-32 and in all four -- the 128-bit content hash -- with probability 2**-128;
+    among ``n`` windows some pair collides with probability below ``n**2 / 2**129`` (about 1e-21 for a billion
+    windows). Our keys are fixed pseudo-random numbers, so the figure holds for data not built against them.
+    Whole batches are hashed at once: a reshape and ``np.einsum`` for windows of one length, ``np.add.reduceat``
+    over the words otherwise; no Python loop per window.
+
+Near-duplicates
+    Each window's shingles (``n`` consecutive tokens, or ``n`` consecutive words after lowercasing; a window
+    shorter than ``n`` is one shingle) get a MinHash signature of ``num_perm`` values (:mod:`lint.minhash`), cut
+    into ``b`` bands of ``r`` values with ``(b, r) = optimal_bands(threshold, num_perm)``. Per shard the state
+    keeps ``b`` band keys, a signature digest, the content hash, the row and the length of every window -- O(b)
+    per window -- while the signatures themselves go to a temporary ``.npy`` file (see :class:`SignatureSpill`).
+    The reduce step (``corpus``) gives every window a global id in scan order (the shard's offset plus its
+    index within the shard), folds exact copies into their first copy, concatenates the band keys of all shards
+    and groups them by key (:func:`lint.lsh.candidate_pairs`: the shape of a partitioned shuffle on a cluster),
+    verifies every candidate pair by its estimated Jaccard similarity (signatures read back from the files by
+    memory map, a chunk of pairs at a time) and joins the pairs at or above the threshold into clusters
+    (:func:`lint.lsh.clusters`). A cluster's representative is its first window in scan order.
+
+Exact copies inside near-duplicate clusters
+    Identical windows are reported by ``exact-duplicate`` only. A near-duplicate cluster is made of *distinct*
+    contents (at least two), each listed once by its first copy; the finding counts the further exact copies of
+    its members (``exactCopies``) and points to ``exact-duplicate`` for them. The drop list of ``near-duplicate``
+    still holds every window of the cluster but the representative, exact copies included, so that running
+    either rule alone and dropping its list removes what it reports.
+
+Temporary files
+    The signature files live in one folder per scan, ``corpuscle-minhash-<random>`` under the system temporary
+    folder (``TMPDIR``), created at the first window and removed at the end of ``corpus()`` -- also when it
+    fails -- and, should the scan be interrupted, when the process exits.
+"""
+from __future__ import annotations
+
+import os
+import shutil
+import struct
+import tempfile
+import uuid
+import weakref
+from dataclasses import dataclass
+
+import numpy as np
+import pyarrow.compute as pc
+import pyarrow.types as pat
+
+from lint.batch import Batch, is_integer_list, is_text
+from lint.findings import Finding, Level
+from lint.lsh import DEFAULT_MAX_BUCKET, band_keys, candidate_pairs, clusters, estimated_jaccard, optimal_bands
+from lint.lsh import signature_digests
+from lint.minhash import MinHashSettings, mix64, shingle_hashes, signatures, word_shingle_hashes
+from lint.rule import Rule, ShardState, share
+from rules.text import document_text
+
+TOKENS, TEXT = 0, 1
+"""Window domains: rows of a token column, documents of a text column."""
+
+DROP_LIST = "drop-list"
+"""Name of the extra output both rules give: ``[{"uri": ..., "row": ...}, ...]``, the windows to drop."""
+
+DEFAULT_MAX_CLUSTERS = 1000
+
+# Words hashed per step of content_hashes (bounds its scratch memory to about 32 MiB).
+_HASH_CHUNK = 1 << 20
+# Word positions whose keys are kept in a table (2 MiB); longer windows get their keys made piece by piece.
+_KEY_TABLE = 1 << 16
+# Windows per step of the MinHash signatures in feed (bounds the signature matrix of a batch).
+_SIGNATURE_WINDOWS = 8192
+# Candidate pairs verified per step in corpus (bounds the signatures read back at once).
+_VERIFY_PAIRS = 1 << 15
+# Lanes of the content hash; each keeps 32 bits.
+_LANES = 4
+_KEY_SEED = 0x5EED_C0DE_D0C5_F00D
+
+
+# -- the content hash -------------------------------------------------------------------------------------------
+
+
+def _key_block(first: int, count: int) -> np.ndarray:
+    """Keys ``first .. first + count - 1`` of every lane, shape ``(lanes, count)``."""
+    index = np.arange(first, first + count, dtype=np.uint64)[None, :] * np.uint64(_LANES)
+    index = index + np.arange(_LANES, dtype=np.uint64)[:, None]
+    return mix64(index ^ np.uint64(_KEY_SEED))
+
+
+_CONSTANT_KEYS = _key_block(0, 2)  # column 0: k_c, column 1: k_len
+_POSITION_KEYS = _key_block(2, _KEY_TABLE)  # column j: k_j of word position j
+
+
+def _position_keys(first: int, count: int) -> np.ndarray:
+    """Per-lane keys of word positions ``first .. first + count - 1``, shape ``(lanes, count)``."""
+    if first + count <= _KEY_TABLE:
+        return _POSITION_KEYS[:, first:first + count]
+    return _key_block(2 + first, count)
+
+
+def _words(values: np.ndarray) -> np.ndarray:
+    """Values as 32-bit words (modulo 2**32) in uint64, ready for the 64-bit multiply-add."""
+    if values.dtype == np.uint8:
+        return values.astype(np.uint64)
+    if values.dtype.itemsize == 4:
+        return values.view(np.uint32).astype(np.uint64)
+    return values.astype(np.uint32).astype(np.uint64)
+
+
+def content_hashes(values: np.ndarray, starts: np.ndarray, ends: np.ndarray, domain: int) -> np.ndarray:
+    """128-bit content hash of each window ``values[starts[i]:ends[i]]``, shape ``(windows, 2)``, uint64.
+
+    ``values`` is a flat integer array (token ids, or the uint8 bytes of text); the windows must be non-empty.
+    They usually lie back to back (``starts[i + 1] == ends[i]``), as the non-empty rows of an Arrow list or
+    string array do; when they do not, their values are gathered first. Equal windows of the same ``domain``
+    give equal hashes; see the module notes for the family and its collision probability.
+    """
+    starts = np.asarray(starts, dtype=np.int64)
+    ends = np.asarray(ends, dtype=np.int64)
+    lengths = ends - starts
+    if len(starts) > 1 and not np.array_equal(starts[1:], ends[:-1]):
+        packed = np.zeros(len(starts) + 1, dtype=np.int64)
+        np.cumsum(lengths, out=packed[1:])
+        values = values[np.arange(packed[-1]) + np.repeat(starts - packed[:-1], lengths)]
+        starts, ends = packed[:-1], packed[1:]
+    lanes = np.empty((len(starts), _LANES), dtype=np.uint64)
+    long = np.flatnonzero(lengths > _KEY_TABLE)
+    w0 = 0
+    while w0 < len(starts):
+        if lengths[w0] > _KEY_TABLE:  # one long window, a piece at a time
+            lanes[w0] = 0
+            for p0 in range(0, int(lengths[w0]), _HASH_CHUNK):
+                piece = _words(values[starts[w0] + p0:min(ends[w0], starts[w0] + p0 + _HASH_CHUNK)])
+                lanes[w0] += _position_keys(p0, len(piece)) @ piece
+            w0 += 1
+            continue
+        # Windows w0 .. w1 - 1: at most _HASH_CHUNK words (at least one window), none of them long.
+        w1 = int(np.searchsorted(ends, starts[w0] + _HASH_CHUNK, side="right"))
+        after = int(np.searchsorted(long, w0))
+        w1 = max(w0 + 1, min(w1, int(long[after]) if after < len(long) else len(starts)))
+        lo, hi = int(starts[w0]), int(ends[w1 - 1])
+        size = lengths[w0:w1]
+        words = _words(values[lo:hi])
+        longest = int(size.max())
+        keys = _position_keys(0, longest)
+        if np.all(size == longest):
+            lanes[w0:w1] = np.einsum("wl,kl->wk", words.reshape(w1 - w0, longest), keys)
+        else:
+            position = np.arange(hi - lo, dtype=np.int64) - np.repeat(starts[w0:w1] - lo, size)
+            for lane in range(_LANES):
+                lanes[w0:w1, lane] = np.add.reduceat(words * keys[lane][position], starts[w0:w1] - lo)
+        w0 = w1
+    lanes += _CONSTANT_KEYS[:, 0]
+    lanes += _CONSTANT_KEYS[:, 1] * (lengths.astype(np.uint64)[:, None] * np.uint64(2) + np.uint64(domain))
+    top = lanes >> np.uint64(32)
+    return np.column_stack((top[:, 0] << np.uint64(32) | top[:, 1], top[:, 2] << np.uint64(32) | top[:, 3]))
+
+
+def hex_digest(content: np.ndarray) -> str:
+    """A content hash as 32 hex digits (stable across runs: fingerprints of findings use it)."""
+    return f"{int(content[0]):016x}{int(content[1]):016x}"
+
+
+# -- the windows of a batch -------------------------------------------------------------------------------------
+
+
+@dataclass
+class Windows:
+    """The non-empty windows of one batch: batch-local index, shard row, length (tokens or UTF-8 bytes) and
+    content hash of each; ``domain`` says whether they are token rows or text documents."""
+
+    domain: int
+    local: np.ndarray
+    rows: np.ndarray
+    lengths: np.ndarray
+    content: np.ndarray
+
+
+_WINDOWS_CACHE: "weakref.WeakKeyDictionary[Batch, dict]" = weakref.WeakKeyDictionary()
+
+
+def window_domain(batch: Batch, settings) -> int | None:
+    """TOKENS when the batch has the tokens column as integer lists, else TEXT when it has the text column as
+    strings, else None. A shard with both columns is compared by its token windows (what the model trains on)."""
+    tok, text = settings.tokens_column, settings.text_column
+    if batch.has(tok) and is_integer_list(batch.type_of(tok)):
+        return TOKENS
+    if batch.has(text) and is_text(batch.type_of(text)):
+        return TEXT
+    return None
+
+
+def batch_windows(batch: Batch, settings) -> Windows:
+    """The windows of a batch (computed once per batch for both rules of this module)."""
+    per_batch = _WINDOWS_CACHE.setdefault(batch, {})
+    key = (settings.tokens_column, settings.text_column)
+    if key not in per_batch:
+        per_batch[key] = _windows(batch, settings)
+    return per_batch[key]
+
+
+def _windows(batch: Batch, settings) -> Windows:
+    domain = window_domain(batch, settings)
+    if domain == TOKENS:
+        flat = batch.flat(settings.tokens_column)
+        values, offsets = flat.values, flat.offsets
+        lengths = flat.lengths
+    else:
+        # The UTF-8 bytes of the documents, straight from the Arrow string buffer (as stored, not repaired).
+        array = batch.column(settings.text_column)
+        width = np.int64 if pat.is_large_string(array.type) else np.int32
+        buffers = array.buffers()
+        if len(array) == 0 or buffers[1] is None:
+            return Windows(TEXT, *(np.zeros(0, np.int64),) * 3, np.zeros((0, 2), np.uint64))
+        offsets = np.frombuffer(buffers[1], dtype=width)[array.offset:array.offset + len(array) + 1].astype(np.int64)
+        values = np.frombuffer(buffers[2], dtype=np.uint8) if buffers[2] is not None else np.zeros(0, np.uint8)
+        lengths = np.diff(offsets)
+        if array.null_count:
+            lengths[~pc.is_valid(array).to_numpy(zero_copy_only=False)] = 0  # Arrow allows bytes under a null
+    local = np.flatnonzero(lengths > 0)
+    content = content_hashes(values, offsets[local], offsets[local + 1], domain)
+    return Windows(domain, local, batch.rows[local], lengths[local].astype(np.int64), content)
+
+
+# -- signatures on disk -----------------------------------------------------------------------------------------
+
+
+class SignatureSpill:
+    """The MinHash signatures of one shard, appended batch by batch to a NumPy ``.npy`` file.
+
+    A ``.npy`` file states its shape in a header before the data, but the number of windows of a shard is known
+    only at its end. So the header is reserved as a fixed :attr:`HEADER_BYTES` bytes when the file is opened,
+    each batch's signatures are appended as little-endian uint32 rows, and :meth:`close` writes the header (NPY
+    format version 1.0: magic, version, header length, the dictionary padded with spaces and ended by a newline,
+    128 bytes in all, a multiple of 64 as the format asks). The result is an ordinary ``.npy`` file, read back
+    with ``np.load(path, mmap_mode="r")``. Only the path travels in the rule's state.
+    """
+
+    HEADER_BYTES = 128
+
+    def __init__(self, folder: str, num_perm: int):
+        try:
+            os.makedirs(folder, mode=0o700, exist_ok=True)
+            fd, self.path = tempfile.mkstemp(prefix="signatures-", suffix=".npy", dir=folder)
+        except OSError as exc:
+            raise OSError(f"cannot write MinHash signatures under {folder} ({exc.strerror or exc}); set TMPDIR to a "
+                          f"writable folder with room for {4 * num_perm} bytes per window") from None
+        self.num_perm = num_perm
+        self.windows = 0
+        self._file = os.fdopen(fd, "wb")
+        self._file.write(bytes(self.HEADER_BYTES))
+
+    def append(self, rows: np.ndarray) -> None:
+        rows = np.ascontiguousarray(rows, dtype="<u4")
+        if rows.ndim != 2 or rows.shape[1] != self.num_perm:
+            raise ValueError(f"signatures must have shape (windows, {self.num_perm}), got {rows.shape}")
+        self._file.write(rows.data)
+        self.windows += len(rows)
+
+    def close(self) -> str:
+        """Write the header and close the file; returns its path."""
+        header = {"descr": "<u4", "fortran_order": False, "shape": (self.windows, self.num_perm)}
+        text = repr(header).encode("latin1")
+        text = text.ljust(self.HEADER_BYTES - 10 - 1) + b"\n"
+        self._file.seek(0)
+        self._file.write(b"\x93NUMPY\x01\x00" + struct.pack("<H", len(text)) + text)
+        self._file.close()
+        return self.path
+
+
+# -- the whole scan's windows -----------------------------------------------------------------------------------
+
+
+class ScanWindows:
+    """The windows of all shards of a scan, with global ids in scan order (shard order, then row).
+
+    Window ``i`` of the shard at position ``s`` has id ``offsets[s] + i``. ``first_copy[id]`` is the id of the
+    first window with the same content hash, so a window is an exact copy of an earlier one when
+    ``first_copy[id] != id``. ``order`` sorts the ids by content, then id; ``group_starts`` and ``group_sizes``
+    give the start (in ``order``) and size of every run of equal content.
+    """
+
+    def __init__(self, states: list[ShardState]):
+        self.states = states
+        counts = [len(st.rows) for st in states]
+        self.offsets = np.zeros(len(states) + 1, dtype=np.int64)
+        np.cumsum(counts, out=self.offsets[1:])
+        self.count = int(self.offsets[-1])
+
+        def joined(name, shape, dtype):
+            parts = [getattr(st, name) for st in states]
+            return np.concatenate(parts) if parts else np.zeros(shape, dtype=dtype)
+
+        self.rows = joined("rows", 0, np.int64)
+        self.lengths = joined("lengths", 0, np.int64)
+        self.domains = joined("domains", 0, np.uint8)
+        self.content = joined("content", (0, 2), np.uint64)
+        self.shard_of = np.repeat(np.arange(len(states)), counts)
+        # Exact copies: sort by content, then id; a run of equal content is one group, its first id the first copy.
+        self.order = np.lexsort((np.arange(self.count), self.content[:, 1], self.content[:, 0]))
+        ordered = self.content[self.order]
+        new = np.ones(self.count, dtype=bool)
+        new[1:] = np.any(ordered[1:] != ordered[:-1], axis=1)
+        self.group_starts = np.flatnonzero(new)
+        self.group_sizes = np.diff(np.append(self.group_starts, self.count))
+        first = self.order[self.group_starts]
+        self.first_copy = np.empty(self.count, dtype=np.int64)
+        self.first_copy[self.order] = np.repeat(first, self.group_sizes)
+
+    def uri(self, window: int) -> str:
+        return self.states[int(self.shard_of[window])].uri
+
+    def drop_entries(self, windows: np.ndarray) -> list[dict]:
+        """``{"uri", "row"}`` of each window id (in the order given)."""
+        uris = [st.uri for st in self.states]
+        return [{"uri": uris[s], "row": r} for s, r in zip(self.shard_of[windows].tolist(),
+                                                              self.rows[windows].tolist())]
+
+    def sizes(self, windows: np.ndarray) -> dict:
+        """Token and text-byte totals of the given windows."""
+        tokens = self.domains[windows] == TOKENS
+        return {"tokens": int(self.lengths[windows][tokens].sum()),
+                "textBytes": int(self.lengths[windows][~tokens].sum())}
+
+    def group_finding(self, rule: Rule, members: np.ndarray, kind: str, message: str, cap: int,
+                      **evidence) -> Finding:
+        """A finding over windows of possibly several shards: instances carry the uri; members in id order."""
+        members = np.sort(members)
+        shown = members[:cap]
+        shards = np.unique(self.shard_of[members])
+        single = self.states[int(shards[0])].shard if len(shards) == 1 else None
+        finding = Finding(rule.id, rule.level, message, single.uri if single else None, kind=kind,
+                          count=int(len(members)), rows=self.rows[shown].copy(),
+                          offsets=np.full(len(shown), -1, dtype=np.int64),
+                          instance_uris=[self.states[s].uri for s in self.shard_of[shown].tolist()],
+                          truncated=len(members) > len(shown), evidence=evidence)
+        if single is not None and single.line_based:
+            finding.start_line = int(self.rows[members[0]]) + 1
+        return finding
+
+
+def _unit(domain: int) -> tuple[str, str]:
+    """(what a window is called, what its length counts) for messages."""
+    return ("windows", "tokens") if domain == TOKENS else ("documents", "UTF-8 bytes")
+
+
+def _size_evidence(domain: int, total: int, redundant: int) -> dict:
+    if domain == TOKENS:
+        return {"tokens": total, "redundantTokens": redundant}
+    return {"textBytes": total, "redundantTextBytes": redundant}
+
+
+def _fractions(scan: ScanWindows, duplicates: np.ndarray, windows: np.ndarray) -> dict:
+    """Counts and shares of duplicate windows, tokens and text bytes among ``windows``."""
+    whole, dup = scan.sizes(windows), scan.sizes(duplicates)
+    return {
+        "windows": int(len(windows)), "duplicateWindows": int(len(duplicates)),
+        "windowFraction": share(len(duplicates), len(windows)),
+        "tokens": whole["tokens"], "duplicateTokens": dup["tokens"],
+        "tokenFraction": share(dup["tokens"], whole["tokens"]),
+        "textBytes": whole["textBytes"], "duplicateTextBytes": dup["textBytes"],
+        "textByteFraction": share(dup["textBytes"], whole["textBytes"]),
+    }
+
+
+def _check_int(rule_id: str, name: str, value, minimum: int, hint: str) -> int:
+    if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
+        raise ValueError(f"rule {rule_id}: {name} must be an integer >= {minimum}, got {value!r}; hint: {hint}")
+    return value
+
+
+# -- the rules --------------------------------------------------------------------------------------------------
+
+
+class _DuplicateRule(Rule):
+    """Shared by both rules: the windows of a batch and the per-shard arrays of them."""
+
+    needs = {"tokens_column": "int-list", "text_column": "text"}  # either of them: see missing()
+    outputs = (DROP_LIST,)
+
+    def missing(self, batch, settings):
+        """Either column is enough: token rows when the shard has them, documents otherwise."""
+        if window_domain(batch, settings) is not None:
+            return None
+        return (f"neither a token column {settings.tokens_column!r} (integer lists) nor a text column "
+                f"{settings.text_column!r} (strings); one of them is needed")
+
+    def begin(self, shard, settings):
+        state = super().begin(shard, settings)
+        state.parts = {"rows": [], "lengths": [], "domains": [], "content": []}
+        return state
+
+    def _keep(self, state, windows: Windows, select: np.ndarray | None = None) -> None:
+        pick = slice(None) if select is None else select
+        state.parts["rows"].append(windows.rows[pick])
+        state.parts["lengths"].append(windows.lengths[pick])
+        state.parts["content"].append(windows.content[pick])
+        state.parts["domains"].append(np.full(len(windows.rows[pick]), windows.domain, dtype=np.uint8))
+
+    def end(self, state):
+        parts = state.__dict__.pop("parts")
+        state.rows = np.concatenate(parts["rows"]) if parts["rows"] else np.zeros(0, np.int64)
+        state.lengths = np.concatenate(parts["lengths"]) if parts["lengths"] else np.zeros(0, np.int64)
+        state.domains = np.concatenate(parts["domains"]) if parts["domains"] else np.zeros(0, np.uint8)
+        state.content = np.concatenate(parts["content"]) if parts["content"] else np.zeros((0, 2), np.uint64)
+        return state
+
+    def _max_clusters(self) -> int:
+        return _check_int(self.id, "max_clusters", self.opts["max_clusters"], 0,
+                          f"findings listed before one summary finding; the default is {DEFAULT_MAX_CLUSTERS}")
+
+
+class ExactDuplicate(_DuplicateRule):
+    """Windows (token rows) or documents (text) whose content is identical, within a shard or across shards.
+    Every extra copy is trained on once more per epoch: it weights that content as several examples, makes
+    verbatim memorisation more likely, and spends tokens that new text would have used; copies that straddle a
+    train/validation split also inflate evaluation. Content is compared by a 128-bit hash of the token ids, or
+    of the document's UTF-8 bytes exactly as stored (no normalization); the chance that two different windows
+    share it is about 2**-128 (see the module notes of rules/duplicates.py). Empty windows are left to
+    empty-document."""
+
+    id = "exact-duplicate"
+    level = Level.warning
+    summary = "Identical windows (the same token ids) or byte-identical documents, within a shard or across shards."
+    help = ("Keep the first copy of each group (scan order: shard order, then row) and drop the others: "
+            "`corpuscle scan ... --drop-list FILE` writes one JSON line {\"uri\", \"row\"} per window to drop. "
+            "Deduplicate before packing and tokenizing, and across every shard that goes into one run.")
+    options = {"max_clusters": DEFAULT_MAX_CLUSTERS}
+
+    def __init__(self, **options):
+        super().__init__(**options)
+        self._max_clusters()
+
+    def feed(self, state, batch):
+        self._keep(state, batch_windows(batch, state.settings))
+
+    def corpus(self, states):
+        scan = ScanWindows(states)
+        cap = states[0].cap if states else 0
+        sizes, starts = scan.group_sizes, scan.group_starts
+        repeated = np.flatnonzero(sizes >= 2)
+        # Largest groups first, then the one whose first copy comes first.
+        first = scan.order[starts[repeated]]
+        repeated = repeated[np.lexsort((first, -sizes[repeated]))]
+        listed = repeated[:self._max_clusters()]
+        findings = []
+        for g in listed.tolist():
+            members = scan.order[starts[g]:starts[g] + sizes[g]]
+            findings.append(self._group(scan, members, cap))
+        if len(repeated) > len(listed):
+            findings.append(self._rest(scan, repeated[len(listed):], cap))
+        copies = np.flatnonzero(scan.first_copy != np.arange(scan.count))
+        metrics = {"exactDuplicates": {"groups": int(len(repeated)), **_fractions(scan, copies,
+                                                                                  np.arange(scan.count))}}
+        return findings, metrics, {DROP_LIST: scan.drop_entries(copies)}
+
+    def _group(self, scan: ScanWindows, members: np.ndarray, cap: int) -> Finding:
+        head = int(members[0])
+        domain = int(scan.domains[head])
+        what, unit = _unit(domain)
+        length = int(scan.lengths[head])
+        copies = len(members)
+        extra = "extra copy adds" if copies == 2 else "extra copies add"
+        message = (f"{copies:,} {what} are exact copies of each other ({length:,} {unit} each); the "
+                   f"{copies - 1:,} {extra} {length * (copies - 1):,} {unit} per epoch and weight this content "
+                   f"{copies}x. The first copy is {scan.uri(head)} row "
+                   f"{int(scan.rows[head]):,}: keep it and drop the others (--drop-list FILE writes the rows to "
+                   "drop).")
+        return scan.group_finding(self, members, f"copies-{hex_digest(scan.content[head])}", message, cap,
+                                  copies=copies, contentHash=hex_digest(scan.content[head]),
+                                  **_size_evidence(domain, length * copies, length * (copies - 1)))
+
+    def _rest(self, scan: ScanWindows, groups: np.ndarray, cap: int) -> Finding:
+        heads = scan.order[scan.group_starts[groups]]
+        extra = int((scan.group_sizes[groups] - 1).sum())
+        message = (f"{len(groups):,} more groups of exact copies ({extra:,} extra copies) are not listed one by "
+                   f"one (max_clusters = {self._max_clusters():,}); the instances are their first copies. They "
+                   "are in the corpus figures and in the drop list (--drop-list FILE). Raise max_clusters under "
+                   "[rule.exact-duplicate] to list them.")
+        return scan.group_finding(self, heads, "more-groups", message, cap, groups=int(len(groups)),
+                                  extraCopies=extra)
+
+
+class NearDuplicate(_DuplicateRule):
+    """Windows (token rows) or documents (text) that are near-duplicates: their sets of n-token shingles (or
+    n-word shingles after lowercasing) have an estimated Jaccard similarity at or above the threshold. Near
+    copies -- the same page with a different header, a boilerplate licence, a document re-tokenized after a
+    small edit -- act like exact copies in training: repeated content, more memorisation, less new text per
+    token. The similarity is estimated with MinHash signatures and found with locality-sensitive hashing
+    (b bands of r values): a heuristic, so a pair close to the threshold can be missed or included by chance
+    (the standard error of an estimate s is sqrt(s(1-s)/num_perm)). Exact copies are reported by exact-duplicate;
+    a cluster here has at least two different contents."""
+
+    id = "near-duplicate"
+    level = Level.warning
+    summary = "Windows or documents whose estimated Jaccard similarity (MinHash LSH) is at or above the threshold."
+    help = ("Keep the first window of each cluster (scan order: shard order, then row) and drop the others: "
+            "`corpuscle scan ... --drop-list FILE` writes one JSON line {\"uri\", \"row\"} per window to drop. "
+            "Near-deduplicate the documents before packing. If the listed windows are meant to be alike (shared "
+            "templates), raise threshold under [rule.near-duplicate].")
+    options = {"threshold": 0.8, "num_perm": 128, "seed": 1, "n": 5, "max_clusters": DEFAULT_MAX_CLUSTERS,
+               "max_bucket": DEFAULT_MAX_BUCKET}
+
+    def __init__(self, **options):
+        super().__init__(**options)
+        threshold = self.opts["threshold"]
+        if isinstance(threshold, bool) or not isinstance(threshold, (int, float)) or not 0 < threshold <= 1:
+            raise ValueError(f"rule {self.id}: threshold must be a number in (0, 1], got {threshold!r}; hint: 0.8 "
+                             "finds near copies, 0.5 also loosely related windows")
+        try:
+            self.minhash = MinHashSettings(num_perm=self.opts["num_perm"], n=self.opts["n"], seed=self.opts["seed"])
+        except (TypeError, ValueError) as exc:
+            raise ValueError(f"rule {self.id}: {exc}") from None
+        self._max_clusters()
+        _check_int(self.id, "max_bucket", self.opts["max_bucket"], 1,
+                   f"windows per LSH bucket paired in full; the default is {DEFAULT_MAX_BUCKET}")
+        self.threshold = float(threshold)
+        self.bands, self.rows_per_band = optimal_bands(self.threshold, self.minhash.num_perm)
+        # One folder per scan for the signature files: the path travels with the rule to worker processes.
+        self.spill_folder = os.path.join(tempfile.gettempdir(), f"corpuscle-minhash-{uuid.uuid4().hex}")
+        weakref.finalize(self, shutil.rmtree, self.spill_folder, True)  # an interrupted scan leaves nothing
+
+    def begin(self, shard, settings):
+        state = super().begin(shard, settings)
+        state.parts.update(keys=[], digests=[])
+        state.spill = None
+        return state
+
+    def feed(self, state, batch):
+        windows = batch_windows(batch, state.settings)
+        n = self.minhash.n
+        if windows.domain == TOKENS:
+            flat = batch.flat(state.settings.tokens_column)
+            hashes, offsets = shingle_hashes(flat.values, flat.offsets, n)
+        else:
+            text = document_text(batch, state.settings)
+            if text.array is None:
+                return
+            hashes, offsets = word_shingle_hashes(text.array, n)
+        shingled = np.flatnonzero(offsets[1:] > offsets[:-1])  # windows with at least one shingle
+        if len(shingled) == 0:
+            return
+        # Shingled windows are non-empty, so each is one of ``windows``.
+        self._keep(state, windows, np.searchsorted(windows.local, shingled))
+        if state.spill is None:
+            state.spill = SignatureSpill(self.spill_folder, self.minhash.num_perm)
+        for lo in range(0, len(shingled), _SIGNATURE_WINDOWS):
+            chosen = shingled[lo:lo + _SIGNATURE_WINDOWS]
+            first, last = int(chosen[0]), int(chosen[-1])
+            block = signatures(hashes, offsets[first:last + 2], self.minhash.num_perm, self.minhash.seed)
+            block = block[chosen - first]
+            state.spill.append(block)
+            state.parts["keys"].append(band_keys(block, self.bands, self.rows_per_band))
+            state.parts["digests"].append(signature_digests(block))
+
+    def end(self, state):
+        keys, digests = state.parts["keys"], state.parts["digests"]
+        state = super().end(state)
+        state.keys = np.concatenate(keys) if keys else np.zeros((0, self.bands), np.uint64)
+        state.digests = np.concatenate(digests) if digests else np.zeros(0, np.uint64)
+        spill = state.__dict__.pop("spill")
+        state.signatures_path = spill.close() if spill is not None else None
+        return state
+
+    # -- the reduce step -------------------------------------------------------------------------------------------
+
+    def corpus(self, states):
+        try:
+            return self._corpus(states)
+        finally:
+            shutil.rmtree(self.spill_folder, ignore_errors=True)
+
+    def _corpus(self, states):
+        scan = ScanWindows(states)
+        cap = states[0].cap if states else 0
+        ids = np.arange(scan.count)
+        distinct = np.flatnonzero(scan.first_copy == ids)
+        keys = np.concatenate([st.keys for st in states]) if states else np.zeros((0, self.bands), np.uint64)
+        digests = np.concatenate([st.digests for st in states]) if states else np.zeros(0, np.uint64)
+        found = candidate_pairs(keys[distinct], distinct, digests=digests[distinct],
+                                max_bucket=self.opts["max_bucket"])
+        pairs = found.pairs
+        pairs = pairs[scan.domains[pairs[:, 0]] == scan.domains[pairs[:, 1]]]  # a document never pairs a window
+        similarity = self._verify(scan, pairs)
+        kept = similarity >= self.threshold
+        pairs, similarity = pairs[kept], similarity[kept]
+
+        label = np.full(scan.count, -1, dtype=np.int64)
+        label[distinct] = clusters(pairs, distinct)
+        label = label[scan.first_copy]  # an exact copy belongs to its first copy's cluster
+        members = np.bincount(label[distinct], minlength=scan.count)  # distinct contents per cluster
+        in_cluster = members[label] >= 2
+        drop = np.flatnonzero(in_cluster & (label != ids))
+        near = drop[scan.first_copy[drop] == drop]  # distinct contents beyond the first: this rule's share
+
+        heads = np.flatnonzero((label == ids) & (members >= 2))
+        # Largest first (distinct contents, then all windows), then the one whose first window comes first.
+        windows_per = np.bincount(label[in_cluster], minlength=scan.count)
+        heads = heads[np.lexsort((heads, -windows_per[heads], -members[heads]))]
+        listed = heads[:self._max_clusters()]
+        findings = self._findings(scan, listed, label, pairs, similarity, found.capped_buckets, cap)
+        if len(heads) > len(listed):
+            findings.append(self._rest(scan, heads[len(listed):], members, cap))
+        metrics = {"nearDuplicates": {
+            "threshold": self.threshold, "bands": self.bands, "rowsPerBand": self.rows_per_band,
+            "numPerm": self.minhash.num_perm, "shingleSize": self.minhash.n, "clusters": int(len(heads)),
+            **_fractions(scan, near, ids),
+            "candidatePairs": int(len(found.pairs)), "verifiedPairs": int(len(pairs)),
+            "cappedBuckets": found.capped_buckets, "largestBucket": found.largest_bucket,
+        }}
+        return findings, metrics, {DROP_LIST: scan.drop_entries(drop)}
+
+    def _verify(self, scan: ScanWindows, pairs: np.ndarray) -> np.ndarray:
+        """Estimated Jaccard similarity of each pair, reading the signatures of a chunk of pairs at a time."""
+        similarity = np.empty(len(pairs), dtype=np.float64)
+        paths = [st.signatures_path for st in scan.states]
+        for lo in range(0, len(pairs), _VERIFY_PAIRS):
+            chunk = pairs[lo:lo + _VERIFY_PAIRS]
+            needed, where = np.unique(chunk, return_inverse=True)
+            where = where.reshape(chunk.shape)
+            block = np.empty((len(needed), self.minhash.num_perm), dtype=np.uint32)
+            shard = scan.shard_of[needed]
+            cuts = np.flatnonzero(np.diff(shard)) + 1
+            for a, b in zip(np.concatenate(([0], cuts)).tolist(), np.concatenate((cuts, [len(needed)])).tolist()):
+                s = int(shard[a])
+                stored = np.load(paths[s], mmap_mode="r")  # reads only the rows asked for
+                block[a:b] = stored[needed[a:b] - scan.offsets[s]]
+                del stored
+            similarity[lo:lo + len(chunk)] = estimated_jaccard(block[where[:, 0]], block[where[:, 1]])
+        return similarity
+
+    def _findings(self, scan, heads, label, pairs, similarity, capped, cap) -> list[Finding]:
+        if len(heads) == 0:
+            return []
+        # Verified pairs by cluster, for the lowest and mean similarity of each.
+        pair_label = label[pairs[:, 0]]
+        by_pair = np.argsort(pair_label, kind="stable")
+        pair_label, similarity = pair_label[by_pair], similarity[by_pair]
+        # Windows by cluster, in id order.
+        members = np.flatnonzero(np.isin(label, heads))
+        members = members[np.argsort(label[members], kind="stable")]
+        member_label = label[members]
+        out = []
+        for head in heads.tolist():
+            lo, hi = np.searchsorted(member_label, head), np.searchsorted(member_label, head, side="right")
+            group = members[lo:hi]
+            distinct = group[scan.first_copy[group] == group]
+            p_lo, p_hi = np.searchsorted(pair_label, head), np.searchsorted(pair_label, head, side="right")
+            sims = similarity[p_lo:p_hi]
+            out.append(self._cluster(scan, head, distinct, len(group) - len(distinct), sims, capped, cap))
+        return out
+
+    def _cluster(self, scan, head, distinct, copies, sims, capped, cap) -> Finding:
+        domain = int(scan.domains[head])
+        what, unit = _unit(domain)
+        lowest, mean = float(sims.min()), float(sims.mean())
+        total = int(scan.lengths[distinct].sum())
+        shingles = f"{self.minhash.n}-{'token' if domain == TOKENS else 'word'} shingles"
+        message = (f"{len(distinct):,} {what} are near-duplicates: estimated Jaccard similarity of their "
+                   f"{shingles} {lowest:.2f} at the lowest, {mean:.2f} on average over {len(sims):,} verified "
+                   f"pair(s) ({total:,} {unit} in all). This is an estimate, a heuristic and not a proof: MinHash LSH "
+                   f"with {self.minhash.num_perm} permutations in b x r = {self.bands} x {self.rows_per_band} "
+                   f"(bands x rows), threshold {self.threshold:g}.")
+        if copies:
+            message += f" {copies:,} exact cop{'y' if copies == 1 else 'ies'} of these {what} are reported by " \
+                       "exact-duplicate."
+        if capped:
+            message += (f" {capped:,} LSH bucket(s) were too large to pair in full (max_bucket), so clusters may "
+                        "come out split.")
+        message += (f" The first is {scan.uri(head)} row {int(scan.rows[head]):,}: keep it and drop the others "
+                    "(--drop-list FILE writes the rows to drop).")
+        return scan.group_finding(
+            self, distinct, f"cluster-{hex_digest(scan.content[head])}", message, cap,
+            windows=int(len(distinct)), exactCopies=int(copies), similarityMin=round(lowest, 4),
+            similarityMean=round(mean, 4), verifiedPairs=int(len(sims)), threshold=self.threshold,
+            bands=self.bands, rowsPerBand=self.rows_per_band, numPerm=self.minhash.num_perm,
+            shingleSize=self.minhash.n, method="MinHash LSH estimate (heuristic)",
+            **_size_evidence(domain, total, total - int(scan.lengths[head])))
+
+    def _rest(self, scan, heads, members, cap) -> Finding:
+        windows = int(members[heads].sum())
+        message = (f"{len(heads):,} more near-duplicate clusters ({windows:,} distinct windows or documents) are "
+                   f"not listed one by one (max_clusters = {self._max_clusters():,}); the instances are their "
+                   "first windows. They are estimates like the listed ones (MinHash LSH, heuristic), counted in "
+                   "the corpus figures and included in the drop list (--drop-list FILE). Raise max_clusters under "
+                   "[rule.near-duplicate] to list them.")
+        return scan.group_finding(self, heads, "more-clusters", message, cap, clusters=int(len(heads)),
+                                  windows=windows)
+
+
+RULES = [NearDuplicate, ExactDuplicate]
