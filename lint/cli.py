@@ -2,6 +2,7 @@
 engine, hand the report to the reporters.  Usage problems exit 2 with a message that says what to do."""
 from __future__ import annotations
 
+import contextlib
 import os
 import sys
 import textwrap
@@ -10,8 +11,10 @@ import click
 
 from . import __version__
 from .engine import run, select_rules
+from .progress import TerminalProgress
 from .report import droplist, sarif, text, write_atomic
 from .report import json as json_report
+from .sampling import Sample
 from .settings import FAIL_AT, LABEL_CONVENTIONS, SettingsError, build, load_config
 from .sources import NoShardsFound, discover
 
@@ -31,14 +34,29 @@ def _registry():
         raise UsageProblem(str(exc)) from None
 
 
-def _progress(enabled: bool):
-    if not enabled:
+def _progress(quiet: bool):
+    """A progress bar on stderr when stderr is a terminal and --quiet is not given; else None (nothing shown)."""
+    if quiet or not sys.stderr.isatty():
         return None
+    return TerminalProgress(sys.stderr)
 
-    def show(result, done, total):
-        click.echo(f"\r  scanned {done}/{total} shards ({result.shard.uri})".ljust(79)[:79], err=True, nl=done == total)
 
-    return show
+@contextlib.contextmanager
+def _executor(address: str | None, jobs: int | None):
+    """The executor of --cluster, connected (and closed at the end), or None for the local process pool."""
+    if address is None:
+        yield None
+        return
+    from .executors import ClusterUnavailable, DaskExecutor
+
+    try:
+        executor = DaskExecutor(address, jobs).__enter__()
+    except (ClusterUnavailable, ValueError) as exc:
+        raise UsageProblem(str(exc)) from None
+    try:
+        yield executor
+    finally:
+        executor.close()
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
@@ -66,9 +84,22 @@ def main():
                    "duplicate but the first copy (scan order), from the rules exact-duplicate and near-duplicate.")
 @click.option("--fail-at", type=click.Choice(FAIL_AT), help="Exit 1 when a finding is at or above this level [default: error].")
 @click.option("--jobs", type=click.IntRange(min=1), help="Shards scanned in parallel [default: number of cores].")
+@click.option("--cluster", metavar="ADDRESS",
+              help="Scan on a Dask cluster: the address of its scheduler (e.g. tcp://10.0.0.5:8786), or 'local' to "
+                   "start one on this machine with --jobs worker processes. The workers must read the shards at the "
+                   "same paths (a shared file system, or s3://, gs://, hdfs:// URIs). Needs "
+                   "pip install 'corpuscle[cluster]'.")
+@click.option("--sample", "sample_fraction", type=click.FloatRange(0, 1, min_open=True), metavar="FRACTION",
+              help="Scan a reproducible random subset: each row group, record batch or block of JSON lines is read "
+                   "with this probability. Finding counts are then as observed in the sample; the report gives "
+                   "estimates with 95% intervals.")
+@click.option("--seed", "sample_seed", type=click.IntRange(min=0), default=0, show_default=True,
+              help="Seed of --sample (the same seed picks the same units in every run and for any --jobs).")
 @click.option("--quiet", "-q", is_flag=True, help="No progress on stderr.")
-def scan(paths, config_path, sarif_path, json_path, drop_list_path, jobs, quiet, **flags):
+def scan(paths, config_path, sarif_path, json_path, drop_list_path, jobs, sample_fraction, sample_seed, quiet,
+         **flags):
     """Scan shards (files, folders, globs) and report what would hurt training."""
+    cluster = flags.pop("cluster")  # how to run, not a setting
     try:
         config, _ = load_config(config_path)
         settings = build(config, flags)
@@ -76,8 +107,10 @@ def scan(paths, config_path, sarif_path, json_path, drop_list_path, jobs, quiet,
         shards = discover(list(paths))
     except (SettingsError, NoShardsFound) as exc:
         raise UsageProblem(str(exc)) from None
-    show = _progress(not quiet and sys.stderr.isatty())
-    report = run(shards, settings, rules, jobs=jobs or os.cpu_count() or 1, progress=show)
+    sample = Sample(sample_fraction, sample_seed) if sample_fraction is not None else None
+    with _executor(cluster, jobs) as executor:
+        report = run(shards, settings, rules, jobs=jobs or os.cpu_count() or 1, progress=_progress(quiet),
+                     sample=sample, executor=executor)
     for path, module in ((sarif_path, sarif), (json_path, json_report), (drop_list_path, droplist)):
         if path:
             try:

@@ -375,8 +375,10 @@ def _text_documents(batch: Batch, settings) -> BatchDocuments:
     rows = np.flatnonzero(present)[keep]
     lengths = lengths[keep]
 
+    shard_rows = batch.rows  # not the batch: it caches these documents, and a cycle would outlive the batch
+
     def locate(which):
-        return batch.rows[rows[which]], np.zeros(np.size(which), dtype=np.int64)
+        return shard_rows[rows[which]], np.zeros(np.size(which), dtype=np.int64)
 
     return BatchDocuments(TEXT, unit, 0, True, False, lengths, np.zeros(lengths.size, dtype=bool),
                           np.arange(lengths.size), 0, -1, False, 0, int(lengths.sum()), len(batch), 0, locate)
@@ -441,10 +443,14 @@ def _token_documents(batch: Batch, settings, arrangement: str) -> BatchDocuments
         tail, tail_start = int(seg[k]), int(starts[-1])
     head = int(seg[0])
 
+    # The closure holds the batch's row indices, not the batch: the batch caches these documents, and a reference
+    # cycle through it would keep its Arrow buffers alive until the cyclic garbage collector runs.
+    shard_rows = batch.rows
+
     def locate(flat_index):
         flat_index = real.first_from(np.minimum(np.asarray(flat_index, dtype=np.int64), n))
         rows, offs = tokens.locate(flat_index)
-        return batch.rows[rows], offs
+        return shard_rows[rows], offs
 
     return BatchDocuments(arrangement, "tokens", head, k > 0, bool(cut[0]) if k else False, lengths, doc_cut,
                           doc_starts, tail, tail_start, tail_cut, n, real.total, len(batch),

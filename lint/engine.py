@@ -7,17 +7,23 @@ results in shard order, so the report is the same for any number of jobs.  The e
 """
 from __future__ import annotations
 
+import contextlib
+import copy
+import dataclasses
+import functools
 import os
 import time
 from dataclasses import dataclass, field
-from typing import Callable, Iterable
+from typing import Iterable
 
 from .batch import Shard, is_integer_list
-from .executors import LocalExecutor
+from .executors import LocalExecutor, shuffle_here
+from .progress import Progress
+from .sampling import Sample, corpus_figures, finding_estimate
 from .findings import Finding, Level
 from .rule import Rule, ShardState
 from .settings import Settings, SettingsError, infer_from_batch
-from .sources import discover, open_shard
+from .sources import absolute, discover, open_shard
 
 
 @dataclass
@@ -40,6 +46,8 @@ class ShardResult:
     rows: int = 0
     tokens: int = 0
     seconds: float = 0.0
+    #: How the shard was sampled (:meth:`lint.sampling.ShardSample.summary`), or None for a full scan.
+    sample: dict | None = None
 
 
 @dataclass
@@ -83,10 +91,15 @@ def select_rules(settings: Settings, available: dict[str, type[Rule]]) -> list[R
     return rules
 
 
-def scan_shard(shard: Shard, settings: Settings, rules: list[Rule]) -> ShardResult:
-    """Read one shard and feed its batches to the rules; never raises for bad data."""
+def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=None, sample=None) -> ShardResult:
+    """Read one shard and feed its batches to the rules; never raises for bad data.
+
+    ``progress`` (a :class:`lint.progress.Progress`, or None) hears of every batch and of the end of the shard;
+    ``sample`` (a :class:`lint.sampling.Sample`, or None) makes the reader scan only the units it keeps.
+    """
     started = time.perf_counter()
     facts = settings.for_path(shard.path)
+    sampling = sample.for_shard(shard.uri, shard.format) if sample is not None and not sample.full else None
     states: dict[str, ShardState] = {}
     skipped: dict[str, str] = {}
     crashed: dict[str, str] = {}
@@ -111,7 +124,8 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule]) -> ShardResu
             states[rule.id].fed = True
 
     pending = []  # record-less batches (read problems) seen before the first records
-    with open_shard(shard, tokens_column=facts.tokens_column) as reader:
+    with open_shard(shard, tokens_column=facts.tokens_column, sample=sampling) as reader:
+        told = (0, 0, 0)  # rows, tokens and bytes consumed already reported to ``progress``
         for batch in reader:
             if not states:
                 if not len(batch):
@@ -122,6 +136,10 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule]) -> ShardResu
                 for waiting in pending:
                     feed(waiting)
             feed(batch)
+            if progress is not None:
+                now = (counted["rows"], counted["tokens"], reader.consumed)
+                progress.batch(shard.uri, *(n - t for n, t in zip(now, told)))
+                told = now
     if not states:
         states = {rule.id: rule.begin(shard, facts) for rule in rules}
         for waiting in pending:
@@ -138,7 +156,10 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule]) -> ShardResu
             final[rule.id] = rule.end(state)
         except Exception as exc:  # noqa: BLE001
             crashed[rule.id] = f"{type(exc).__name__}: {exc}"
-    return ShardResult(shard, final, skipped, crashed, facts, rows, tokens, time.perf_counter() - started)
+    if progress is not None:
+        progress.shard_done(shard.uri, rows, tokens)
+    return ShardResult(shard, final, skipped, crashed, facts, rows, tokens, time.perf_counter() - started,
+                       sampling.summary() if sampling is not None else None)
 
 
 def _scan_args(args):
@@ -146,21 +167,112 @@ def _scan_args(args):
 
 
 def run(shards: list[Shard], settings: Settings, rules: list[Rule], jobs: int = 1,
-        progress: Callable[[ShardResult, int, int], None] | None = None, executor=None) -> Report:
+        progress: Progress | None = None, executor=None, sample: Sample | None = None) -> Report:
     """Scan shards with ``executor`` (default: a :class:`LocalExecutor` of ``jobs`` processes), then merge and
-    finish every rule in this process."""
+    finish every rule in this process.
+
+    ``progress`` hears of every batch: an executor that has a ``relay(progress)`` context manager gives the stand-in
+    that reaches it from where the work runs; with any other executor it hears only of finished shards, here.
+    ``sample`` scans a reproducible random subset of every shard (see :mod:`lint.sampling`).
+    """
     started = time.perf_counter()
     executor = executor or LocalExecutor(jobs)
     results: list[ShardResult] = []
-    for result in executor.map(_scan_args, [(shard, settings, rules) for shard in shards]):
-        results.append(result)
-        if progress:
-            progress(result, len(results), len(shards))
-    return finish(results, settings, rules, time.perf_counter() - started)
+    relay = getattr(executor, "relay", None) if progress is not None else None
+    if progress is not None:
+        progress.start(shards)
+    try:
+        with relay(progress) if relay is not None else contextlib.nullcontext() as reporter:
+            moved = getattr(executor, "absolute_paths", False)  # the work runs in another working directory
+            items = [(*(_elsewhere(shard, settings) if moved else (shard, settings)), rules, reporter, sample)
+                     for shard in shards]
+            scanned, partials = _map(executor, items, [rule for rule in rules if rule.keyed])
+            for result in scanned:
+                results.append(result)
+                if progress is not None and reporter is None:
+                    progress.shard_done(result.shard.uri, result.rows, result.tokens)
+            reduced = partials()
+    finally:
+        if progress is not None:
+            progress.close()
+    return finish(results, settings, rules, time.perf_counter() - started, reduced)
 
 
-def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], seconds: float) -> Report:
-    """The reduce step: per-shard findings, cross-shard findings, notes and corpus figures."""
+def _elsewhere(shard: Shard, settings: Settings) -> tuple[Shard, Settings]:
+    """A shard and its settings for work in another working directory (a cluster's workers): an absolute path, and
+    the ``[paths]`` tables matched here, where relative paths and patterns mean what the user meant."""
+    facts = copy.copy(settings.for_path(shard.path))
+    facts.path_tables = {}
+    return absolute(shard), facts
+
+
+def _map(executor, items: list, keyed: list[Rule]):
+    """Scan the items with ``executor``: ``(results in item order, a function giving, after the last result, the
+    partials of the keyed rules by rule id)``.  With keyed rules the scan is a keyed shuffle (see
+    :mod:`lint.executors`): on the executor when it can run one, else in this process."""
+    if not keyed:
+        return executor.map(_scan_args, items), dict
+    split, reduce = functools.partial(_split, keyed), functools.partial(_reduce, keyed)
+    if hasattr(executor, "map_shuffle"):
+        scanned, gather = executor.map_shuffle(_scan_args, items, split, reduce)
+    else:
+        scanned, gather = shuffle_here(executor.map(_scan_args, items), split, reduce, 1)
+
+    def partials() -> dict[str, list]:
+        per_partition = gather()
+        return {rule.id: [partial[rule.id] for partial in per_partition] for rule in keyed}
+
+    return scanned, partials
+
+
+@dataclass
+class _Failed:
+    """A partition whose reduce failed for a rule: why."""
+
+    why: str
+
+
+def _split(rules: list[Rule], result: ShardResult, parts: int) -> tuple[ShardResult, list[dict]]:
+    """Map side of the keyed reduce, run where the shard's result is: every keyed rule's state is split into
+    ``parts`` pieces (``{rule id: piece}`` per partition); the result keeps the slimmed states."""
+    states, crashed = dict(result.states), dict(result.crashed)
+    pieces: list[dict] = [{} for _ in range(parts)]
+    for rule in rules:
+        if rule.id not in states:
+            continue
+        try:
+            state, parted = rule.partition(states[rule.id], parts)
+            if len(parted) != parts:
+                raise ValueError(f"partition gave {len(parted)} pieces for {parts} partitions")
+        except Exception as exc:  # noqa: BLE001 - a rule bug must not lose the other rules' findings
+            del states[rule.id]
+            crashed[rule.id] = f"{type(exc).__name__}: {exc}"
+            continue
+        states[rule.id] = state
+        for piece, part in zip(pieces, parted):
+            piece[rule.id] = part
+    return dataclasses.replace(result, states=states, crashed=crashed), pieces
+
+
+def _reduce(rules: list[Rule], pieces: list[dict]) -> dict:
+    """Reduce side of the keyed reduce, once per partition: each keyed rule's pieces from every shard (in shard
+    order) to its partial, or a :class:`_Failed`."""
+    out = {}
+    for rule in rules:
+        mine = [piece[rule.id] for piece in pieces if rule.id in piece]
+        try:
+            out[rule.id] = rule.reduce_partition(mine)
+        except Exception as exc:  # noqa: BLE001
+            out[rule.id] = _Failed(f"{type(exc).__name__}: {exc}")
+    return out
+
+
+def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], seconds: float,
+           partials: dict[str, list] | None = None) -> Report:
+    """The reduce step: per-shard findings, cross-shard findings, notes and corpus figures.
+
+    ``partials`` holds, by rule id, the partials of a keyed rule's reduce (one per partition); a keyed rule without
+    them computes them in this process."""
     findings: list[Finding] = []
     notes: list[Note] = []
     outputs: dict[str, list] = {}
@@ -171,6 +283,9 @@ def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], se
         "bytes": sum(r.shard.length for r in results),
         "seconds": round(seconds, 3),
     }
+    sampled = corpus_figures(results)
+    if sampled is not None:
+        metrics["sample"] = sampled
     for rule in rules:
         states = [r.states[rule.id] for r in results if rule.id in r.states]
         for result in results:
@@ -182,7 +297,15 @@ def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], se
                 if f.start_line is None and result.shard.line_based and f.uri == result.shard.uri and f.rows.size:
                     f.start_line = int(f.rows.min()) + 1
             findings += found
-        corpus = _guard(rule, notes, None, lambda: rule.corpus(states))
+        parts = (partials or {}).get(rule.id)
+        failed = [p.why for p in parts or () if isinstance(p, _Failed)]
+        if failed:
+            notes.append(Note(Level.error, f"rule failed while reducing across shards ({failed[0]}); its findings "
+                                           "that span shards and its corpus figures are missing", rule.id))
+            corpus = None
+        else:
+            corpus = _guard(rule, notes, None,
+                            lambda: rule.corpus(states) if parts is None else rule.corpus(states, parts))
         if corpus:
             found, figures, *extra = corpus
             findings += found
@@ -196,8 +319,28 @@ def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], se
         for rule_id, why in result.skipped.items():
             notes.append(Note(Level.note, f"skipped: {why}", rule_id, result.shard.uri))
     notes += _inferred_notes(results)
+    if sampled is not None:
+        for f in findings:
+            estimate = finding_estimate(f, results)
+            if estimate is not None:
+                f.evidence["sampleEstimate"] = estimate
+        notes.append(Note(Level.note, _sample_note(sampled)))
     findings.sort(key=Finding.sort_key)
     return Report(findings, [r.shard for r in results], rules, metrics, notes, settings, outputs)
+
+
+def _sample_note(sampled: dict) -> str:
+    rows = f"{sampled['rowsScanned']:,} rows"
+    if sampled["estimatedRows"]:
+        rows += f" of about {sampled['estimatedRows']:,} ({100 * sampled['rowFraction']:.1f}%)"
+    tokens = f"{sampled['tokensScanned']:,} tokens"
+    if sampled["estimatedTokens"]:
+        tokens += f" of about {sampled['estimatedTokens']:,}"
+    return (f"figures are estimates from a sample (fraction {sampled['fraction']:g}, seed {sampled['seed']}): "
+            f"{sampled['unitsScanned']:,} of {sampled['units']:,} units (row groups, record batches, blocks of "
+            f"lines) scanned, {rows}, {tokens}. Counts of findings and the corpus figures are as observed in the "
+            "sample; each finding's sample estimate gives the share of rows affected with a 95% Wilson score "
+            "interval, which assumes independent rows (less certain when a defect clusters in some units).")
 
 
 def _guard(rule: Rule, notes: list[Note], uri: str | None, call):
@@ -224,7 +367,7 @@ def _inferred_notes(results: list[ShardResult]) -> list[Note]:
 
 
 def scan(paths: Iterable[str] | str, settings: Settings | None = None, jobs: int = 1,
-         progress=None) -> Report:
+         progress=None, sample: Sample | None = None) -> Report:
     """Public entry point for a data-prep job: find shards under ``paths``, run all selected rules, return the report.
 
     Raises :class:`lint.sources.NoShardsFound` or :class:`lint.settings.SettingsError` for usage problems.
@@ -236,4 +379,4 @@ def scan(paths: Iterable[str] | str, settings: Settings | None = None, jobs: int
     settings = settings or Settings()
     rules = select_rules(settings, registry())
     shards = discover(list(paths))
-    return run(shards, settings, rules, jobs=jobs, progress=progress)
+    return run(shards, settings, rules, jobs=jobs, progress=progress, sample=sample)

@@ -1,12 +1,49 @@
-"""Where shards are scanned: in this process, in a local pool of processes, or elsewhere (a cluster executor
-plugs in here).  An executor maps a function over work items and yields the results in the order of the items,
-so the report is the same whatever runs the work."""
+"""Where shards are scanned: in this process, in a local pool of processes, or on a Dask cluster.  An executor maps
+a function over work items and yields the results in the order of the items, so the report is the same whatever
+runs the work.
+
+An executor may also run a *keyed shuffle* (``map_shuffle``): map a function over the items, split each result
+where it lies into a part to keep and one piece per partition, reduce each partition's pieces, and return the kept
+parts (in item order) and the reduced partials (in partition order).  :class:`LocalExecutor` does the split and the
+reduce in this process; :class:`DaskExecutor` runs them as tasks on the workers, so the pieces never travel to this
+process.  ``partitions`` says how many partitions the executor wants.
+"""
 from __future__ import annotations
 
+import contextlib
+import logging
 import multiprocessing
 import os
+import shutil
+import tempfile
 from concurrent.futures import ProcessPoolExecutor
 from typing import Callable, Iterable, Iterator
+
+#: How to install what ``--cluster`` needs.
+CLUSTER_INSTALL = "pip install 'corpuscle[cluster]'"
+
+
+class ClusterUnavailable(Exception):
+    """A cluster cannot be used: the ``distributed`` package is missing, or the scheduler cannot be reached."""
+
+
+def shuffle_here(results: Iterable, split: Callable, reduce: Callable, parts: int):
+    """A keyed shuffle in this process over ``results`` already computed (or arriving): see the module notes.
+
+    Returns ``(kept, partials)``: an iterator of the kept part of each result, in order, and a function that gives
+    the list of partials once that iterator is exhausted."""
+    pieces: list[list] = []
+
+    def kept():
+        for result in results:
+            part, parted = split(result, parts)
+            pieces.append(parted)
+            yield part
+
+    def partials() -> list:
+        return [reduce([parted[p] for parted in pieces]) for p in range(parts)]
+
+    return kept(), partials
 
 
 class LocalExecutor:
@@ -16,19 +53,175 @@ class LocalExecutor:
     thread pools are running can deadlock.
     """
 
-    def __init__(self, jobs: int = 1):
+    def __init__(self, jobs: int = 1, partitions: int = 1):
         if isinstance(jobs, bool) or not isinstance(jobs, int) or jobs < 1:
             raise ValueError(f"jobs must be a whole number >= 1, got {jobs!r} (hint: the number of cores)")
+        if isinstance(partitions, bool) or not isinstance(partitions, int) or partitions < 1:
+            raise ValueError(f"partitions must be a whole number >= 1, got {partitions!r} (hint: 1 in one process)")
         self.jobs = jobs
+        #: Partitions of a keyed shuffle; in one process one is cheapest (the results do not depend on it).
+        self.partitions = partitions
 
     def map(self, fn: Callable, items: Iterable) -> Iterator:
         items = list(items)
         if self.jobs == 1 or len(items) < 2:
             yield from map(fn, items)
             return
-        context = multiprocessing.get_context("forkserver" if os.name == "posix" else "spawn")
-        with ProcessPoolExecutor(max_workers=min(self.jobs, len(items)), mp_context=context) as pool:
+        with ProcessPoolExecutor(max_workers=min(self.jobs, len(items)), mp_context=self._context()) as pool:
             yield from pool.map(fn, items)
+
+    def map_shuffle(self, fn: Callable, items: Iterable, split: Callable, reduce: Callable):
+        """``map`` then a keyed shuffle of the results in this process (see the module notes)."""
+        return shuffle_here(self.map(fn, items), split, reduce, self.partitions)
+
+    @staticmethod
+    def _context():
+        return multiprocessing.get_context("forkserver" if os.name == "posix" else "spawn")
+
+    def relay(self, progress):
+        """A context manager giving the progress object to pass to the work: ``progress`` itself in this process
+        (``jobs=1``), else a stand-in whose events reach ``progress`` from the pool's processes through a manager
+        queue (see :func:`lint.progress.relay`)."""
+        if self.jobs == 1:
+            return contextlib.nullcontext(progress)
+        from .progress import relay
+
+        return relay(progress, self._context())
 
     def describe(self) -> str:
         return "this process" if self.jobs == 1 else f"{self.jobs} local processes"
+
+
+def _distributed():
+    """The ``distributed`` module, imported only when a cluster is asked for (an optional dependency)."""
+    try:
+        import distributed
+    except ImportError:
+        raise ClusterUnavailable(f"running on a Dask cluster needs the distributed package: {CLUSTER_INSTALL}") \
+            from None
+    return distributed
+
+
+def _kept(half):
+    return half[0]
+
+
+def _piece(half, partition: int):
+    return half[1][partition]
+
+
+class DaskExecutor:
+    """Runs work on a Dask cluster: the scheduler at ``address`` (e.g. ``tcp://10.0.0.5:8786``), or, for
+    ``address="local"``, a ``distributed.LocalCluster`` started here: ``jobs`` worker processes (default: the number
+    of cores) of one thread each, listening on the loopback interface only, with no dashboard.
+
+    Use it as a context manager: entering connects (and starts the local cluster), leaving closes what it started.
+    The workers must import corpuscle (and any plugin rules) and read the shards at the paths they are given:
+    absolute paths on a file system every worker mounts at the same place, or URIs (``s3://``, ``gs://``,
+    ``hdfs://``, ``file://``).  In ``map_shuffle`` the per-shard results stay on the workers: the split and the
+    per-partition reduce run there too, and only the kept parts and the partials come back.
+    """
+
+    #: The workers' working directory is not this process's: the engine sends them absolute paths.
+    absolute_paths = True
+
+    def __init__(self, address: str, jobs: int | None = None, timeout: float = 30.0):
+        if not isinstance(address, str) or not address.strip():
+            raise ValueError(f"cluster must be 'local' or a scheduler address such as tcp://10.0.0.5:8786, "
+                             f"got {address!r}")
+        if jobs is not None and (isinstance(jobs, bool) or not isinstance(jobs, int) or jobs < 1):
+            raise ValueError(f"jobs must be a whole number >= 1, got {jobs!r} (hint: the number of cores)")
+        self.address = address.strip()
+        self.jobs = jobs
+        self.timeout = timeout
+        self.client = None
+        self._cluster = None
+        self._scratch = None
+
+    def __enter__(self) -> "DaskExecutor":
+        distributed = _distributed()
+        try:
+            if self.address == "local":
+                self._scratch = tempfile.mkdtemp(prefix="corpuscle-dask-")  # the workers' files; removed in close()
+                self._cluster = distributed.LocalCluster(
+                    n_workers=self.jobs or os.cpu_count() or 1, threads_per_worker=1, processes=True,
+                    host="127.0.0.1", scheduler_port=0, dashboard_address=None, silence_logs=logging.ERROR,
+                    local_directory=self._scratch,
+                    # No dashboard; the scheduler's HTTP server (health checks) on a free loopback port, not 8787.
+                    scheduler_kwargs={"dashboard_address": "127.0.0.1:0"})
+                self.client = distributed.Client(self._cluster, timeout=self.timeout)
+            else:
+                self.client = distributed.Client(self.address, timeout=self.timeout)
+        except (OSError, TimeoutError, ValueError, RuntimeError) as exc:  # RuntimeError: a worker did not start
+            self.close()
+            where = "start a local Dask cluster" if self.address == "local" else \
+                f"connect to the Dask scheduler at {self.address}"
+            raise ClusterUnavailable(f"cannot {where} ({type(exc).__name__}: {exc}); check that the scheduler is "
+                                     "running and reachable from here, or use --cluster local") from None
+        return self
+
+    def __exit__(self, *exc) -> bool:
+        self.close()
+        return False
+
+    def close(self) -> None:
+        """Close the client, and the local cluster if this executor started it."""
+        client, cluster, self.client, self._cluster = self.client, self._cluster, None, None
+        if client is not None:
+            client.close()
+        if cluster is not None:
+            cluster.close()
+        if self._scratch is not None:
+            shutil.rmtree(self._scratch, ignore_errors=True)
+            self._scratch = None
+
+    def _connected(self):
+        if self.client is None:
+            raise RuntimeError("DaskExecutor is not connected; use it as a context manager: with DaskExecutor(...)")
+        return self.client
+
+    @property
+    def workers(self) -> int:
+        return len(self._connected().nthreads())
+
+    @property
+    def partitions(self) -> int:
+        """Partitions of a keyed shuffle: one per worker thread of the cluster."""
+        return max(1, sum(self._connected().nthreads().values()))
+
+    def map(self, fn: Callable, items: Iterable) -> Iterator:
+        client = self._connected()
+        futures = client.map(fn, list(items), pure=False)
+        for i, future in enumerate(futures):
+            yield future.result()
+            futures[i] = None  # the result is here: let the cluster forget it
+
+    def map_shuffle(self, fn: Callable, items: Iterable, split: Callable, reduce: Callable):
+        """``map`` then a keyed shuffle, all as tasks on the cluster: per item a scan task, a split task and one
+        small task per partition picking its piece; per partition a reduce task over the pieces of all items."""
+        client = self._connected()
+        parts = self.partitions
+        scanned = client.map(fn, list(items), pure=False)
+        halves = client.map(split, scanned, parts=parts, pure=False)
+        kept = client.map(_kept, halves, pure=False)
+        reduced = [client.submit(reduce, [client.submit(_piece, half, p, pure=False) for half in halves], pure=False)
+                   for p in range(parts)]
+        del scanned, halves  # the scheduler keeps what pending tasks still need
+
+        def results():
+            for i, future in enumerate(kept):
+                yield future.result()
+                kept[i] = None
+
+        def partials() -> list:
+            return client.gather(reduced)
+
+        return results(), partials
+
+    def describe(self) -> str:
+        if self.client is None:
+            return "a local Dask cluster" if self.address == "local" else f"the Dask cluster at {self.address}"
+        workers = f"{self.workers} worker{'s' if self.workers != 1 else ''}"
+        if self._cluster is not None:
+            return f"a local Dask cluster ({workers}, scheduler {self.client.scheduler.address})"
+        return f"the Dask cluster at {self.address} ({workers})"

@@ -14,7 +14,10 @@ statistical estimates, not proofs of similarity.
 Sharded use: each shard keeps ``band_keys(signatures, b, r)``, its window ids
 and, optionally, ``signature_digests(signatures)``. Merging shards is
 concatenating those arrays; :func:`candidate_pairs` on the merged arrays gives
-the same answer as on one big shard.
+the same answer as on one big shard. On a cluster the arrays need not meet in
+one process: partition the ``(key, window, digest)`` entries by key, run
+:func:`partition_candidates` on each partition, and the union of the pairs is
+the same answer again.
 """
 
 from __future__ import annotations
@@ -181,9 +184,64 @@ def candidate_pairs(keys, window_ids=None, *, digests=None, max_bucket: int = DE
         found.append(np.column_stack((representative[~first], ordered[~first])))
         keys, ids = keys[order[first]], ordered[first]
 
-    bucket_keys = keys.ravel()
-    members = np.repeat(ids, keys.shape[1])
-    order = np.lexsort((members, bucket_keys))
+    return _bucket_pairs(keys.ravel(), np.repeat(ids, keys.shape[1]), max_bucket, found)
+
+
+def partition_candidates(keys, window_ids, *, digests=None, max_bucket: int = DEFAULT_MAX_BUCKET) -> Candidates:
+    """:func:`candidate_pairs` for one partition of a shuffle of band keys.
+
+    On a cluster the band keys of all shards are partitioned by key (every entry with the same key goes to the
+    same partition), so no process holds them all. A partition sees flat entries: ``keys[i]`` is a band key of
+    window ``window_ids[i]`` (a window appears once per band whose key fell into the partition), and
+    ``digests[i]`` that window's :func:`signature_digests` value. The result is, for this partition's buckets,
+    what :func:`candidate_pairs` gives for them on all keys at once: a bucket lies wholly in one partition, and
+    windows with identical signatures share every band key, so they meet in every partition that holds any of
+    their keys and are reduced to the same representative there. The union of the pairs of all partitions
+    (rows made unique) is therefore the pair set of :func:`candidate_pairs`; ``capped_buckets`` add up and
+    ``largest_bucket`` is the maximum over the partitions.
+    """
+    keys = np.asarray(keys)
+    ids = np.asarray(window_ids)
+    if keys.ndim != 1 or keys.dtype != np.uint64 or ids.shape != keys.shape or ids.dtype.kind not in "iu":
+        raise TypeError("keys must be a flat uint64 array of band keys with one integer window id each; hint: "
+                        "ravel the band_keys of the partition's windows")
+    ids = ids.astype(np.int64)
+    max_bucket = _check_int("max_bucket", max_bucket, 1, f"the default is {DEFAULT_MAX_BUCKET}")
+    if digests is not None:
+        digests = np.asarray(digests)
+        if digests.shape != keys.shape or digests.dtype != np.uint64:
+            raise TypeError("digests must be one uint64 per entry; hint: the signature_digests of each entry's window")
+    if np.any(ids[1:] < ids[:-1]):  # entries in window id order (as the shards give them, usually already)
+        order = np.argsort(ids, kind="stable")
+        keys, ids = keys[order], ids[order]
+        digests = digests[order] if digests is not None else None
+    found = []
+    if digests is not None:
+        # The partition's windows (one entry per band), then the windows sorted by digest, then id.
+        window = np.ones(len(ids), dtype=bool)
+        window[1:] = ids[1:] != ids[:-1]
+        w_ids, w_digests = ids[window], digests[window]
+        by_digest = np.lexsort((w_ids, w_digests))
+        ordered, ordered_digests = w_ids[by_digest], w_digests[by_digest]
+        first = np.ones(len(ordered), dtype=bool)
+        first[1:] = ordered_digests[1:] != ordered_digests[:-1]
+        representative = ordered[np.maximum.accumulate(np.where(first, np.arange(len(ordered)), 0))]
+        found.append(np.column_stack((representative[~first], ordered[~first])))
+        # Buckets from the representatives' entries only (still in id order).
+        is_representative = np.empty(len(w_ids), dtype=bool)
+        is_representative[by_digest] = representative == ordered
+        keep = np.repeat(is_representative, np.diff(np.append(np.flatnonzero(window), len(ids))))
+        keys, ids = keys[keep], ids[keep]
+    return _bucket_pairs(keys, ids, max_bucket, found)
+
+
+def _bucket_pairs(bucket_keys: np.ndarray, members: np.ndarray, max_bucket: int, found: list) -> Candidates:
+    """Group ``(key, window)`` entries by key and pair the windows of each bucket (capped as described in
+    :func:`candidate_pairs`); ``found`` holds pairs made before (identical signatures)."""
+    if np.any(members[1:] < members[:-1]):
+        order = np.lexsort((members, bucket_keys))
+    else:  # members in id order already: a stable sort by key alone keeps it within a key, and is much faster
+        order = np.argsort(bucket_keys, kind="stable")
     bucket_keys, members = bucket_keys[order], members[order]
     repeated = np.zeros(len(members), dtype=bool)
     repeated[1:] = (bucket_keys[1:] == bucket_keys[:-1]) & (members[1:] == members[:-1])

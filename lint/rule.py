@@ -4,6 +4,18 @@ A rule keeps a small, mergeable state per shard.  The engine calls, per shard, `
 batch that has the columns the rule ``needs``, and ``end`` once; then, over the states of all shards, ``report``
 (findings of one shard) and ``corpus`` (findings that span shards, figures for the whole corpus).  States travel
 between processes, so they must pickle; keep them small (counters, capped :class:`~lint.findings.Hits`).
+
+A rule whose cross-shard step groups entries by a key (the band keys of near-duplicate search) sets ``keyed`` and
+runs that step as a partitioned shuffle, so that no single process holds the entries of the whole corpus:
+
+* ``partition(state, parts)`` -- map side, run where the shard's state is: split the keyed entries into ``parts``
+  pieces by a hash of the key and return ``(state without them, pieces)``;
+* ``reduce_partition(pieces)`` -- reduce side, run once per partition: the pieces of that partition from every
+  shard (in shard order, one per state ``corpus`` will get) become a small *partial* result;
+* ``corpus(states, partials)`` -- the partials of all partitions (in partition order) with the slimmed states.
+
+The engine runs these same functions in this process for a local scan and as tasks on a cluster (the pieces stay
+on the workers; only the partials travel).  The findings must not depend on the number of partitions.
 """
 from __future__ import annotations
 
@@ -86,6 +98,9 @@ class Rule:
     requires: tuple[str, ...] = ()
     options: dict[str, object] = {}
     outputs: tuple[str, ...] = ()
+    #: Whether ``corpus`` takes the partials of a keyed reduce (``partition`` / ``reduce_partition``, see the
+    #: module notes); the engine then calls ``corpus(states, partials)``.
+    keyed: bool = False
 
     def __init__(self, **options):
         unknown = set(options) - set(self.options)
@@ -130,8 +145,26 @@ class Rule:
         """Findings that span shards and figures for the whole corpus (default: none).
 
         May return a third element: named outputs, each a list (e.g. ``{"drop-list": [{"uri": ..., "row": ...}]}``,
-        names listed in ``outputs``); the engine collects them into ``Report.outputs``."""
+        names listed in ``outputs``); the engine collects them into ``Report.outputs``.  A ``keyed`` rule's
+        ``corpus`` also takes ``partials`` (one per partition), and computes them in this process with
+        :meth:`keyed_reduce` when called without them."""
         return [], {}
+
+    # -- the keyed reduce (only for rules that set ``keyed``) -------------------------------------------------
+    def partition(self, state: ShardState, parts: int) -> tuple[ShardState, list]:
+        """Map side: ``(state without its keyed entries, [piece for partition 0 .. parts - 1])``, entries assigned
+        to a partition by a hash of their key.  Runs where the state is; must not change ``state`` in place."""
+        raise NotImplementedError(f"rule {self.id} sets keyed but does not implement partition")
+
+    def reduce_partition(self, pieces: list) -> object:
+        """Reduce side: one partition's pieces from every shard, in shard order, to a small picklable partial."""
+        raise NotImplementedError(f"rule {self.id} sets keyed but does not implement reduce_partition")
+
+    def keyed_reduce(self, states: list[ShardState], parts: int = 1) -> tuple[list[ShardState], list]:
+        """Partition and reduce in this process: ``(slimmed states, partials)``, what ``corpus`` is given."""
+        split = [self.partition(state, parts) for state in states]
+        partials = [self.reduce_partition([pieces[p] for _, pieces in split]) for p in range(parts)]
+        return [state for state, _ in split], partials
 
     # -- helpers for subclasses ---------------------------------------------------------------------------
     def finding(self, state: ShardState, kind: str, message: str, level: Level | None = None,
@@ -168,9 +201,17 @@ def consistent(batch: Batch, names: list[str]) -> Batch:
     Rules comparing parallel columns (input_ids with labels, attention_mask, position_ids) run on these rows only;
     ``schema-mismatch`` reports the others.
     """
-    present = [n for n in names if batch.has(n) and is_integer_list(batch.type_of(n))]
+    present = tuple(n for n in names if batch.has(n) and is_integer_list(batch.type_of(n)))
     if len(present) < 2:
         return batch
-    lengths = [batch.flat(n).lengths for n in present]
-    same = np.logical_and.reduce([lengths[0] == other for other in lengths[1:]])
-    return batch if same.all() else batch.select(same)
+
+    def restrict() -> Batch | None:
+        lengths = [batch.flat(n).lengths for n in present]
+        same = np.logical_and.reduce([lengths[0] == other for other in lengths[1:]])
+        return None if same.all() else batch.select(same)
+
+    # Rules asking for the same columns get the same batch back, and with it the facts already computed on it.
+    # (None stands for the batch itself: a batch holding itself would live until the cycle collector runs, and
+    # with it the Arrow memory of every batch read in between.)
+    narrowed = batch.memo(("consistent",) + present, restrict)
+    return batch if narrowed is None else narrowed

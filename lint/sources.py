@@ -7,17 +7,21 @@ and the rest of the shard is still scanned.
 """
 from __future__ import annotations
 
+import dataclasses
 import glob
 import os
+import re
 from dataclasses import dataclass
 from typing import Iterator
 
 import numpy as np
 import orjson
 import pyarrow as pa
+import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 
 from .batch import Batch, Shard
+from .sampling import LINE_BLOCK
 
 #: File endings we read, and the format/compression each one means.
 SUFFIXES = {
@@ -72,14 +76,72 @@ def _display(path: str, given: str, root: str | None) -> str:
     return joined.replace(os.sep, "/")
 
 
+_SCHEME = re.compile(r"^[A-Za-z][A-Za-z0-9+.-]+://")
+
+
+def is_uri(path: str) -> bool:
+    """Whether ``path`` is a URI with a scheme (``s3://bucket/data``, ``file:///srv/data``), not a local path."""
+    return bool(_SCHEME.match(path))
+
+
+def absolute(shard: Shard) -> Shard:
+    """The shard with an absolute path (a URI stays as it is), for work that runs in another working directory."""
+    if is_uri(shard.path) or os.path.isabs(shard.path):
+        return shard
+    return dataclasses.replace(shard, path=os.path.abspath(shard.path))
+
+
+def _list_uri(given: str) -> list[tuple[str, str, int]] | None:
+    """``(path, uri, size)`` of the files a URI names: the file itself, or every file under the folder
+    (recursively, hidden names skipped, in the order a local folder is walked); None when nothing is there.
+
+    The file system is pyarrow's for the URI's scheme (``FileSystem.from_uri``): local files (``file://``), S3,
+    Google Cloud Storage, HDFS, as the installed pyarrow supports them, with their usual credentials."""
+    try:
+        fs, root = pafs.FileSystem.from_uri(given)
+        info = fs.get_file_info(root)
+        if info.type == pafs.FileType.NotFound:
+            return None
+        if info.type != pafs.FileType.Directory:
+            return [(given, given, int(info.size or 0))]
+        entries = fs.get_file_info(pafs.FileSelector(root, recursive=True))
+    except (pa.ArrowException, OSError, ValueError) as exc:
+        raise NoShardsFound(f"cannot list {given} ({_describe(exc)}): check the URI, that pyarrow supports its "
+                            "scheme, and the credentials for its file system") from None
+    base, _, query = given.partition("?")
+    base, prefix = base.rstrip("/"), root.rstrip("/") + "/"
+    found = []
+    for entry in entries:
+        rel = entry.path[len(prefix):] if entry.path.startswith(prefix) else entry.base_name
+        parts = rel.split("/")
+        if entry.type != pafs.FileType.File or any(part.startswith(".") for part in parts):
+            continue
+        # os.walk's order: a folder's files (sorted) before its sub-folders (sorted).
+        key = tuple((1, part) for part in parts[:-1]) + ((0, parts[-1]),)
+        uri = f"{base}/{rel}"
+        found.append((key, uri + (f"?{query}" if query else ""), uri, int(entry.size or 0)))
+    return [(path, uri, size) for _, path, uri, size in sorted(found)]
+
+
 def discover(paths: list[str]) -> list[Shard]:
     """Expand files, folders (recursively) and glob patterns into shards, in a stable sorted order per argument.
 
-    Raises :class:`NoShardsFound` with what was expected when nothing matches.
+    A path with a scheme (``s3://``, ``gs://``, ``hdfs://``, ``file://``) is a file or folder on the file system
+    pyarrow opens for it (no glob patterns there).  Raises :class:`NoShardsFound` with what was expected when
+    nothing matches.
     """
     found: dict[str, Shard] = {}
     missing = []
     for given in paths:
+        if is_uri(given):
+            listed = _list_uri(given)
+            if listed is None:
+                missing.append(given)
+            for path, uri, size in listed or ():
+                fmt = shard_format(uri)
+                if fmt is not None and path not in found:
+                    found[path] = Shard(uri=uri, path=path, format=fmt[0], compression=fmt[1], length=size)
+            continue
         if any(ch in given for ch in "*?[") and not os.path.exists(given):  # "part[1].jsonl" may be a name
             matches = sorted(glob.glob(given, recursive=True))
             candidates = [(m, m) for m in matches if os.path.isfile(m)]
@@ -116,17 +178,33 @@ def _walk(folder: str) -> list[str]:
 
 
 def open_shard(shard: Shard, batch_tokens: int = DEFAULT_BATCH_TOKENS, tokens_column: str = "input_ids",
-               batch_bytes: int = DEFAULT_BATCH_BYTES) -> "ShardReader":
-    """The reader for a shard's format, as a context manager yielding batches."""
+               batch_bytes: int = DEFAULT_BATCH_BYTES, sample=None) -> "ShardReader":
+    """The reader for a shard's format, as a context manager yielding batches.
+
+    ``sample`` (a :class:`lint.sampling.ShardSample`) makes the reader skip the storage units it does not keep;
+    row indices stay those of the whole shard.
+    """
     if shard.format == "parquet":
-        return ParquetReader(shard, batch_tokens, tokens_column)
-    if shard.format == "arrow":
-        return ArrowReader(shard, batch_tokens, tokens_column)
-    return JsonLinesReader(shard, batch_bytes)
+        reader = ParquetReader(shard, batch_tokens, tokens_column)
+    elif shard.format == "arrow":
+        reader = ArrowReader(shard, batch_tokens, tokens_column)
+    else:
+        # A token id written in JSON takes at least two bytes (a digit and a comma), so a block of 2 x batch_tokens
+        # bytes holds at most batch_tokens ids: JSON Lines keeps to the token budget too.
+        reader = JsonLinesReader(shard, min(batch_bytes, 2 * batch_tokens))
+    reader.sample = sample
+    return reader
 
 
 class ShardReader:
-    """Base reader: a context manager whose iteration yields :class:`Batch` objects and never raises."""
+    """Base reader: a context manager whose iteration yields :class:`Batch` objects and never raises.
+
+    ``consumed`` is how many bytes of the file the batches yielded so far stand for (for progress display; an
+    estimate, see each reader), skipped parts of a sampled shard included.
+    """
+
+    sample = None
+    consumed = 0
 
     def __init__(self, shard: Shard):
         self.shard = shard
@@ -167,6 +245,14 @@ class ShardReader:
         return batch
 
 
+def _open_input(uri: str):
+    """A pyarrow input file for a URI, opened for random access (``open_input_file``): Parquet and Arrow IPC need
+    it, and JSON Lines read it front to back but ask for its position (never decompressed here, whatever the name
+    says: the reader does that)."""
+    fs, where = pafs.FileSystem.from_uri(uri)
+    return fs.open_input_file(where)
+
+
 def _describe(exc: BaseException) -> str:
     text = str(exc).strip().splitlines()
     return f"{type(exc).__name__}: {text[0].rstrip('.') if text else 'no detail'}"
@@ -197,10 +283,14 @@ class ParquetReader(ShardReader):
     def _batches(self) -> Iterator[Batch]:
         # Verify page checksums where the writer stored them: a flipped byte in an uncompressed page otherwise
         # decodes silently into wrong token ids.
+        source = self.shard.path
+        if is_uri(source):
+            source = _open_input(source)
+            self._resources.append(source)
         try:
-            pf = pq.ParquetFile(self.shard.path, memory_map=False, page_checksum_verification=True)
+            pf = pq.ParquetFile(source, memory_map=False, page_checksum_verification=True)
         except TypeError:  # pyarrow < 15 has no page checksum verification
-            pf = pq.ParquetFile(self.shard.path, memory_map=False)
+            pf = pq.ParquetFile(source, memory_map=False)
         self._resources.append(pf)
         meta = pf.metadata
         if meta.num_rows == 0:
@@ -209,12 +299,21 @@ class ParquetReader(ShardReader):
         size = _rows_per_batch(self._avg_tokens(meta), self.batch_tokens)
         start = 0
         for group in range(meta.num_row_groups):
-            group_rows = meta.row_group(group).num_rows
+            group_meta = meta.row_group(group)
+            group_rows = group_meta.num_rows
+            # Bytes of the row group as stored: the compressed sizes of its column chunks (file metadata).
+            group_bytes = sum(group_meta.column(i).total_compressed_size for i in range(group_meta.num_columns))
+            counted = self.consumed
             self._row = start
+            if self.sample is not None and not self.sample.keep(group, group_rows):
+                self.consumed += group_bytes
+                start += group_rows
+                continue
             try:
                 for rb in pf.iter_batches(batch_size=size, row_groups=[group]):
                     rows = np.arange(self._row, self._row + rb.num_rows, dtype=np.int64)
                     self._row += rb.num_rows
+                    self.consumed = counted + group_bytes * (self._row - start) // max(1, group_rows)
                     yield Batch(self.shard, rb, rows)
             except Exception as exc:  # noqa: BLE001
                 yield self._problem_batch(Problem(
@@ -232,7 +331,8 @@ class ArrowReader(ShardReader):
         self.tokens_column = tokens_column
 
     def _batches(self) -> Iterator[Batch]:
-        source = pa.memory_map(self.shard.path, "r")
+        path = self.shard.path
+        source = _open_input(path) if is_uri(path) else pa.memory_map(path, "r")
         self._resources.append(source)
         magic = source.read(6)
         source.seek(0)
@@ -242,11 +342,18 @@ class ArrowReader(ShardReader):
         else:
             stored = pa.ipc.open_stream(source)
         seen_any = False
-        for rb in stored:
+        for index, rb in enumerate(stored):
             seen_any = True
+            # Bytes of the stored batch: its buffers (the file is memory-mapped), shared out over its pieces by rows.
+            counted, first = self.consumed, self._row
+            if self.sample is not None and not self.sample.keep(index, rb.num_rows):
+                self._row += rb.num_rows
+                self.consumed += rb.nbytes
+                continue
             for piece in self._split(rb):
                 rows = np.arange(self._row, self._row + piece.num_rows, dtype=np.int64)
                 self._row += piece.num_rows
+                self.consumed = counted + rb.nbytes * (self._row - first) // max(1, rb.num_rows)
                 yield Batch(self.shard, piece, rows)
         if not seen_any:
             yield self._problem_batch(Problem("empty", 0, "the Arrow file holds no record batches"))
@@ -279,8 +386,10 @@ class JsonLinesReader(ShardReader):
         self.batch_bytes = batch_bytes
 
     def _open(self):
-        raw = pa.OSFile(self.shard.path, "rb")
+        path = self.shard.path
+        raw = _open_input(path) if is_uri(path) else pa.OSFile(path, "rb")
         self._resources.append(raw)
+        self._raw = raw  # its position is the bytes consumed as stored (compressed for .gz and .zst)
         if self.shard.compression:
             stream = pa.CompressedInputStream(raw, self.shard.compression)
             self._resources.append(stream)
@@ -307,17 +416,37 @@ class JsonLinesReader(ShardReader):
                 continue
             lines = data[:cut].split(b"\n")
             carry = data[cut + 1:]
-            batch = self._parse(lines, line_no, last_cut_off=False)
+            self.consumed = self._raw.tell()
+            for batch in self._blocks(lines, line_no, last_cut_off=False):
+                any_record |= len(batch) > 0
+                yield batch
             line_no += len(lines)
             self._row = line_no  # a read failure from here on stops at the first line not yet read
-            any_record |= len(batch) > 0
-            yield batch
         if carry.strip():
-            batch = self._parse([carry], line_no, last_cut_off=True)
-            any_record |= len(batch) > 0
-            yield batch
-        if not any_record:
+            for batch in self._blocks([carry], line_no, last_cut_off=True):
+                any_record |= len(batch) > 0
+                yield batch
+        if not any_record and not (self.sample is not None and self.sample.skipped_any):
             yield self._problem_batch(Problem("empty", 0, "the file holds no JSON records"))
+
+    def _blocks(self, lines: list[bytes], first_line: int, last_cut_off: bool) -> Iterator[Batch]:
+        """Parse ``lines`` (the first is line ``first_line``): all of them, or in a sampled scan only the runs of
+        lines that lie in kept blocks of :data:`lint.sampling.LINE_BLOCK` lines (one batch per run)."""
+        if self.sample is None:
+            yield self._parse(lines, first_line, last_cut_off)
+            return
+        end = first_line + len(lines)
+        runs: list[list[int]] = []
+        for block in range(first_line // LINE_BLOCK, (end - 1) // LINE_BLOCK + 1):
+            if self.sample.keep(block):
+                lo, hi = max(first_line, block * LINE_BLOCK), min(end, (block + 1) * LINE_BLOCK)
+                if runs and runs[-1][1] == lo:
+                    runs[-1][1] = hi
+                else:
+                    runs.append([lo, hi])
+        self.sample.lines(len(lines), sum(hi - lo for lo, hi in runs))
+        for lo, hi in runs:
+            yield self._parse(lines[lo - first_line:hi - first_line], lo, last_cut_off)
 
     def _parse(self, lines: list[bytes], first_line: int, last_cut_off: bool) -> Batch:
         records, rows, problems = [], [], []

@@ -6,7 +6,8 @@ import numpy as np
 from lint.findings import Level
 from lint.rule import Rule, absolute_rows, consistent, pct, share
 
-from .separators import first_index, missing_ids, parallel_columns, position_restarts, real_positions
+from .separators import (inner_starts, missing_ids, padding_free, parallel_columns, position_restarts, real_ranks,
+                         real_token_positions, token_positions)
 
 
 class DocumentAttention(Rule):
@@ -49,34 +50,39 @@ class DocumentAttention(Rule):
         s = state.settings
         batch = consistent(batch, parallel_columns(s))
         tokens = batch.flat(s.tokens_column)
-        values = tokens.values
-        real = real_positions(batch, tokens, s)
-        separator = np.zeros(values.size, dtype=bool)  # inner separators: another document follows in the row
-        start = np.zeros(values.size, dtype=bool)  # first token of a document after the row's first one
+        # inner separators (another document follows in the row) and the documents they start, as sorted flat
+        # indices: a packed window holds a few documents, so these lists are short
+        separators, starts = [], []
         if s.separator in ("eos-after", "both") and s.eos_id is not None:
-            after_eos = np.zeros(values.size, dtype=bool)
-            after_eos[1:] = real[1:] & real[:-1] & (values[:-1] == s.eos_id) & ~tokens.is_last[:-1]
-            start |= after_eos
-            separator[:-1] |= after_eos[1:]
+            after = token_positions(batch, tokens, s, s.eos_id) + 1
+            after = inner_starts(batch, tokens, s, after[after < tokens.values.size])
+            starts.append(after)
+            separators.append(after - 1)
         if s.separator in ("bos-before", "both") and s.bos_id is not None:
-            first_real = np.zeros(values.size, dtype=bool)
-            first = first_index(tokens, real)
-            first_real[first[first >= 0]] = True
-            at_bos = real & (values == s.bos_id) & ~first_real
-            start |= at_bos
-            separator |= at_bos
-        documents = tokens.count_per_row(start) + 1
+            at_bos = real_token_positions(batch, tokens, s, s.bos_id)
+            rows = tokens.rows_at(at_bos)
+            if padding_free(batch, tokens, s):
+                first = tokens.starts[rows]
+            else:  # the row's first real token (the row holds one: this bos)
+                ranks = real_ranks(batch, tokens, s)
+                first = ranks.select(ranks.rank(tokens.starts[rows]) + 1)
+            at_bos = at_bos[at_bos != first]  # not the row's first real token
+            starts.append(at_bos)
+            separators.append(at_bos)
+        start = _union(starts)
+        separator = _union(separators)
+        documents = tokens.count_positions(start) + 1
         packed = documents > 1
 
-        restarts = position_restarts(batch, tokens, s, real)
+        restarts = position_restarts(batch, tokens, s)
         if restarts is None:
             affected = packed
             state.count(rows_without_positions=int(packed.sum()))
         else:
-            restarted = np.bincount(tokens.rows_at(restarts), minlength=tokens.lengths.size) > 0
+            restarted = tokens.count_positions(restarts) > 0
             affected = packed & ~restarted
         rows = np.flatnonzero(affected)
-        first_separator = first_index(tokens, separator)[rows] - tokens.offsets[rows]
+        first_separator = tokens.first_of(separator, rows) - tokens.offsets[rows]
         state.count(rows=tokens.lengths.size, packed_rows=int(packed.sum()), affected_rows=rows.size,
                     affected_documents=int(documents[rows].sum()))
         state.hit("crossing", absolute_rows(batch, rows), first_separator)
@@ -100,6 +106,13 @@ class DocumentAttention(Rule):
             "document and use a document-aware attention mask; if it is, skip this rule.",
             rowsAffected=n, rows=int(rows), share=share(n, rows), meanDocumentsPerAffectedRow=mean_docs,
             packedRows=int(st["packed_rows"]), separator=state.settings.separator)]
+
+
+def _union(parts: list[np.ndarray]) -> np.ndarray:
+    """Sorted distinct flat indices of all parts."""
+    if not parts:
+        return np.zeros(0, dtype=np.int64)
+    return parts[0] if len(parts) == 1 else np.union1d(parts[0], parts[1])
 
 
 RULES = [DocumentAttention]

@@ -40,12 +40,16 @@ Near-duplicates
     into ``b`` bands of ``r`` values with ``(b, r) = optimal_bands(threshold, num_perm)``. Per shard the state
     keeps ``b`` band keys, a signature digest, the content hash, the row and the length of every window -- O(b)
     per window -- while the signatures themselves go to a temporary ``.npy`` file (see :class:`SignatureSpill`).
-    The reduce step (``corpus``) gives every window a global id in scan order (the shard's offset plus its
-    index within the shard), folds exact copies into their first copy, concatenates the band keys of all shards
-    and groups them by key (:func:`lint.lsh.candidate_pairs`: the shape of a partitioned shuffle on a cluster),
-    verifies every candidate pair by its estimated Jaccard similarity (signatures read back from the files by
-    memory map, a chunk of pairs at a time) and joins the pairs at or above the threshold into clusters
-    (:func:`lint.lsh.clusters`). A cluster's representative is its first window in scan order.
+    Every window has a global id in scan order (the shard's offset plus its index within the shard). The band
+    keys are grouped by key in a partitioned shuffle (the rule is ``keyed``, see :mod:`lint.rule`): ``partition``
+    splits a shard's keys by key modulo the number of partitions, and ``reduce_partition`` groups one partition's
+    keys from all shards (:func:`lint.lsh.partition_candidates`) and verifies its candidate pairs by their
+    estimated Jaccard similarity (signatures read back from the files by memory map, a chunk of pairs at a time).
+    Locally this runs in one process; on a cluster the keys stay on the workers and only the candidate pairs come
+    back. The reduce step (``corpus``) folds exact copies into their first copy (a pair is kept when both ends
+    are first copies), counts each pair once, and joins the pairs at or above the threshold into clusters
+    (:func:`lint.lsh.clusters`). A cluster's representative is its first window in scan order. The result is the
+    same for any number of partitions.
 
 Exact copies inside near-duplicate clusters
     Identical windows are reported by ``exact-duplicate`` only. A near-duplicate cluster is made of *distinct*
@@ -55,12 +59,21 @@ Exact copies inside near-duplicate clusters
     either rule alone and dropping its list removes what it reports.
 
 Temporary files
-    The signature files live in one folder per scan, ``corpuscle-minhash-<random>`` under the system temporary
-    folder (``TMPDIR``), created at the first window and removed at the end of ``corpus()`` -- also when it
-    fails -- and, should the scan be interrupted, when the process exits.
+    The signature files live in one folder per scan, ``corpuscle-minhash-<random>`` under the option
+    ``signature_folder`` or, when it is empty (the default), the system temporary folder (``TMPDIR``) of the
+    process that starts the scan; created at the first window and removed at the end of ``corpus()`` -- also when
+    it fails -- and, should the scan be interrupted, when the process exits. The folder's path travels with the
+    rule: a shard's file is written by the worker that scans it and read by the worker that reduces a partition,
+    so on a cluster of several machines ``signature_folder`` must be a folder that every worker (and the process
+    that starts the scan, which removes it) mounts at the same path. A local process pool or a single-machine
+    cluster needs nothing. Band keys waiting for the reduce stay in memory up to ``memory_limit_mb`` (default 1024)
+    megabytes; past it they go to ``.npy`` files in the same folder and are read back by memory map (see
+    :meth:`NearDuplicate._spill`).
 """
 from __future__ import annotations
 
+import copy
+import dataclasses
 import os
 import shutil
 import struct
@@ -75,8 +88,8 @@ import pyarrow.types as pat
 
 from lint.batch import Batch, is_integer_list, is_text
 from lint.findings import Finding, Level
-from lint.lsh import DEFAULT_MAX_BUCKET, band_keys, candidate_pairs, clusters, estimated_jaccard, optimal_bands
-from lint.lsh import signature_digests
+from lint.lsh import DEFAULT_MAX_BUCKET, Candidates, band_keys, clusters, estimated_jaccard, optimal_bands
+from lint.lsh import partition_candidates, signature_digests
 from lint.minhash import MinHashSettings, mix64, shingle_hashes, signatures, word_shingle_hashes
 from lint.rule import Rule, ShardState, share
 from rules.text import document_text
@@ -291,6 +304,33 @@ class SignatureSpill:
         self._file.write(b"\x93NUMPY\x01\x00" + struct.pack("<H", len(text)) + text)
         self._file.close()
         return self.path
+
+
+# -- the shuffle of band keys ----------------------------------------------------------------------------------
+
+
+@dataclass
+class BandPiece:
+    """One shard's band keys that fall into one partition: an entry per (window, band), with the window's index in
+    the shard and its signature digest; ``windows`` is the shard's count of windows (for global ids) and
+    ``signatures`` the path of its signature file."""
+
+    windows: int
+    window: np.ndarray
+    keys: np.ndarray
+    digests: np.ndarray
+    signatures: str | None
+
+
+@dataclass
+class NearPartial:
+    """What one partition gives back: its candidate pairs (global ids, possibly exact copies, possibly also found
+    by another partition), their estimated Jaccard similarity, and its bucket figures."""
+
+    pairs: np.ndarray
+    similarity: np.ndarray
+    capped_buckets: int
+    largest_bucket: int
 
 
 # -- the whole scan's windows -----------------------------------------------------------------------------------
@@ -524,7 +564,8 @@ class NearDuplicate(_DuplicateRule):
             "Near-deduplicate the documents before packing. If the listed windows are meant to be alike (shared "
             "templates), raise threshold under [rule.near-duplicate].")
     options = {"threshold": 0.8, "num_perm": 128, "seed": 1, "n": 5, "max_clusters": DEFAULT_MAX_CLUSTERS,
-               "max_bucket": DEFAULT_MAX_BUCKET}
+               "max_bucket": DEFAULT_MAX_BUCKET, "signature_folder": "", "memory_limit_mb": 1024}
+    keyed = True  # the band keys are grouped by a partitioned shuffle (partition / reduce_partition)
 
     def __init__(self, **options):
         super().__init__(**options)
@@ -539,10 +580,17 @@ class NearDuplicate(_DuplicateRule):
         self._max_clusters()
         _check_int(self.id, "max_bucket", self.opts["max_bucket"], 1,
                    f"windows per LSH bucket paired in full; the default is {DEFAULT_MAX_BUCKET}")
+        _check_int(self.id, "memory_limit_mb", self.opts["memory_limit_mb"], 0,
+                   "megabytes of band keys held in memory before they go to disk; the default is 1024")
         self.threshold = float(threshold)
         self.bands, self.rows_per_band = optimal_bands(self.threshold, self.minhash.num_perm)
+        folder = self.opts["signature_folder"]
+        if not isinstance(folder, str):
+            raise ValueError(f"rule {self.id}: signature_folder must be a folder path (a string), got {folder!r}; "
+                             "hint: leave it empty for the system temporary folder, or give a folder every worker "
+                             "of a cluster mounts at the same path")
         # One folder per scan for the signature files: the path travels with the rule to worker processes.
-        self.spill_folder = os.path.join(tempfile.gettempdir(), f"corpuscle-minhash-{uuid.uuid4().hex}")
+        self.spill_folder = os.path.join(folder or tempfile.gettempdir(), f"corpuscle-minhash-{uuid.uuid4().hex}")
         weakref.finalize(self, shutil.rmtree, self.spill_folder, True)  # an interrupted scan leaves nothing
 
     def begin(self, shard, settings):
@@ -589,24 +637,96 @@ class NearDuplicate(_DuplicateRule):
 
     # -- the reduce step -------------------------------------------------------------------------------------------
 
-    def corpus(self, states):
+    def partition(self, state, parts):
+        """Map side of the shuffle: the band keys of the shard's windows, by partition (key modulo ``parts``; the
+        keys are mixed hashes, so the low bits spread evenly). A window whose content already appeared earlier in
+        the same shard is left out: it is an exact copy, never a first copy, and the result does not need it."""
+        slim = copy.copy(state)
+        del slim.keys, slim.digests
+        count = len(state.rows)
+        order = np.lexsort((np.arange(count), state.content[:, 1], state.content[:, 0]))
+        new = np.ones(count, dtype=bool)
+        new[1:] = np.any(state.content[order][1:] != state.content[order][:-1], axis=1)
+        windows = np.sort(order[new])
+        keys = state.keys[windows].ravel()
+        window = np.repeat(windows, self.bands)
+        if parts == 1:
+            return slim, self._spill([BandPiece(count, window, keys, state.digests[window], state.signatures_path)])
+        where = (keys % np.uint64(parts)).astype(np.int64)
+        by_part = np.argsort(where, kind="stable")
+        bounds = np.concatenate(([0], np.cumsum(np.bincount(where, minlength=parts))))
+        pieces = []
+        for p in range(parts):
+            pick = by_part[bounds[p]:bounds[p + 1]]
+            pieces.append(BandPiece(count, window[pick], keys[pick], state.digests[window[pick]],
+                                    state.signatures_path))
+        return slim, self._spill(pieces)
+
+    def _spill(self, pieces: list) -> list:
+        """Bound the band keys held in memory until the reduce (``memory_limit_mb``).
+
+        Pieces are kept as they are while the pieces made by this process add up to at most ``memory_limit_mb``
+        megabytes (in a local scan that is every piece of the scan: this process splits every shard's state).
+        Past it, each piece's arrays are written with ``np.save`` to ``.npy`` files in the scan's temporary folder
+        (the one of the signature files, removed with it) and replaced by read-only memory maps of those files, which
+        ``reduce_partition`` reads back. The findings are the same either way.
+        """
+        size = sum(p.window.nbytes + p.keys.nbytes + p.digests.nbytes for p in pieces)
+        held = getattr(self, "_held_bytes", 0) + size
+        if held <= self.opts["memory_limit_mb"] * 2 ** 20:
+            self._held_bytes = held
+            return pieces
+        os.makedirs(self.spill_folder, mode=0o700, exist_ok=True)
+        out = []
+        for piece in pieces:
+            mapped = {}
+            for name in ("window", "keys", "digests"):
+                values = getattr(piece, name)
+                if values.size == 0:  # an empty file cannot be memory-mapped; nothing to hold anyway
+                    continue
+                fd, path = tempfile.mkstemp(prefix=f"band-{name}-", suffix=".npy", dir=self.spill_folder)
+                with os.fdopen(fd, "wb") as fh:
+                    np.save(fh, values)
+                mapped[name] = np.load(path, mmap_mode="r")
+            out.append(dataclasses.replace(piece, **mapped))
+        return out
+
+    def reduce_partition(self, pieces):
+        """Reduce side: the candidate pairs of the partition's buckets (global window ids in scan order) and their
+        estimated Jaccard similarity, the signatures read back from the shards' signature files."""
+        offsets = np.zeros(len(pieces) + 1, dtype=np.int64)
+        np.cumsum([piece.windows for piece in pieces], out=offsets[1:])
+
+        def joined(name, dtype):
+            parts = [getattr(piece, name) for piece in pieces]
+            return np.concatenate(parts).astype(dtype, copy=False) if parts else np.zeros(0, dtype)
+
+        ids = np.concatenate([piece.window + offsets[s] for s, piece in enumerate(pieces)]) if pieces else \
+            np.zeros(0, np.int64)
+        found = partition_candidates(joined("keys", np.uint64), ids.astype(np.int64), digests=joined("digests",
+                                     np.uint64), max_bucket=self.opts["max_bucket"])
+        similarity = self._verify(found.pairs, offsets, [piece.signatures for piece in pieces])
+        return NearPartial(found.pairs, similarity, found.capped_buckets, found.largest_bucket)
+
+    def corpus(self, states, partials=None):
         try:
-            return self._corpus(states)
+            if partials is None:
+                states, partials = self.keyed_reduce(states)
+            return self._corpus(states, partials)
         finally:
             shutil.rmtree(self.spill_folder, ignore_errors=True)
+            self._held_bytes = 0
 
-    def _corpus(self, states):
+    def _corpus(self, states, partials):
         scan = ScanWindows(states)
         cap = states[0].cap if states else 0
         ids = np.arange(scan.count)
-        distinct = np.flatnonzero(scan.first_copy == ids)
-        keys = np.concatenate([st.keys for st in states]) if states else np.zeros((0, self.bands), np.uint64)
-        digests = np.concatenate([st.digests for st in states]) if states else np.zeros(0, np.uint64)
-        found = candidate_pairs(keys[distinct], distinct, digests=digests[distinct],
-                                max_bucket=self.opts["max_bucket"])
+        first = scan.first_copy == ids
+        distinct = np.flatnonzero(first)
+        found, similarity = self._candidates(partials, first)
         pairs = found.pairs
-        pairs = pairs[scan.domains[pairs[:, 0]] == scan.domains[pairs[:, 1]]]  # a document never pairs a window
-        similarity = self._verify(scan, pairs)
+        same = scan.domains[pairs[:, 0]] == scan.domains[pairs[:, 1]]  # a document never pairs a window
+        pairs, similarity = pairs[same], similarity[same]
         kept = similarity >= self.threshold
         pairs, similarity = pairs[kept], similarity[kept]
 
@@ -635,21 +755,37 @@ class NearDuplicate(_DuplicateRule):
         }}
         return findings, metrics, {DROP_LIST: scan.drop_entries(drop)}
 
-    def _verify(self, scan: ScanWindows, pairs: np.ndarray) -> np.ndarray:
-        """Estimated Jaccard similarity of each pair, reading the signatures of a chunk of pairs at a time."""
+    @staticmethod
+    def _candidates(partials: list, first: np.ndarray) -> tuple[Candidates, np.ndarray]:
+        """The candidate pairs of all partitions between first copies (an exact copy pairs through its first
+        copy), each pair once, sorted, with its similarity: what candidate_pairs gives on all the keys at once."""
+        pairs = np.concatenate([p.pairs for p in partials]) if partials else np.zeros((0, 2), np.int64)
+        similarity = np.concatenate([p.similarity for p in partials]) if partials else np.zeros(0)
+        keep = first[pairs[:, 0]] & first[pairs[:, 1]]
+        pairs, similarity = pairs[keep], similarity[keep]
+        order = np.lexsort((pairs[:, 1], pairs[:, 0]))
+        pairs, similarity = pairs[order], similarity[order]
+        once = np.ones(len(pairs), dtype=bool)
+        once[1:] = np.any(pairs[1:] != pairs[:-1], axis=1)
+        capped = sum(p.capped_buckets for p in partials)
+        largest = max((p.largest_bucket for p in partials), default=0)
+        return Candidates(pairs[once], capped, largest), similarity[once]
+
+    def _verify(self, pairs: np.ndarray, offsets: np.ndarray, paths: list) -> np.ndarray:
+        """Estimated Jaccard similarity of each pair, reading the signatures of a chunk of pairs at a time from the
+        signature file of each window's shard (shard ``s`` holds the ids ``offsets[s]`` to ``offsets[s + 1] - 1``)."""
         similarity = np.empty(len(pairs), dtype=np.float64)
-        paths = [st.signatures_path for st in scan.states]
         for lo in range(0, len(pairs), _VERIFY_PAIRS):
             chunk = pairs[lo:lo + _VERIFY_PAIRS]
             needed, where = np.unique(chunk, return_inverse=True)
             where = where.reshape(chunk.shape)
             block = np.empty((len(needed), self.minhash.num_perm), dtype=np.uint32)
-            shard = scan.shard_of[needed]
+            shard = np.searchsorted(offsets, needed, side="right") - 1
             cuts = np.flatnonzero(np.diff(shard)) + 1
             for a, b in zip(np.concatenate(([0], cuts)).tolist(), np.concatenate((cuts, [len(needed)])).tolist()):
                 s = int(shard[a])
                 stored = np.load(paths[s], mmap_mode="r")  # reads only the rows asked for
-                block[a:b] = stored[needed[a:b] - scan.offsets[s]]
+                block[a:b] = stored[needed[a:b] - offsets[s]]
                 del stored
             similarity[lo:lo + len(chunk)] = estimated_jaccard(block[where[:, 0]], block[where[:, 1]])
         return similarity

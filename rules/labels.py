@@ -10,10 +10,12 @@ from __future__ import annotations
 
 import numpy as np
 
-from lint.batch import Batch, Flat, is_integer_list, running_count
+from lint.batch import Batch, Flat
 from lint.findings import Finding, Level
 from lint.rule import Rule, absolute_rows, consistent, pct, share
-from lint.shift import PREFERENCE, SHIFTS, best_shift, first_mismatch, shift_matches, spans
+from lint.shift import PREFERENCE, SHIFTS, best_shift, first_mismatch, shift_matches
+
+from .separators import inner_starts, padding_free, padding_positions, position_restarts, token_positions
 
 #: Label shift each convention expects in the data.
 CONVENTION_SHIFT = {"shifted": 1, "aligned": 0}
@@ -36,46 +38,30 @@ def expected_shift(settings) -> tuple[int, str]:
     return CONVENTION_SHIFT[settings.labels], "inferred" if settings.source("labels") == "inferred" else "given"
 
 
-def padding_positions(batch: Batch, tokens: Flat, settings) -> np.ndarray:
-    """True at every flat position that is padding: ``attention_mask == 0`` when the batch has a mask; otherwise
-    the run of ``pad_id`` after a row's last other token (when ``pad_id`` equals ``eos_id`` the first id of that
-    run is the row's real eos and is not padding); without either, nothing is padding."""
-    name = settings.mask_column
-    if batch.has(name) and is_integer_list(batch.type_of(name)):
-        mask = batch.flat(name)
-        if np.array_equal(mask.lengths, tokens.lengths):
-            return mask.values == 0
-    pad = settings.pad_id
-    n = tokens.values.size
-    if pad is None:
-        return np.zeros(n, dtype=bool)
-    real = running_count(tokens.values != pad)
-    has_real = real[tokens.ends] > real[tokens.starts]
-    # flat index just past each row's last real token: where the running count of real tokens reaches its total
-    end = np.where(has_real, np.searchsorted(real, real[tokens.ends], side="left"), tokens.starts)
-    if pad == settings.eos_id:
-        end = np.minimum(end + 1, tokens.ends)
-    return spans(n, end, tokens.ends)
-
-
-def document_starts(batch: Batch, tokens: Flat, settings, padding: np.ndarray) -> tuple[np.ndarray, str | None]:
+def document_starts(batch: Batch, tokens: Flat, settings) -> tuple[np.ndarray, str | None]:
     """Flat indices of documents that start inside a row (not at its first position) between two real tokens,
     and what marked them: ``position_ids`` restarting at 0; else the token after ``eos_id``; else ``bos_id``
     under a ``bos-before`` separator. ``(empty, None)`` when nothing marks documents."""
-    inside = ~tokens.is_first & ~padding
-    inside[1:] &= ~padding[:-1]
-    name = settings.positions_column
-    if batch.has(name) and is_integer_list(batch.type_of(name)):
-        positions = batch.flat(name)
-        if np.array_equal(positions.lengths, tokens.lengths):
-            return np.flatnonzero(inside & (positions.values == 0)), "position_ids"
+    restarts = position_restarts(batch, tokens, settings)
+    if restarts is not None:
+        return restarts, "position_ids"
     if settings.eos_id is not None and settings.separator in ("eos-after", "both"):
-        after_eos = np.zeros(tokens.values.size, dtype=bool)
-        after_eos[1:] = tokens.values[:-1] == settings.eos_id
-        return np.flatnonzero(inside & after_eos), "eos_id"
+        after = token_positions(batch, tokens, settings, settings.eos_id) + 1
+        return inner_starts(batch, tokens, settings, after[after < tokens.values.size]), "eos_id"
     if settings.bos_id is not None and settings.separator in ("bos-before", "both"):
-        return np.flatnonzero(inside & (tokens.values == settings.bos_id)), "bos_id"
+        at_bos = token_positions(batch, tokens, settings, settings.bos_id)
+        return inner_starts(batch, tokens, settings, at_bos), "bos_id"
     return np.zeros(0, dtype=np.int64), None
+
+
+def label_values(values: np.ndarray, ignore_index: int) -> np.ndarray:
+    """The flat labels as they are when their integer type holds ``ignore_index`` (int32 labels stay int32:
+    comparing them costs half of comparing an int64 copy), else as an int64 copy."""
+    if values.dtype.kind == "i":
+        bound = 1 << (8 * values.dtype.itemsize - 1)  # the type holds [-bound, bound)
+        if -bound <= ignore_index < bound:
+            return values
+    return values.astype(np.int64)
 
 
 def first_per_row(tokens: Flat, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray, int]:
@@ -193,58 +179,76 @@ class LabelAlignment(Rule):
         if not len(batch):
             return
         tokens = batch.flat(s.tokens_column)
-        labels = batch.flat(s.labels_column).values.astype(np.int64, copy=False)
+        labels = label_values(batch.flat(s.labels_column).values, s.ignore_index)
         trained = labels != s.ignore_index
-        padding = padding_positions(batch, tokens, s)
-        state.count(rows=len(batch), positions=labels.size, trained=int(trained.sum()))
+        trained_rows = tokens.row_counts(trained)
+        padding = None if padding_free(batch, tokens, s) else padding_positions(batch, tokens, s)
+        state.count(rows=len(batch), positions=labels.size, trained=int(trained_rows.sum()))
         markers = self._markers(state, batch, tokens, labels, trained, padding)
-        teaching = trained & ~markers  # labels that name a token
-        follows = self._shift(state, batch, tokens, np.where(markers, s.ignore_index, labels))
+        if markers is None:  # the common case: every trained label names a token
+            teaching, teaching_rows, shifted = trained, trained_rows, labels
+        else:
+            teaching = trained & ~markers  # labels that name a token
+            teaching_rows = tokens.row_counts(teaching)
+            shifted = np.where(markers, s.ignore_index, labels)
+        follows = self._shift(state, batch, tokens, shifted, teaching, teaching_rows)
         if state.expected == 1:
-            self._last_label(state, batch, tokens, labels, teaching & ~padding, follows)
-        empty = np.flatnonzero((tokens.count_per_row(trained) == 0) & (tokens.lengths > 0))
+            self._last_label(state, batch, tokens, labels, teaching, padding, follows)
+        empty = np.flatnonzero((trained_rows == 0) & (tokens.lengths > 0))
         state.hit("nothing-trained", absolute_rows(batch, empty))
-        starts, basis = document_starts(batch, tokens, s, padding)
+        starts, basis = document_starts(batch, tokens, s)
         state.basis = state.basis or basis
-        state.count(document_starts=starts.size, cross_document=int(teaching[starts - state.expected].sum()))
+        state.count(document_starts=starts.size,
+                    cross_document=int(np.count_nonzero(teaching[starts - state.expected])))
 
-    def _markers(self, state, batch, tokens, labels, trained, padding) -> np.ndarray:
-        """Record label values that are neither a token id nor ignore_index; return where they are."""
+    def _markers(self, state, batch, tokens, labels, trained, padding) -> np.ndarray | None:
+        """Record label values that are neither a token id nor ignore_index; return where they are (None when
+        there are none). Each kind is first detected with one cheap pass; masks are built only when it occurs."""
         s = state.settings
-        negative = trained & (labels < 0)
-        rows, offsets, n = first_per_row(tokens, negative)
-        state.hit("negative-label", absolute_rows(batch, rows), offsets)
-        if n:
+        markers = None
+        low, high = (int(labels.min()), int(labels.max())) if labels.size else (0, -1)
+        negatives = 0
+        if low < 0:
+            negatives = int(np.count_nonzero(labels < 0))
+            if s.ignore_index < 0:  # the ignored positions are negative too
+                negatives -= labels.size - int(np.count_nonzero(trained))
+        if negatives:
+            negative = trained & (labels < 0)
+            rows, offsets, n = first_per_row(tokens, negative)
+            state.hit("negative-label", absolute_rows(batch, rows), offsets)
             values, counts = np.unique(labels[negative], return_counts=True)
             for value, count in zip(values.tolist(), counts.tolist()):
                 if value in state.negative_values or len(state.negative_values) < VALUES_KEPT:
                     state.negative_values[value] = state.negative_values.get(value, 0) + count
             state.count(negative_positions=n)
-        markers = negative
-        if s.vocab_size is not None:
+            markers = negative
+        if s.vocab_size is not None and high >= s.vocab_size:
             beyond = trained & (labels >= s.vocab_size)
             rows, offsets, n = first_per_row(tokens, beyond)
             state.hit("label-out-of-vocab", absolute_rows(batch, rows), offsets)
             if n:
                 state.count(out_of_vocab_positions=n)
                 state.max_label = max(state.max_label or 0, int(labels[beyond].max()))
-            markers = markers | beyond
+                markers = beyond if markers is None else markers | beyond
         if s.pad_id is not None and s.pad_id != s.ignore_index:
-            pad_marked = trained & padding & (labels == s.pad_id)
-            rows, offsets, n = first_per_row(tokens, pad_marked)
-            state.hit("pad-label", absolute_rows(batch, rows), offsets)
+            n = 0
+            if padding is not None:
+                pad_marked = trained & padding & (labels == s.pad_id)
+                rows, offsets, n = first_per_row(tokens, pad_marked)
+                state.hit("pad-label", absolute_rows(batch, rows), offsets)
+                if n:
+                    markers = pad_marked if markers is None else markers | pad_marked
             state.count(pad_label_positions=n)
-            markers = markers | pad_marked
         return markers
 
-    def _shift(self, state, batch, tokens, labels) -> np.ndarray:
+    def _shift(self, state, batch, tokens, labels, trained, trained_rows) -> np.ndarray:
         """Best shift and agreement per row; hits per observed shift (offset: first label breaking the shift the
         row is compared with — the expected one, or for shift 0/1 rows the other convention). Returns which rows
-        follow the expected shift."""
+        follow the expected shift. ``trained`` is ``labels != ignore_index``, ``trained_rows`` its row counts."""
         s, expected = state.settings, state.expected
         # Rows whose every trained label follows the expected shift are settled by one comparison; only the
         # others (none in a clean shard) are measured against every shift.
-        m0, c0 = shift_matches(tokens, labels, s.ignore_index, (expected,))
+        m0, c0 = shift_matches(tokens, labels, s.ignore_index, (expected,), trained, trained_rows)
         perfect = (c0[0] > 0) & (m0[0] == c0[0])
         settled = np.flatnonzero(perfect)
         state.hit(shift_kind(expected), absolute_rows(batch, settled), self._other_break(state, tokens, labels, settled))
@@ -266,12 +270,8 @@ class LabelAlignment(Rule):
         room = state.cap - (hits.kept if hits else 0)
         keep = rows[:max(room, 0)]
         if keep.size and state.expected in (0, 1):
-            if keep.size == tokens.lengths.size:
-                offsets[:] = first_mismatch(tokens, labels, state.settings.ignore_index, 1 - state.expected)
-            else:
-                sub, source = tokens.take(keep)
-                offsets[:keep.size] = first_mismatch(sub, labels[source], state.settings.ignore_index,
-                                                     1 - state.expected)
+            offsets[:keep.size] = first_mismatch(tokens, labels, state.settings.ignore_index, 1 - state.expected,
+                                                 rows=keep)
         return offsets
 
     def _measure(self, state, rows_in_shard, tokens, labels) -> np.ndarray:
@@ -296,9 +296,10 @@ class LabelAlignment(Rule):
         state.count(loose_agreement=float(agreement[loose].sum()))
         return steady & (best == expected)
 
-    def _last_label(self, state, batch, tokens, labels, teaching_real, follows) -> None:
-        """Rows that follow the shifted convention but whose last label is trained, unless it is the next
-        record's first token (rows with another shift are reported for that already)."""
+    def _last_label(self, state, batch, tokens, labels, teaching, padding, follows) -> None:
+        """Rows that follow the shifted convention but whose last label is trained (and names a token, and is not
+        padding; ``padding`` None: there is none), unless it is the next record's first token (rows with another
+        shift are reported for that already)."""
         rows = np.flatnonzero(tokens.lengths > 0)
         if not rows.size:
             return
@@ -313,7 +314,9 @@ class LabelAlignment(Rule):
                 state.hit("last-label", [row], [offset])
                 state.count(wraps=int(label == own_first))
             state.tail = None
-        trained_last = teaching_real[last] & follows[rows]
+        trained_last = teaching[last] & follows[rows]
+        if padding is not None:
+            trained_last &= ~padding[last]
         continued = np.zeros(rows.size, dtype=bool)
         continued[:-1] = last_label[:-1] == first_token[1:]
         if trained_last[-1]:

@@ -15,9 +15,13 @@ from __future__ import annotations
 
 import numpy as np
 
-from lint.batch import Flat, is_integer_list, spans
+from functools import cached_property
+
+from lint.batch import Flat, MaskRanks, is_integer_list, spans
 from lint.findings import Finding, Level
 from lint.rule import Rule, absolute_rows, consistent, pct, share
+
+from .separators import padding_positions, real_per_row, real_positions, real_ranks
 
 
 # -- per-row arithmetic over flat arrays --------------------------------------------------------------------------
@@ -42,31 +46,56 @@ def first_per_row(flat: Flat, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]
 
 
 class PadRuns:
-    """Padding read from the token ids alone (see the module docstring for the reading).
-
-    ``padding``: positions taken as padding; ``undecided``: pad-id runs that may be real separators; ``non_pad``:
-    positions whose id is not the pad id (real whatever the mask says).
+    """Padding read from the token ids alone (see the module docstring for the reading), as ranges of flat
+    indices: per row, padding is ``[starts, lead_end)`` (left) and ``[trail_start, ends)`` (right), and the
+    undecided pad-id run is ``[undecided_lo, undecided_hi)``. ``non_pad``: positions whose id is not the pad id
+    (real whatever the mask says). Dense masks of padding and undecided positions are built only when asked for.
     """
 
     def __init__(self, flat: Flat, pad_id: int, eos_id: int | None, bos_id: int | None):
-        is_pad = flat.values == pad_id
-        self.non_pad = ~is_pad
-        n = is_pad.size
-        first, last = flat.first_where(self.non_pad), flat.last_where(self.non_pad)
-        none = last < 0  # a row of nothing but pad ids is read as right padding
-        trailing = spans(n, np.where(none, flat.starts, last + 1), flat.ends)
-        leading = spans(n, flat.starts, np.where(none, flat.starts, first))
-        padding = np.zeros_like(is_pad)
-        self.undecided = np.zeros_like(is_pad)
-        if pad_id == eos_id:
-            padding |= trailing & _previous(flat, trailing)  # the first of the end run is the real eos
-            self.undecided |= leading
-        elif pad_id == bos_id:
-            padding |= leading & _next(flat, leading)  # the last of the start run is the real bos
-            self.undecided |= trailing
+        self.flat = flat
+        self.non_pad = flat.values != pad_id
+        ranks = MaskRanks(self.non_pad)
+        before, after = ranks.rank(flat.starts), ranks.rank(flat.ends)
+        some = after > before  # a row of nothing but pad ids is read as right padding
+        first, end = flat.starts.copy(), flat.starts.copy()  # first non-pad id; just past the last one
+        first[some] = ranks.select(before[some] + 1)
+        end[some] = ranks.select(after[some]) + 1
+        starts, ends = flat.starts, flat.ends
+        if pad_id == eos_id:  # the first of the end run is the real eos; the start run is undecided
+            self.lead_end, self.trail_start = starts, np.minimum(end + 1, ends)
+            self.undecided_lo, self.undecided_hi = starts, first
+        elif pad_id == bos_id:  # the last of the start run is the real bos; the end run is undecided
+            self.lead_end, self.trail_start = np.maximum(first - 1, starts), ends
+            self.undecided_lo, self.undecided_hi = end, ends
         else:
-            padding |= trailing | leading
-        self.padding = padding
+            self.lead_end, self.trail_start = first, end
+            self.undecided_lo = self.undecided_hi = ends
+
+    @cached_property
+    def padding(self) -> np.ndarray:
+        """True at the positions taken as padding."""
+        flat = self.flat
+        return spans(flat.values.size, np.concatenate([flat.starts, self.trail_start]),
+                     np.concatenate([self.lead_end, flat.ends]))
+
+    @cached_property
+    def undecided(self) -> np.ndarray:
+        """True in the pad-id runs that may be real separators."""
+        return spans(self.flat.values.size, self.undecided_lo, self.undecided_hi)
+
+    def count_in_padding(self, ranks: MaskRanks) -> tuple[np.ndarray, np.ndarray]:
+        """Per row, how many positions of the padding have the mask behind ``ranks`` set, and the flat index of
+        the first of them (-1 where there is none)."""
+        flat = self.flat
+        at_start, at_lead_end = ranks.rank(flat.starts), ranks.rank(self.lead_end)
+        at_trail, at_end = ranks.rank(self.trail_start), ranks.rank(flat.ends)
+        lead, trail = at_lead_end - at_start, at_end - at_trail
+        first = np.full(lead.size, -1, dtype=np.int64)
+        in_lead, in_trail = lead > 0, (lead == 0) & (trail > 0)
+        first[in_lead] = ranks.select(at_start[in_lead] + 1)
+        first[in_trail] = ranks.select(at_trail[in_trail] + 1)
+        return lead + trail, first
 
 
 #: The mask pattern of a padded row, by padding side.
@@ -121,38 +150,50 @@ class PaddingLoss(Rule):
         if flat.values.size == 0:
             return
         runs = PadRuns(flat, s.pad_id, s.eos_id, s.bos_id) if s.pad_id is not None else None
-        if _has(batch, s.mask_column):
-            real = batch.flat(s.mask_column).values != 0
-            padding = ~real
+        if _has(batch, s.mask_column):  # the same columns, so the same reading as real_positions
+            real = real_positions(batch, flat, s)
+            padding = padding_positions(batch, flat, s)
+            pads = flat.values.size - int(real_per_row(batch, flat, s).sum())
             state.sources.add("attention_mask")
             self._mask_shape(state, batch, flat, real)
             if runs is not None:
-                self._hit_rows(state, batch, flat, real & runs.padding, "attended-padding")
-                self._hit_rows(state, batch, flat, padding & runs.non_pad, "masked-real-tokens")
+                count, first = runs.count_in_padding(real_ranks(batch, flat, s))
+                rows = np.flatnonzero(count)
+                state.hit("attended-padding", absolute_rows(batch, rows), first[rows] - flat.offsets[rows])
+                state.count(**{"attended-padding_positions": int(count.sum())})
+                self._hit_rows(state, batch, flat, np.greater(runs.non_pad, real), "masked-real-tokens")
         else:
             real = None
             padding = runs.padding
+            pads = int(np.count_nonzero(padding))
             state.sources.add("pad_id")
-        state.count(slots=flat.values.size, padding=int(np.count_nonzero(padding)))
+        state.count(slots=flat.values.size, padding=pads)
         if not _has(batch, s.labels_column):
             return
         labels = batch.flat(s.labels_column).values
         ignored = labels == s.ignore_index
-        on_padding = padding | _next(flat, padding) if s.labels == "shifted" else padding
-        self._hit_rows(state, batch, flat, on_padding & ~ignored, "trained-padding")
+        if pads:
+            trained_padding = np.greater(padding, ignored)  # padding whose label is trained
+            if s.labels == "shifted":  # ... or whose target, the next position in the row, is padding
+                target = np.greater(padding[1:], ignored[:-1])
+                last = flat.ends[flat.lengths > 0] - 1
+                target[last[last < target.size]] = False
+                trained_padding[:-1] |= target
+            self._hit_rows(state, batch, flat, trained_padding, "trained-padding")
+        else:
+            state.count(**{"trained-padding_positions": 0})
         if s.pad_id is not None and s.pad_id == s.eos_id and s.labels is not None:
             self._eos_targets(state, batch, flat, ignored, real, runs)
 
     def _mask_shape(self, state, batch, flat, real):
         """Rows whose mask is not one block of ones and one block of zeros, located for either padding side."""
-        pad = ~real
         # A row's mask changes between real and padding at most once when it is one block of each; a row with
         # two changes or more is broken. A change to real breaks right padding, a change to padding left padding.
-        inside = ~flat.is_first[1:]
-        to_real = np.flatnonzero(real[1:] & pad[:-1] & inside) + 1
-        to_pad = np.flatnonzero(pad[1:] & real[:-1] & inside) + 1
-        changes = np.bincount(flat.rows_at(to_real), minlength=flat.lengths.size) + \
-            np.bincount(flat.rows_at(to_pad), minlength=flat.lengths.size)
+        # Changes are few (one per padded row), so they are found as flat indices and everything else is on them.
+        change = np.flatnonzero(real[1:] != real[:-1]) + 1
+        change = change[~flat.is_first[change]]
+        to_real, to_pad = change[real[change]], change[~real[change]]
+        changes = flat.count_positions(change)
         broken = changes >= 2
         for side, breaks in (("right", to_real), ("left", to_pad)):
             rows, offsets = flat.locate(breaks)
@@ -160,7 +201,8 @@ class PaddingLoss(Rule):
             first[1:] = rows[1:] != rows[:-1]
             keep = first & broken[rows]
             state.hit(f"mask-shape:{side}", absolute_rows(batch, rows[keep]), offsets[keep])
-        padded = (flat.count_per_row(pad) > 0) & (flat.count_per_row(real) > 0)
+        real_count = real_per_row(batch, flat, state.settings)
+        padded = (real_count < flat.lengths) & (real_count > 0)
         starts_real = real[flat.offsets[:-1][padded]]
         state.count(right_padded=int(np.count_nonzero(starts_real)), left_padded=int(np.count_nonzero(~starts_real)))
 

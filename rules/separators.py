@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from lint.batch import Batch, Flat, is_integer_list, spans
+from lint.batch import Batch, Flat, MaskRanks, is_integer_list, spans
 from lint.findings import Finding, Level
 from lint.rule import Rule, absolute_rows, consistent, pct, share
 
@@ -25,6 +25,12 @@ PACKED_PADDED_SHARE = 0.01
 
 
 # -- shared helpers: real tokens vs padding ------------------------------------------------------------------
+#
+# Several rules need the same facts about a batch (which positions are real tokens, where documents restart,
+# where the separators are). Each is computed once per batch and shared through ``Batch.memo``; the keys name
+# the settings a fact depends on, and ``tokens`` is always ``batch.flat(settings.tokens_column)``. Separator and
+# restart positions are kept as sorted flat indices: a window holds a few documents, so these lists are short
+# and everything derived from them costs next to nothing.
 
 def last_index(flat: Flat, mask: np.ndarray) -> np.ndarray:
     """Per row, the flat index of the last position where ``mask`` is set, or -1 when there is none."""
@@ -36,14 +42,22 @@ def first_index(flat: Flat, mask: np.ndarray) -> np.ndarray:
     return flat.first_where(mask)
 
 
+def _real_key(settings) -> tuple:
+    return ("real", settings.tokens_column, settings.mask_column, settings.pad_id, settings.eos_id)
+
+
 def real_positions(batch: Batch, tokens: Flat, settings) -> np.ndarray:
-    """True at every flat position that holds a real token rather than padding.
+    """True at every flat position that holds a real token rather than padding (shared per batch; read-only).
 
     The attention mask decides when the batch has one (``attention_mask != 0``). Without it, a run of ``pad_id``
     at the end of a row is padding; when ``pad_id`` equals ``eos_id`` the first id of that run is kept as the
     eos that ends the row's last document and only the rest counts as padding. Without either, every token is
     real.
     """
+    return batch.memo(_real_key(settings), lambda: _real_positions(batch, tokens, settings))
+
+
+def _real_positions(batch: Batch, tokens: Flat, settings) -> np.ndarray:
     name = settings.mask_column
     if batch.has(name) and is_integer_list(batch.type_of(name)):
         mask = batch.flat(name)
@@ -59,19 +73,73 @@ def real_positions(batch: Batch, tokens: Flat, settings) -> np.ndarray:
     return spans(tokens.values.size, tokens.starts, tokens.starts + end)
 
 
-def position_restarts(batch: Batch, tokens: Flat, settings, real: np.ndarray) -> np.ndarray | None:
+def padding_positions(batch: Batch, tokens: Flat, settings) -> np.ndarray:
+    """True at every flat position that is padding: the complement of :func:`real_positions` (shared per batch;
+    read-only)."""
+    return batch.memo(("padding",) + _real_key(settings)[1:], lambda: ~real_positions(batch, tokens, settings))
+
+
+def real_ranks(batch: Batch, tokens: Flat, settings) -> MaskRanks:
+    """:class:`~lint.batch.MaskRanks` of :func:`real_positions`: how many real tokens lie in any range, and where
+    the k-th real token is (shared per batch)."""
+    return batch.memo(("real-ranks",) + _real_key(settings)[1:],
+                      lambda: MaskRanks(real_positions(batch, tokens, settings)))
+
+
+def padding_free(batch: Batch, tokens: Flat, settings) -> bool:
+    """Whether every position of the batch is a real token (then the checks that involve padding are skipped)."""
+    return batch.memo(("padding-free",) + _real_key(settings)[1:],
+                      lambda: bool(real_positions(batch, tokens, settings).all()))
+
+
+def real_per_row(batch: Batch, tokens: Flat, settings) -> np.ndarray:
+    """Per row, how many of its positions are real tokens (shared per batch; read-only)."""
+    def count():
+        if padding_free(batch, tokens, settings):
+            return tokens.lengths
+        ranks = real_ranks(batch, tokens, settings)
+        return ranks.rank(tokens.ends) - ranks.rank(tokens.starts)
+    return batch.memo(("real-per-row",) + _real_key(settings)[1:], count)
+
+
+def token_positions(batch: Batch, tokens: Flat, settings, token_id: int | None) -> np.ndarray:
+    """Sorted flat indices of every position holding ``token_id``, padding included (empty when it is None)."""
+    if token_id is None:
+        return np.zeros(0, dtype=np.int64)
+    return batch.memo(("token-positions", settings.tokens_column, int(token_id)),
+                      lambda: np.flatnonzero(tokens.values == token_id))
+
+
+def real_token_positions(batch: Batch, tokens: Flat, settings, token_id: int | None) -> np.ndarray:
+    """Sorted flat indices of the real (not padding) positions holding ``token_id``."""
+    at = token_positions(batch, tokens, settings, token_id)
+    if at.size == 0 or padding_free(batch, tokens, settings):
+        return at
+    return at[real_positions(batch, tokens, settings)[at]]
+
+
+def inner_starts(batch: Batch, tokens: Flat, settings, candidates: np.ndarray) -> np.ndarray:
+    """The ``candidates`` (sorted flat indices) that can start a document inside a row: not a row's first
+    position, and both the candidate and the position before it are real tokens."""
+    keep = ~tokens.is_first[candidates]
+    if not padding_free(batch, tokens, settings):
+        real = real_positions(batch, tokens, settings)
+        keep &= real[candidates] & real[candidates - 1]  # a candidate that is no row start has a predecessor
+    return candidates[keep]
+
+
+def position_restarts(batch: Batch, tokens: Flat, settings) -> np.ndarray | None:
     """Flat indices where position_ids restart at 0 inside a row, between two real tokens: document starts
-    after the first document of the row. None when the batch has no usable position_ids column."""
+    after the first document of the row (shared per batch; read-only). None when the batch has no usable
+    position_ids column."""
     name = settings.positions_column
     if not (batch.has(name) and is_integer_list(batch.type_of(name))):
         return None
     positions = batch.flat(name)
     if not np.array_equal(positions.lengths, tokens.lengths):
         return None
-    before_real = np.zeros_like(real)
-    before_real[1:] = real[:-1]
-    before_real &= ~tokens.is_first
-    return np.flatnonzero((positions.values == 0) & real & before_real)
+    return batch.memo(("restarts", name) + _real_key(settings)[1:],
+                      lambda: inner_starts(batch, tokens, settings, np.flatnonzero(positions.values == 0)))
 
 
 def missing_ids(settings, keys) -> str | None:
@@ -141,16 +209,17 @@ class MissingSeparator(Rule):
         batch = consistent(batch, parallel_columns(s))
         tokens = batch.flat(s.tokens_column)
         values = tokens.values
-        real = real_positions(batch, tokens, s)
+        free = padding_free(batch, tokens, s)
         want_eos = s.separator in ("eos-after", "both")
         want_bos = s.separator in ("bos-before", "both")
-        state.count(rows=tokens.lengths.size, tokens=int(real.sum()))
-        is_eos = real & (values == s.eos_id) if s.eos_id is not None else np.zeros(values.size, dtype=bool)
-        is_bos = real & (values == s.bos_id) if s.bos_id is not None else np.zeros(values.size, dtype=bool)
-        state.count(eos=int(is_eos.sum()), bos=int(is_bos.sum()))
+        real_count = real_per_row(batch, tokens, s)
+        state.count(rows=tokens.lengths.size, tokens=int(real_count.sum()))
+        eos_at = real_token_positions(batch, tokens, s, s.eos_id)  # real separators, as sorted flat indices
+        bos_at = real_token_positions(batch, tokens, s, s.bos_id)
+        state.count(eos=eos_at.size, bos=bos_at.size)
 
         # document boundaries marked by position_ids
-        starts = position_restarts(batch, tokens, s, real)
+        starts = position_restarts(batch, tokens, s)
         if starts is not None:
             state.count(boundaries=starts.size)
             if want_eos:
@@ -163,33 +232,36 @@ class MissingSeparator(Rule):
                 state.hit("boundary-no-bos", absolute_rows(batch, rows), offsets)
 
         # padded rows: the last document ends before the row does, so it must end with eos
-        real_count = tokens.count_per_row(real)
         padded = (real_count < tokens.lengths) & (real_count > 0)
-        state.count(padded_rows=int(padded.sum()))
-        if want_eos:
-            last = last_index(tokens, real)
+        state.count(padded_rows=int(np.count_nonzero(padded)))
+        if want_eos and not free:
             rows = np.flatnonzero(padded)
-            rows = rows[values[last[rows]] != s.eos_id]
-            state.hit("unterminated-row", absolute_rows(batch, rows), last[rows] - tokens.offsets[rows])
+            if rows.size:  # the last real token of each padded row
+                ranks = real_ranks(batch, tokens, s)
+                last = ranks.select(ranks.rank(tokens.starts[rows]) + real_count[rows])
+                bad = values[last] != s.eos_id
+                rows, last = rows[bad], last[bad]
+                state.hit("unterminated-row", absolute_rows(batch, rows), last - tokens.offsets[rows])
 
         # packed windows (full rows of seq_len tokens): are there separators at all?
         if s.seq_len is not None:
             window = (tokens.lengths == s.seq_len) & (real_count == tokens.lengths)
-            state.count(windows=int(window.sum()), window_tokens=int(window.sum()) * s.seq_len)
-            for name, hits, wanted in (("eos", is_eos, want_eos), ("bos", is_bos, want_bos)):
+            windows = int(np.count_nonzero(window))
+            state.count(windows=windows, window_tokens=windows * s.seq_len)
+            for name, at, wanted in (("eos", eos_at, want_eos), ("bos", bos_at, want_bos)):
                 if wanted:
-                    per_row = tokens.count_per_row(hits)
+                    per_row = tokens.count_positions(at)
                     state.count(**{f"window_{name}": int(per_row[window].sum())})
                     state.hit(f"no-{name}", absolute_rows(batch, np.flatnonzero(window & (per_row == 0))))
 
-        # doubled separators among real tokens (offset = the second of the pair)
-        pair = real[:-1] & real[1:] & ~tokens.is_last[:-1]
+        # doubled separators among real tokens (offset = the second of the pair, which starts no row)
         doubled_bos = s.bos_id is not None and s.bos_id != s.eos_id
-        for name, mark, check in (("eos", is_eos, s.eos_id is not None), ("bos", is_bos, doubled_bos)):
+        for name, at, check in (("eos", eos_at, s.eos_id is not None), ("bos", bos_at, doubled_bos)):
             if check and not (s.separator == "both" and s.bos_id == s.eos_id):
-                second = np.flatnonzero(pair & mark[:-1] & mark[1:]) + 1
+                second = at[1:][np.diff(at) == 1]
                 rows, offsets = tokens.locate(second)
-                state.hit(f"doubled-{name}", absolute_rows(batch, rows), offsets)
+                inside = offsets > 0
+                state.hit(f"doubled-{name}", absolute_rows(batch, rows[inside]), offsets[inside])
 
     def report(self, state):
         s, st, out = state.settings, state.stats, []

@@ -66,3 +66,54 @@ def test_fixed_size_lists_flatten_with_regular_offsets():
     array = pa.array([[1, 2], [3, 4], [5, 6]], type=pa.list_(pa.int32(), 2))
     flat = flatten_list(array)
     assert flat.offsets.tolist() == [0, 2, 4, 6] and flat.values.tolist() == [1, 2, 3, 4, 5, 6]
+
+
+@pytest.mark.parametrize("numpy_popcount", [True, False])
+def test_mask_ranks_rank_and_select_equal_counting_in_python(numpy_popcount, monkeypatch):
+    from lint.batch import MaskRanks
+
+    if not numpy_popcount:  # the bit-twiddling count used with numpy < 2.0
+        monkeypatch.delattr(np, "bitwise_count", raising=False)
+    rng = np.random.default_rng(11)
+    for _ in range(200):
+        mask = rng.random(int(rng.integers(0, 200))) < rng.random()
+        ranks = MaskRanks(mask)
+        bits = mask.tolist()
+        assert ranks.rank(np.arange(mask.size + 1)).tolist() == [sum(bits[:i]) for i in range(mask.size + 1)]
+        set_at = [i for i, bit in enumerate(bits) if bit]
+        assert ranks.select(np.arange(1, len(set_at) + 1)).tolist() == set_at
+
+
+def test_count_positions_and_first_of_equal_python_over_rows():
+    rng = np.random.default_rng(5)
+    for _ in range(300):
+        flat, offs = random_rows(rng)
+        positions = np.flatnonzero(rng.random(offs[-1]) < 0.2)
+        inside = [[p for p in positions.tolist() if s <= p < e] for s, e in zip(offs[:-1], offs[1:])]
+        assert flat.count_positions(positions).tolist() == [len(r) for r in inside]
+        rows = np.flatnonzero(rng.random(flat.lengths.size) < 0.6)
+        assert flat.first_of(positions, rows).tolist() == [inside[r][0] if inside[r] else -1 for r in rows]
+
+
+def test_batch_memo_computes_once_and_consistent_batches_hold_no_cycle():
+    import gc
+    import weakref
+
+    from lint.batch import Batch, Shard
+    from lint.rule import consistent
+
+    table = pa.table({"input_ids": pa.array([[1, 2], [3]]), "labels": pa.array([[2, -100], [-100]])})
+    batch = Batch(Shard("x.parquet", "x.parquet", "parquet"), table, np.arange(2))
+    calls = []
+    first = batch.memo(("k", 1), lambda: calls.append(1) or np.arange(3))
+    assert batch.memo(("k", 1), lambda: calls.append(1) or np.arange(3)) is first and calls == [1]
+    assert consistent(batch, ["input_ids", "labels"]) is batch
+    # A batch must be freed as soon as the last reference goes, not when the cycle collector runs: it holds a
+    # batch's worth of Arrow memory, and a scan reads hundreds of batches.
+    gc.disable()
+    try:
+        gone = weakref.ref(batch)
+        del batch
+        assert gone() is None
+    finally:
+        gc.enable()

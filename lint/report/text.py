@@ -97,16 +97,38 @@ def _metric_lines(metrics: dict) -> list[str]:
     return lines
 
 
+def _estimate_line(estimate: dict) -> list[str]:
+    if "share" not in estimate:
+        text = f"sample: {_num(estimate['observedCount'])} instances in {_num(estimate['rowsScanned'])} rows scanned"
+        if "estimatedCount" in estimate:
+            text += f", about {_num(estimate['estimatedCount'])} in all (ratio estimate)"
+        return _wrap(text, "      ")
+    text = (f"sample: {_pct(100 * estimate['share'])} of {_num(estimate['rowsScanned'])} rows scanned (95% CI "
+            f"{_pct(100 * estimate['ci95Low'])} to {_pct(100 * estimate['ci95High'])}, Wilson score)")
+    if "estimatedAffectedRows" in estimate:
+        low, high = estimate["estimatedAffectedRowsCi95"]
+        text += (f", about {_num(estimate['estimatedAffectedRows'])} of {_num(estimate['estimatedRows'])} rows "
+                 f"({_num(low)} to {_num(high)})")
+    if estimate.get("basis") == "instances":
+        text += "; counted by instances, an upper bound when a row holds several"
+    return _wrap(text, "      ")
+
+
 def render(report) -> str:
     m = report.metrics
-    out = [f"corpuscle {__version__}: {m.get('shards', 0):,} shard(s), {m.get('rows', 0):,} rows, "
-           f"{m.get('tokens', 0):,} tokens, {m.get('seconds', 0):.2f} s", ""]
+    sample = m.get("sample") if isinstance(m.get("sample"), dict) else None
+    head = "SAMPLE of " if sample else ""
+    scanned = " scanned" if sample else ""
+    out = [f"corpuscle {__version__}: {head}{m.get('shards', 0):,} shard(s), {m.get('rows', 0):,} rows, "
+           f"{m.get('tokens', 0):,} tokens{scanned}, {m.get('seconds', 0):.2f} s", ""]
     for f in report.findings:
         where = f.uri or "across shards"
         out.append(f"{MARK[f.level]} {f.rule_id} [{where}] {f.count:,} instance(s)")
         out += _wrap(f.message, "      ")
         if f.count and f.rows.size:
             out += _wrap("at: " + _locations(f), "      ")
+        if isinstance(f.evidence.get("sampleEstimate"), dict):
+            out += _estimate_line(f.evidence["sampleEstimate"])
         out.append("")
     if not report.findings:
         out += ["No findings.", ""]

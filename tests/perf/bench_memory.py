@@ -1,0 +1,84 @@
+"""Benchmark: the peak memory of a scan does not grow with the size of the shard.
+
+    python tests/perf/bench_memory.py [--sizes-mb 1024,4096] [--seq-len 2048] [--only RULES] [--keep DIR]
+
+For each size, writes one tokenized Parquet shard of packed windows (as tests/perf/bench_scan.py does) of about that
+many megabytes, scans it with ``python -m lint scan SHARD --jobs 1`` (all rules unless ``--only`` is given) and
+reads the peak resident memory of that child process (``ru_maxrss`` from ``os.wait4``). The reader reads a batch
+of about ``DEFAULT_BATCH_TOKENS`` tokens at a time, so both peaks should be about equal; what grows with the shard
+is only the per-window state of the duplicate rules (a few dozen bytes per window in memory, the MinHash
+signatures on disk). The shards are deleted afterwards unless ``--keep`` is given.
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+
+import pyarrow.parquet as pq
+
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from bench_scan import VOCAB, write_shard  # noqa: E402
+
+REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+#: Bytes per token of a shard written by bench_scan.write_shard (three int32 columns, snappy): measured once on a
+#: 10M-token shard, used only to aim at the size asked for.
+BYTES_PER_TOKEN = 5.4
+
+
+def peak_of_scan(path: str, only: str | None) -> tuple[int, float]:
+    """Peak resident memory in bytes of the process scanning ``path``, and its wall-clock seconds."""
+    command = [sys.executable, "-m", "lint", "scan", path, "--jobs", "1", "--quiet", "--vocab-size", str(VOCAB)]
+    if only:
+        command += ["--only", only]
+    env = {**os.environ, "PYTHONPATH": REPO + os.pathsep + os.environ.get("PYTHONPATH", "")}
+    started = time.perf_counter()
+    child = subprocess.Popen(command, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    _, status, usage = os.wait4(child.pid, 0)
+    seconds = time.perf_counter() - started
+    child.returncode = os.waitstatus_to_exitcode(status)
+    if child.returncode not in (0, 1):
+        raise SystemExit(f"the scan failed (exit {child.returncode}): {child.stderr.read().decode()}")
+    return usage.ru_maxrss * 1024, seconds  # ru_maxrss is in KiB on Linux
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--sizes-mb", default="1024,4096", help="shard sizes to write, in MB (comma-separated)")
+    parser.add_argument("--seq-len", type=int, default=2048)
+    parser.add_argument("--only", help="rules to run (comma-separated ids); default: all")
+    parser.add_argument("--keep", help="folder to write the shards into (kept); default: a temporary folder")
+    args = parser.parse_args()
+    sizes = [int(s) for s in args.sizes_mb.split(",")]
+    folder = args.keep or tempfile.mkdtemp(prefix="corpuscle-bench-memory-")
+    os.makedirs(folder, exist_ok=True)
+    free = shutil.disk_usage(folder).free
+    if sum(sizes) * 1e6 * 1.1 > free:
+        raise SystemExit(f"not enough room under {folder}: {sum(sizes):,} MB asked, {free / 1e6:,.0f} MB free; "
+                         "give smaller --sizes-mb")
+    try:
+        lines = []
+        for size in sizes:
+            path = os.path.join(folder, f"shard-{size}mb.parquet")
+            if not os.path.exists(path):
+                write_shard(path, int(size * 1e6 / BYTES_PER_TOKEN), args.seq_len)
+            meta = pq.ParquetFile(path).metadata
+            tokens = meta.num_rows * args.seq_len
+            peak, seconds = peak_of_scan(path, args.only)
+            lines.append(f"{os.path.getsize(path) / 1e6:8,.0f} MB  {tokens / 1e6:7,.0f} M tokens  "
+                         f"{meta.num_rows:9,} windows  peak {peak / 2**20:7,.0f} MiB  ({seconds:.1f} s)")
+            if not args.keep:
+                os.remove(path)
+        print(f"scan with --jobs 1, rules: {args.only or 'all'}")
+        print("\n".join(lines))
+    finally:
+        if not args.keep:
+            shutil.rmtree(folder, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    main()

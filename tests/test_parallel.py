@@ -1,0 +1,47 @@
+"""A scan in a pool of processes writes the same SARIF, byte for byte, as a scan in one process: only the timing
+(``metrics.seconds``, the one figure that measures time) may differ. The corpus mixes formats and defects, and
+shares windows across shards so that the cross-shard reduce (duplicates) is exercised too."""
+from __future__ import annotations
+
+import json
+import re
+
+from click.testing import CliRunner
+
+from lint.cli import main
+from tests.shards import pack, write
+
+DOCS = [[10 + (i * 7) % 50, 11 + (i * 3) % 40, 12 + i % 30, 13 + i % 11] for i in range(120)]
+TIMING = re.compile(rb'"seconds": [0-9.eE+-]+')
+
+
+def corpus():
+    cols = pack(DOCS, 16, eos=2)
+    write("c/a.parquet", cols, row_group_size=7)
+    shifted = pack(DOCS[16:] + DOCS[:16], 16, eos=2)  # 16 documents = 5 whole windows
+    shifted["labels"][4] = shifted["input_ids"][4]  # one row with aligned labels among shifted ones
+    write("c/b.arrow", shifted, row_group_size=9)
+    write("c/sub/c.jsonl", pack(DOCS[::2], 16, eos=None))  # no separators at all
+    write("c/sub/d.jsonl.gz", {"text": ["a note on bread", "a note on bread", "", "soup \ufffd of the day"] * 5})
+    with open("c/sub/e.jsonl", "w") as fh:
+        fh.write('{"input_ids": [3, 4, 2]}\n{"input_ids": [3, 4\n')
+
+
+def test_one_job_and_two_jobs_write_the_same_sarif_apart_from_timing(tmp_path):
+    corpus()
+    runner = CliRunner()
+    logs = []
+    for jobs in (1, 2):
+        result = runner.invoke(main, ["scan", "c", "--jobs", str(jobs), "--vocab-size", "64", "--eos-id", "2", "--sarif",
+                                      f"jobs{jobs}.sarif", "--drop-list", f"drop{jobs}.jsonl"])
+        assert result.exit_code == 1, result.output
+        logs.append(open(f"jobs{jobs}.sarif", "rb").read())
+    assert all(len(TIMING.findall(log)) == 1 for log in logs)  # the one timing figure, replaced below
+    untimed = [TIMING.sub(b'"seconds": 0', log) for log in logs]
+    assert untimed[0] == untimed[1]
+    assert open("drop1.jsonl", "rb").read() == open("drop2.jsonl", "rb").read()
+    results = json.loads(untimed[0])["runs"][0]["results"]
+    rules = {r["ruleId"] for r in results}
+    # The corpus does hold defects of several families, cross-shard ones included.
+    assert {"exact-duplicate", "missing-separator", "unreadable-record", "label-alignment"} <= rules
+    assert any(r["ruleId"] == "exact-duplicate" and "uri" in r["properties"]["instances"][0] for r in results)
