@@ -13,9 +13,9 @@ Where padding is, per position:
 """
 from __future__ import annotations
 
-import numpy as np
-
 from functools import cached_property
+
+import numpy as np
 
 from lint.batch import Flat, MaskRanks, is_integer_list, spans
 from lint.findings import Finding, Level
@@ -31,13 +31,6 @@ def _previous(flat: Flat, mask: np.ndarray) -> np.ndarray:
     out = np.zeros_like(mask)
     out[1:] = mask[:-1]
     return out & ~flat.is_first
-
-
-def _next(flat: Flat, mask: np.ndarray) -> np.ndarray:
-    """``mask`` of the next position in the same row (False at row ends)."""
-    out = np.zeros_like(mask)
-    out[:-1] = mask[1:]
-    return out & ~flat.is_last
 
 
 def first_per_row(flat: Flat, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -65,10 +65,10 @@ def time_read(path: str, batch_size: int) -> float:
 
 
 def time_scan(path: str) -> tuple[float, float, int]:
-    code = ("import sys, time, resource; from lint import scan, Settings; from rules import registry; "
+    code = ("import sys, time; from lint import scan, Settings; from rules import registry; "
             f"only=tuple(r for r in {RULES!r}.split(',') if r in registry()); "
             f"t=time.perf_counter(); r=scan([{path!r}], Settings(only=only, vocab_size={VOCAB}), jobs=1); "
-            "print(time.perf_counter()-t, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, len(r.findings))")
+            "print(time.perf_counter()-t, [int(l.split()[1]) for l in open('/proc/self/status') if l.startswith('VmHWM')][0], len(r.findings))")
     out = subprocess.run([sys.executable, "-c", code], check=True, capture_output=True, text=True).stdout.split()
     return float(out[0]), int(out[1]) * 1024, int(out[2])
 
