@@ -85,7 +85,7 @@ def main():
 @click.option("--fail-at", type=click.Choice(FAIL_AT), help="Exit 1 when a finding is at or above this level [default: error].")
 @click.option("--jobs", type=click.IntRange(min=1), help="Shards scanned in parallel [default: number of cores].")
 @click.option("--cluster", metavar="ADDRESS",
-              help="Scan on a Dask cluster: the address of its scheduler (e.g. tcp://10.0.0.5:8786), or 'local' to "
+              help="Scan on a Dask cluster: the address of its scheduler (e.g. tcp://scheduler.example:8786), or 'local' to "
                    "start one on this machine with --jobs worker processes. The workers must read the shards at the "
                    "same paths (a shared file system, or s3://, gs://, hdfs:// URIs). Needs "
                    "pip install 'corpuscle[cluster]'.")

@@ -111,7 +111,7 @@ def _piece(half, partition: int):
 
 
 class DaskExecutor:
-    """Runs work on a Dask cluster: the scheduler at ``address`` (e.g. ``tcp://10.0.0.5:8786``), or, for
+    """Runs work on a Dask cluster: the scheduler at ``address`` (e.g. ``tcp://scheduler.example:8786``), or, for
     ``address="local"``, a ``distributed.LocalCluster`` started here: ``jobs`` worker processes (default: the number
     of cores) of one thread each, listening on the loopback interface only, with no dashboard.
 
@@ -127,7 +127,7 @@ class DaskExecutor:
 
     def __init__(self, address: str, jobs: int | None = None, timeout: float = 30.0):
         if not isinstance(address, str) or not address.strip():
-            raise ValueError(f"cluster must be 'local' or a scheduler address such as tcp://10.0.0.5:8786, "
+            raise ValueError(f"cluster must be 'local' or a scheduler address such as tcp://scheduler.example:8786, "
                              f"got {address!r}")
         if jobs is not None and (isinstance(jobs, bool) or not isinstance(jobs, int) or jobs < 1):
             raise ValueError(f"jobs must be a whole number >= 1, got {jobs!r} (hint: the number of cores)")
