@@ -110,11 +110,17 @@ class QueueProgress(Progress):
     def __init__(self, queue):
         self.queue = queue
 
+    def _put(self, event: tuple) -> None:
+        try:
+            self.queue.put(event)
+        except (OSError, EOFError):  # the display is gone: the scan goes on without it
+            pass
+
     def batch(self, uri, rows, tokens, nbytes) -> None:
-        self.queue.put(("batch", uri, rows, tokens, nbytes))
+        self._put(("batch", uri, rows, tokens, nbytes))
 
     def shard_done(self, uri, rows, tokens) -> None:
-        self.queue.put(("shard_done", uri, rows, tokens))
+        self._put(("shard_done", uri, rows, tokens))
 
 
 @contextlib.contextmanager
@@ -127,7 +133,10 @@ def relay(target: Progress, context):
 
         def drain():
             while True:
-                event = queue.get()
+                try:
+                    event = queue.get()
+                except (OSError, EOFError):  # the manager is gone (the scan was interrupted): stop quietly
+                    return
                 if event is None:
                     return
                 try:
@@ -140,5 +149,8 @@ def relay(target: Progress, context):
         try:
             yield QueueProgress(queue)
         finally:
-            queue.put(None)
-            thread.join()
+            try:
+                queue.put(None)
+            except (OSError, EOFError):
+                pass
+            thread.join(timeout=10)

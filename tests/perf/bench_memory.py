@@ -4,7 +4,8 @@
 
 For each size, writes one tokenized Parquet shard of packed windows (as tests/perf/bench_scan.py does) of about that
 many megabytes, scans it with ``python -m lint scan SHARD --jobs 1`` (all rules unless ``--only`` is given) and
-reads the peak resident memory of that child process (``ru_maxrss`` from ``os.wait4``). The reader reads a batch
+reads the peak resident memory of that child process (``VmHWM`` from its ``/proc/self/status``, read as it exits:
+unlike ``ru_maxrss`` it does not carry over the peak of the process that started it). The reader reads a batch
 of about ``DEFAULT_BATCH_TOKENS`` tokens at a time, so both peaks should be about equal; what grows with the shard
 is only the per-window state of the duplicate rules (a few dozen bytes per window in memory, the MinHash
 signatures on disk). The shards are deleted afterwards unless ``--keep`` is given.
@@ -30,20 +31,29 @@ REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)
 BYTES_PER_TOKEN = 5.4
 
 
+#: Runs ``python -m lint`` with the arguments after ``-c``; at exit, prints the process's VmHWM (KiB) on stderr.
+CHILD = ("import atexit, runpy, sys\n"
+         "def peak():\n"
+         "    hwm = [l.split()[1] for l in open('/proc/self/status') if l.startswith('VmHWM')][0]\n"
+         "    sys.stderr.write(f'VmHWM {hwm}\\n')\n"
+         "atexit.register(peak)\n"
+         "sys.argv[0] = 'lint'\n"
+         "runpy.run_module('lint', run_name='__main__', alter_sys=True)\n")
+
+
 def peak_of_scan(path: str, only: str | None) -> tuple[int, float]:
     """Peak resident memory in bytes of the process scanning ``path``, and its wall-clock seconds."""
-    command = [sys.executable, "-m", "lint", "scan", path, "--jobs", "1", "--quiet", "--vocab-size", str(VOCAB)]
+    command = [sys.executable, "-c", CHILD, "scan", path, "--jobs", "1", "--quiet", "--vocab-size", str(VOCAB)]
     if only:
         command += ["--only", only]
     env = {**os.environ, "PYTHONPATH": REPO + os.pathsep + os.environ.get("PYTHONPATH", "")}
     started = time.perf_counter()
-    child = subprocess.Popen(command, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-    _, status, usage = os.wait4(child.pid, 0)
+    done = subprocess.run(command, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
     seconds = time.perf_counter() - started
-    child.returncode = os.waitstatus_to_exitcode(status)
-    if child.returncode not in (0, 1):
-        raise SystemExit(f"the scan failed (exit {child.returncode}): {child.stderr.read().decode()}")
-    return usage.ru_maxrss * 1024, seconds  # ru_maxrss is in KiB on Linux
+    peaks = [line.split()[1] for line in done.stderr.splitlines() if line.startswith("VmHWM ")]
+    if done.returncode not in (0, 1) or not peaks:
+        raise SystemExit(f"the scan failed (exit {done.returncode}): {done.stderr}")
+    return int(peaks[-1]) * 1024, seconds
 
 
 def main() -> None:
