@@ -295,6 +295,15 @@ def _to_numpy(values: pa.Array) -> np.ndarray:
     return values.to_numpy(zero_copy_only=False)
 
 
+def _decode_dictionaries(table):
+    """Dictionary-encoded columns (Parquet writes repetitive strings that way) as plain arrays, so that a
+    dictionary of strings is a text column like any other."""
+    if not any(pat.is_dictionary(f.type) for f in table.schema):
+        return table
+    columns = [c.dictionary_decode() if pat.is_dictionary(c.type) else c for c in table.columns]
+    return type(table).from_arrays(columns, names=table.schema.names)
+
+
 class Batch:
     """Consecutive records of one shard.
 
@@ -304,7 +313,7 @@ class Batch:
 
     def __init__(self, shard: Shard, table: pa.Table | pa.RecordBatch, rows: np.ndarray):
         self.shard = shard
-        self.table = table
+        self.table = _decode_dictionaries(table)
         self.rows = np.asarray(rows, dtype=np.int64)
         self.problems: list = []  # lint.sources.Problem objects met while reading these records
         self._flat: dict[str, Flat] = {}

@@ -280,7 +280,7 @@ def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], se
         "shards": len(results),
         "rows": sum(r.rows for r in results),
         "tokens": sum(r.tokens for r in results),
-        "bytes": sum(r.shard.length for r in results),
+        "bytes": sum(max(r.shard.length, 0) for r in results),
         "seconds": round(seconds, 3),
     }
     sampled = corpus_figures(results)

@@ -58,7 +58,7 @@ class TerminalProgress(Progress):
 
     def start(self, shards) -> None:
         self.total = len(shards)
-        self.length = {s.uri: int(s.length) for s in shards}
+        self.length = {s.uri: max(int(s.length), 0) for s in shards}
         self.advanced = dict.fromkeys(self.length, 0)
         self.done = 0
         self.rows = 0

@@ -160,13 +160,21 @@ def discover(paths: list[str]) -> list[Shard]:
             real = os.path.realpath(path)
             if fmt is None or real in found:
                 continue
-            found[real] = Shard(uri=uri, path=path, format=fmt[0], compression=fmt[1],
-                                length=os.path.getsize(path))
+            found[real] = Shard(uri=uri, path=path, format=fmt[0], compression=fmt[1], length=_size(path))
     if not found:
         where = ", ".join(paths)
         hint = f" ({', '.join(missing)} does not exist)" if missing else ""
         raise NoShardsFound(f"no shard found under {where}{hint}: expected {EXPECTED} files")
     return list(found.values())
+
+
+def _size(path: str) -> int:
+    """The file's size in bytes, or -1 (SARIF's "unknown") when it cannot even be looked at (a symbolic link
+    loop, a broken link): its reader then reports why it cannot be read."""
+    try:
+        return os.path.getsize(path)
+    except OSError:
+        return -1
 
 
 def _walk(folder: str) -> list[str]:

@@ -149,10 +149,12 @@ class SchemaMismatch(Rule):
         for kind, hits in state.hits.items():
             what, name = kind.split(":", 1) if ":" in kind else (kind, "")
             if what == "type":
+                wanted, fix = (("a string column of document text", "Write text as UTF-8 strings")
+                               if name == s.text_column else
+                               ("a list of integer token ids", "Write token columns as lists of integers"))
                 out.append(self.finding(state, kind, f"column {name!r} is {state.types[name]} in {hits.count:,} "
-                                        "rows, not a list of integer token ids; rules that need it skipped those "
-                                        "rows. Write token columns as lists of integers.", column=name,
-                                        observedType=state.types[name]))
+                                        f"rows, not {wanted}; rules that need it skipped those rows. {fix}.",
+                                        column=name, observedType=state.types[name]))
             elif what == "length":
                 out.append(self.finding(state, kind, f"{hits.count:,} rows where {name!r} and "
                                         f"{s.tokens_column!r} have different lengths (offset = where the shorter "
