@@ -46,6 +46,11 @@ def shuffle_here(results: Iterable, split: Callable, reduce: Callable, parts: in
     return kept(), partials
 
 
+#: Partitions of a local keyed shuffle. One partition is reduced at a time, so more partitions bound the peak
+#: memory of the reduce: scanning a 2 GB shard for duplicates peaked at 455 MiB with 1 and 337 MiB with 16
+#: (a 0.5 GB shard: 296 and 298 MiB).
+LOCAL_PARTITIONS = 16
+
 #: Modules the local pool's fork server loads before it forks workers.
 PRELOAD = ["lint.engine", "rules"]
 
@@ -57,13 +62,14 @@ class LocalExecutor:
     thread pools are running can deadlock.
     """
 
-    def __init__(self, jobs: int = 1, partitions: int = 1):
+    def __init__(self, jobs: int = 1, partitions: int = LOCAL_PARTITIONS):
         if isinstance(jobs, bool) or not isinstance(jobs, int) or jobs < 1:
             raise ValueError(f"jobs must be a whole number >= 1, got {jobs!r} (hint: the number of cores)")
         if isinstance(partitions, bool) or not isinstance(partitions, int) or partitions < 1:
-            raise ValueError(f"partitions must be a whole number >= 1, got {partitions!r} (hint: 1 in one process)")
+            raise ValueError(f"partitions must be a whole number >= 1, got {partitions!r} (hint: {LOCAL_PARTITIONS})")
         self.jobs = jobs
-        #: Partitions of a keyed shuffle; in one process one is cheapest (the results do not depend on it).
+        #: Partitions of a keyed shuffle (the results do not depend on it): each partition is reduced on its own,
+        #: so the reduce holds about 1/partitions of the keys at a time.
         self.partitions = partitions
 
     def map(self, fn: Callable, items: Iterable) -> Iterator:
