@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .batch import Flat, running_count, spans  # noqa: F401 - re-exported for rules
+from .batch import Flat
 
 #: Shifts the label rule measures.
 SHIFTS = (-1, 0, 1, 2, 3)
