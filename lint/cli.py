@@ -158,7 +158,7 @@ def explain(rule_id):
     click.echo("How to fix")
     click.echo(_fill(rule.help, "  "))
     needs = ", ".join(f"{k} ({v})" for k, v in rule.needs.items()) or "none"
-    click.echo(f"\nColumns needed: {needs}")
+    click.echo(f"\nColumns needed{' (any one of them)' if rule.needs_any else ''}: {needs}")
     if rule.requires:
         click.echo(f"Settings needed: {', '.join(rule.requires)}")
     if rule.options:

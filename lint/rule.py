@@ -95,6 +95,7 @@ class Rule:
     summary: str = ""
     help: str = ""
     needs: dict[str, str] = {}
+    needs_any: bool = False  # True: one of the ``needs`` columns suffices (the rule's own ``missing`` decides)
     requires: tuple[str, ...] = ()
     options: dict[str, object] = {}
     outputs: tuple[str, ...] = ()

@@ -441,6 +441,7 @@ class _DuplicateRule(Rule):
     """Shared by both rules: the windows of a batch and the per-shard arrays of them."""
 
     needs = {"tokens_column": "int-list", "text_column": "text"}  # either of them: see missing()
+    needs_any = True
     outputs = (DROP_LIST,)
 
     def missing(self, batch, settings):

@@ -585,6 +585,7 @@ class EmptyDocument(Rule):
             "no real tokens before packing; a zero-length packed document usually means empty strings reached the "
             "tokenizer (which then emits a bare separator): filter them upstream.")
     needs = {"text_column": "text", "tokens_column": "int-list"}  # either of them: see missing()
+    needs_any = True
 
     def missing(self, batch, settings):
         """Either column is enough: a text shard gets the text checks, a tokenized shard the token checks."""

@@ -316,3 +316,10 @@ def test_python_dash_m_lint_in_a_real_process(tmp_path):
     assert usage.returncode == 2 and usage.stdout == ""
     assert usage.stderr == ("Error: no shard found under nowhere (nowhere does not exist): expected .jsonl, "
                             ".jsonl.gz, .jsonl.zst, .parquet, .arrow files\n")
+
+
+def test_explain_says_when_any_one_of_the_columns_suffices():
+    out = CliRunner().invoke(main, ["explain", "near-duplicate"]).output
+    assert "Columns needed (any one of them): tokens_column (int-list), text_column (text)" in out
+    out = CliRunner().invoke(main, ["explain", "label-alignment"]).output
+    assert "Columns needed: tokens_column (int-list), labels_column (int-list)" in out
