@@ -11,6 +11,7 @@ import contextlib
 import copy
 import dataclasses
 import functools
+import logging
 import os
 import time
 from dataclasses import dataclass, field
@@ -21,9 +22,13 @@ from .executors import LocalExecutor, shuffle_here
 from .progress import Progress
 from .sampling import Sample, corpus_figures, finding_estimate
 from .findings import Finding, Level
-from .rule import Rule, ShardState
+from .rule import Rule, ShardState, Unmergeable
 from .settings import Settings, SettingsError, infer_from_batch
 from .sources import absolute, discover, open_shard
+from . import split
+from .split import Part, workers as split_workers
+
+log = logging.getLogger(__name__)
 
 
 @dataclass
@@ -48,6 +53,8 @@ class ShardResult:
     seconds: float = 0.0
     #: How the shard was sampled (:meth:`lint.sampling.ShardSample.summary`), or None for a full scan.
     sample: dict | None = None
+    #: For one part of a split shard, what joining the parts needs (see :func:`merge_parts`); None otherwise.
+    part: dict | None = None
 
 
 @dataclass
@@ -91,14 +98,16 @@ def select_rules(settings: Settings, available: dict[str, type[Rule]]) -> list[R
     return rules
 
 
-def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=None, sample=None) -> ShardResult:
+def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=None, sample=None,
+               part: Part | None = None) -> ShardResult:
     """Read one shard and feed its batches to the rules; never raises for bad data.
 
     ``progress`` (a :class:`lint.progress.Progress`, or None) hears of every batch and of the end of the shard;
-    ``sample`` (a :class:`lint.sampling.Sample`, or None) makes the reader scan only the units it keeps.
+    ``sample`` (a :class:`lint.sampling.Sample`, or None) makes the reader scan only the units it keeps; ``part``
+    (a :class:`lint.split.Part`) scans only that part of the shard, with the facts the part carries.
     """
     started = time.perf_counter()
-    facts = settings.for_path(shard.path)
+    facts = settings.for_path(shard.path) if part is None else part.facts
     sampling = sample.for_shard(shard.uri, shard.format) if sample is not None and not sample.full else None
     states: dict[str, ShardState] = {}
     skipped: dict[str, str] = {}
@@ -124,8 +133,11 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=Non
             states[rule.id].fed = True
 
     pending = []  # record-less batches (read problems) seen before the first records
-    with open_shard(shard, tokens_column=facts.tokens_column, sample=sampling) as reader:
-        told = (0, 0, 0)  # rows, tokens and bytes consumed already reported to ``progress``
+    if part is not None:  # the facts were inferred from the shard's first records before the parts were read
+        states = {rule.id: rule.begin(shard, facts) for rule in rules}
+    with open_shard(shard, tokens_column=facts.tokens_column, sample=sampling, part=part) as reader:
+        # rows, tokens and bytes consumed already reported to ``progress``
+        told = (0, 0, part.lo if part is not None and shard.format == "jsonl" else 0)
         for batch in reader:
             if not states:
                 if not len(batch):
@@ -145,6 +157,10 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=Non
         for waiting in pending:
             feed(waiting)
     rows, tokens = counted["rows"], counted["tokens"]
+    joining = None
+    if part is not None:
+        joining = {"skipped": dict(skipped), "stopped": reader.stopped,
+                   "fed": {rule_id for rule_id, state in states.items() if getattr(state, "fed", False)}}
     final = {}
     for rule in rules:
         state = states.get(rule.id)
@@ -156,10 +172,49 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=Non
             final[rule.id] = rule.end(state)
         except Exception as exc:  # noqa: BLE001
             crashed[rule.id] = f"{type(exc).__name__}: {exc}"
-    if progress is not None:
+    if progress is not None and part is None:
         progress.shard_done(shard.uri, rows, tokens)
     return ShardResult(shard, final, skipped, crashed, facts, rows, tokens, time.perf_counter() - started,
-                       sampling.summary() if sampling is not None else None)
+                       sampling.summary() if sampling is not None else None, joining)
+
+
+def merge_parts(results: list[ShardResult], rules: list[Rule]) -> ShardResult:
+    """One shard's result from the results of its parts, in order: what a scan of the whole shard gives.
+
+    Each rule's states are joined pairwise with its ``merge``, left to right.  A part whose reader stopped at a
+    failure ends the shard there, as it would in one scan: the later parts are left out."""
+    kept = []
+    for result in results:
+        kept.append(result)
+        if result.part["stopped"]:
+            break
+    crashed: dict[str, str] = {}
+    reasons: dict[str, str] = {}
+    fed: set[str] = set()
+    for result in kept:
+        for rule_id, why in result.crashed.items():
+            crashed.setdefault(rule_id, why)
+        for rule_id, why in result.part["skipped"].items():
+            reasons.setdefault(rule_id, why)
+        fed |= result.part["fed"]
+    states = {}
+    for rule in rules:
+        if rule.id in crashed:
+            continue
+        try:
+            state = kept[0].states[rule.id]
+            for result in kept[1:]:
+                state = rule.merge(state, result.states[rule.id])
+        except Unmergeable:
+            raise
+        except Exception as exc:  # noqa: BLE001 - a rule bug must not lose the other rules' findings
+            crashed[rule.id] = f"{type(exc).__name__}: {exc}"
+            continue
+        states[rule.id] = state
+    skipped = {rule_id: why for rule_id, why in reasons.items() if rule_id in crashed or rule_id not in fed}
+    return dataclasses.replace(kept[0], states=states, skipped=skipped, crashed=crashed,
+                               rows=sum(r.rows for r in kept), tokens=sum(r.tokens for r in kept),
+                               seconds=sum(r.seconds for r in results), part=None)
 
 
 def _scan_args(args):
@@ -184,18 +239,54 @@ def run(shards: list[Shard], settings: Settings, rules: list[Rule], jobs: int = 
     try:
         with relay(progress) if relay is not None else contextlib.nullcontext() as reporter:
             moved = getattr(executor, "absolute_paths", False)  # the work runs in another working directory
-            items = [(*(_elsewhere(shard, settings) if moved else (shard, settings)), rules, reporter, sample)
-                     for shard in shards]
+            items, groups = [], []
+            for shard in shards:
+                where = _elsewhere(shard, settings) if moved else (shard, settings)
+                parts = _parts(*where, rules, executor, sample)
+                groups.append(len(parts or [None]))
+                items += [(*where, rules, reporter, sample, part) for part in parts or [None]]
             scanned, partials = _map(executor, items, [rule for rule in rules if rule.keyed])
-            for result in scanned:
+            scanned = iter(scanned)
+            for count in groups:
+                if count == 1:
+                    result = next(scanned)
+                else:
+                    pieces = [next(scanned) for _ in range(count)]
+                    try:
+                        result = merge_parts(pieces, rules)
+                    except Unmergeable as exc:  # a rule cannot join these parts exactly: scan the shard whole
+                        log.debug("%s is scanned again whole: %s", pieces[0].shard.uri, exc)
+                        result = dataclasses.replace(pieces[0], rows=0)
+                    if not result.rows:  # no records in any part, or parts that cannot be joined: scan it whole
+                        result = scan_shard(result.shard, _settings_of(items, result), rules, None, sample)
                 results.append(result)
-                if progress is not None and reporter is None:
+                if progress is not None and (reporter is None or count > 1):
                     progress.shard_done(result.shard.uri, result.rows, result.tokens)
             reduced = partials()
     finally:
         if progress is not None:
             progress.close()
     return finish(results, settings, rules, time.perf_counter() - started, reduced)
+
+
+def _parts(shard: Shard, settings: Settings, rules: list[Rule], executor, sample) -> list[Part] | None:
+    """The parts to scan a large shard in with the executor's processes (see :mod:`lint.split`), or None."""
+    processes = split_workers(executor)
+    if processes < 2 or (sample is not None and not sample.full) or shard.length <= split.SPLIT_BYTES:
+        return None
+    if not all(rule.splittable and not rule.keyed for rule in rules):
+        held = ", ".join(rule.id for rule in rules if not rule.splittable or rule.keyed)
+        log.debug("%s is scanned whole: rule(s) %s cannot join parts of a shard", shard.uri, held)
+        return None
+    parts = split.plan(shard, settings, processes)
+    if parts is not None:
+        log.debug("%s is scanned in %s", shard.uri, split.describe(parts))
+    return parts
+
+
+def _settings_of(items: list, result: ShardResult) -> Settings:
+    """The settings the items of ``result``'s shard were scanned with."""
+    return next(item[1] for item in items if item[0] is result.shard or item[0] == result.shard)
 
 
 def _elsewhere(shard: Shard, settings: Settings) -> tuple[Shard, Settings]:

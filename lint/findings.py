@@ -64,6 +64,17 @@ class Hits:
         self._offsets.append(offsets[:room].copy())
         self._kept += min(room, rows.size)
 
+    def extend(self, later: "Hits") -> None:
+        """Append the locations of ``later``, which come after these in the shard (the next part of a split
+        scan): the true counts add up, and the stored locations are these, then ``later``'s, up to the cap."""
+        room = self.cap - self._kept
+        if room > 0 and later._kept:
+            rows, offsets = later.rows[:room], later.offsets[:room]
+            self._rows.append(rows)
+            self._offsets.append(offsets)
+            self._kept += int(rows.size)
+        self.count += later.count
+
     @property
     def rows(self) -> np.ndarray:
         return np.concatenate(self._rows) if self._rows else np.zeros(0, dtype=np.int64)

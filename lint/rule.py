@@ -19,6 +19,7 @@ on the workers; only the partials travel).  The findings must not depend on the 
 """
 from __future__ import annotations
 
+import copy
 from collections import defaultdict
 
 import numpy as np
@@ -31,6 +32,11 @@ COLUMN_KINDS = {
     "int-list": is_integer_list,
     "text": is_text,
 }
+
+
+class Unmergeable(Exception):
+    """Raised by ``Rule.merge`` when the states of two parts cannot say exactly what one scan of both would have
+    gathered (e.g. a bounded list that filled up differently); the engine then scans the shard whole."""
 
 
 class ShardState:
@@ -102,6 +108,10 @@ class Rule:
     #: Whether ``corpus`` takes the partials of a keyed reduce (``partition`` / ``reduce_partition``, see the
     #: module notes); the engine then calls ``corpus(states, partials)``.
     keyed: bool = False
+    #: Whether a large shard may be scanned in parts (contiguous row groups or record batches, each read by its own
+    #: process) whose states ``merge`` joins into the state a whole-shard scan gives.  The engine splits a shard
+    #: only when every selected rule sets it.
+    splittable: bool = False
 
     def __init__(self, **options):
         unknown = set(options) - set(self.options)
@@ -150,6 +160,27 @@ class Rule:
         ``corpus`` also takes ``partials`` (one per partition), and computes them in this process with
         :meth:`keyed_reduce` when called without them."""
         return [], {}
+
+    def merge(self, first: ShardState, second: ShardState) -> ShardState:
+        """The state of one shard from the states of two consecutive parts of it (``second``'s rows follow
+        ``first``'s), both after ``end``; the result must equal what a scan of both parts in one go gives.
+
+        The default suits a state made of counters and hit lists only: the counters add up and the hits of each
+        kind are concatenated in order, up to the cap (kinds in the order they were first met).  A rule with other
+        fields, or with anything carried from one row to the next, overrides it (and may extend this one)."""
+        merged = copy.copy(first)
+        merged.stats = defaultdict(int, first.stats)
+        for key, value in second.stats.items():
+            merged.stats[key] += value
+        merged.hits = {}
+        for kind, hits in first.hits.items():
+            merged.hits[kind] = copy.deepcopy(hits)
+        for kind, hits in second.hits.items():
+            if kind in merged.hits:
+                merged.hits[kind].extend(hits)
+            else:
+                merged.hits[kind] = copy.deepcopy(hits)
+        return merged
 
     # -- the keyed reduce (only for rules that set ``keyed``) -------------------------------------------------
     def partition(self, state: ShardState, parts: int) -> tuple[ShardState, list]:

@@ -185,13 +185,16 @@ def _walk(folder: str) -> list[str]:
     return out
 
 
-def open_shard(shard: Shard, batch_tokens: int = DEFAULT_BATCH_TOKENS, tokens_column: str = "input_ids",
-               batch_bytes: int = DEFAULT_BATCH_BYTES, sample=None) -> "ShardReader":
+def open_shard(shard: Shard, batch_tokens: int | None = None, tokens_column: str = "input_ids",
+               batch_bytes: int | None = None, sample=None, part=None) -> "ShardReader":
     """The reader for a shard's format, as a context manager yielding batches.
 
     ``sample`` (a :class:`lint.sampling.ShardSample`) makes the reader skip the storage units it does not keep;
-    row indices stay those of the whole shard.
+    ``part`` (a :class:`lint.split.Part`) makes it read only that part of the shard.  Row indices stay those of
+    the whole shard.  The read sizes default to :data:`DEFAULT_BATCH_TOKENS` and :data:`DEFAULT_BATCH_BYTES`.
     """
+    batch_tokens = DEFAULT_BATCH_TOKENS if batch_tokens is None else batch_tokens
+    batch_bytes = DEFAULT_BATCH_BYTES if batch_bytes is None else batch_bytes
     if shard.format == "parquet":
         reader = ParquetReader(shard, batch_tokens, tokens_column)
     elif shard.format == "arrow":
@@ -201,6 +204,7 @@ def open_shard(shard: Shard, batch_tokens: int = DEFAULT_BATCH_TOKENS, tokens_co
         # bytes holds at most batch_tokens ids: JSON Lines keeps to the token budget too.
         reader = JsonLinesReader(shard, min(batch_bytes, 2 * batch_tokens))
     reader.sample = sample
+    reader.part = part
     return reader
 
 
@@ -212,7 +216,10 @@ class ShardReader:
     """
 
     sample = None
+    part = None
     consumed = 0
+    #: Whether reading stopped early at a failure (an ``unreadable`` problem ends the batches).
+    stopped = False
 
     def __init__(self, shard: Shard):
         self.shard = shard
@@ -240,6 +247,7 @@ class ShardReader:
         try:
             yield from self._batches()
         except Exception as exc:  # noqa: BLE001 - any failure to read becomes a finding, never a traceback
+            self.stopped = True
             yield self._problem_batch(Problem("unreadable", self._row, _describe(exc)))
 
     _row = 0
@@ -309,6 +317,9 @@ class ParquetReader(ShardReader):
         for group in range(meta.num_row_groups):
             group_meta = meta.row_group(group)
             group_rows = group_meta.num_rows
+            if self.part is not None and not self.part.lo <= group < self.part.hi:
+                start += group_rows  # another part's row group
+                continue
             # Bytes of the row group as stored: the compressed sizes of its column chunks (file metadata).
             group_bytes = sum(group_meta.column(i).total_compressed_size for i in range(group_meta.num_columns))
             counted = self.consumed
@@ -346,11 +357,15 @@ class ArrowReader(ShardReader):
         source.seek(0)
         if magic == b"ARROW1":
             reader = pa.ipc.open_file(source)
-            stored = (reader.get_batch(i) for i in range(reader.num_record_batches))
+            units = range(reader.num_record_batches)
+            if self.part is not None:
+                units = range(self.part.lo, min(self.part.hi, reader.num_record_batches))
+                self._row = self.part.first_row
+            stored = (reader.get_batch(i) for i in units)
         else:
             stored = pa.ipc.open_stream(source)
         seen_any = False
-        for index, rb in enumerate(stored):
+        for index, rb in enumerate(stored, start=self.part.lo if self.part is not None else 0):
             seen_any = True
             # Bytes of the stored batch: its buffers (the file is memory-mapped), shared out over its pieces by rows.
             counted, first = self.consumed, self._row
@@ -409,11 +424,25 @@ class JsonLinesReader(ShardReader):
         carry = b""
         line_no = 0
         any_record = False
-        first = True
+        pos, stop = 0, None
+        if self.part is not None:  # bytes [lo, hi) of a plain file, starting at line first_row
+            pos, stop, line_no = self.part.lo, self.part.hi, self.part.first_row
+            self._row = line_no
+            stream.seek(pos)
+            self.consumed = pos
+        first = pos == 0
         while True:
-            chunk = stream.read(self.batch_bytes)
+            # Blocks end at multiples of batch_bytes from the start of the file, also in a part that starts
+            # elsewhere: a part's batches are then those of a whole-file read.
+            size = self.batch_bytes - pos % self.batch_bytes
+            if stop is not None:
+                size = min(size, stop - pos)
+                if size <= 0:
+                    break
+            chunk = stream.read(size)
             if not chunk:
                 break
+            pos += len(chunk)
             if first and chunk.startswith(b"\xef\xbb\xbf"):  # a UTF-8 byte-order mark is not part of the record
                 chunk = chunk[3:]
             first = False
@@ -434,7 +463,7 @@ class JsonLinesReader(ShardReader):
             for batch in self._blocks([carry], line_no, last_cut_off=True):
                 any_record |= len(batch) > 0
                 yield batch
-        if not any_record and not (self.sample is not None and self.sample.skipped_any):
+        if not any_record and not (self.sample is not None and self.sample.skipped_any) and self.part is None:
             yield self._problem_batch(Problem("empty", 0, "the file holds no JSON records"))
 
     def _blocks(self, lines: list[bytes], first_line: int, last_cut_off: bool) -> Iterator[Batch]:

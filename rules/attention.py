@@ -38,6 +38,7 @@ class DocumentAttention(Rule):
             "document; or, if cross-document attention is what you want, accept it knowingly and skip this rule "
             "(--skip document-attention).")
     needs = {"tokens_column": "int-list"}
+    splittable = True  # counters and hits of single rows only: the default merge
 
     def missing(self, batch, settings):
         if settings.separator == "both":

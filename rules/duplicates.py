@@ -497,8 +497,17 @@ class ExactDuplicate(_DuplicateRule):
         super().__init__(**options)
         self._max_clusters()
 
+    splittable = True
+
     def feed(self, state, batch):
         self._keep(state, batch_windows(batch, state.settings))
+
+    def merge(self, first, second):
+        """The windows of both parts, ``first``'s then ``second``'s (one window per row: nothing spans a cut)."""
+        merged = super().merge(first, second)
+        for name in ("rows", "lengths", "domains", "content"):
+            setattr(merged, name, np.concatenate([getattr(first, name), getattr(second, name)]))
+        return merged
 
     def corpus(self, states):
         scan = ScanWindows(states)

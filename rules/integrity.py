@@ -35,6 +35,13 @@ class _ProblemRule(Rule):
     def feed(self, state, batch):
         _problems(state, batch, self.kinds)
 
+    splittable = True
+
+    def merge(self, first, second):
+        merged = super().merge(first, second)
+        merged.details = {**second.details, **first.details}  # the first detail met of each kind
+        return merged
+
 
 class UnreadableRecord(_ProblemRule):
     """A record that cannot be parsed is a record the pipeline either crashes on or silently drops. Checks each
@@ -73,6 +80,13 @@ class UnreadableShard(Rule):
     def feed(self, state, batch):
         state.problems += [p for p in batch.problems if p.kind in ("unreadable", "empty")]
 
+    splittable = True
+
+    def merge(self, first, second):
+        merged = super().merge(first, second)
+        merged.problems = first.problems + second.problems
+        return merged
+
     def report(self, state):
         out = []
         for p in state.problems:
@@ -101,6 +115,14 @@ class SchemaMismatch(Rule):
             "column has one entry per token.")
 
     PARALLEL = ("labels_column", "mask_column", "positions_column")
+    splittable = True
+
+    def merge(self, first, second):
+        merged = super().merge(first, second)
+        merged.columns = first.columns | second.columns
+        merged.types = {**second.types, **first.types}  # the first type met of each column
+        merged.details = {**second.details, **first.details}
+        return merged
 
     def begin(self, shard, settings):
         state = super().begin(shard, settings)

@@ -8,11 +8,14 @@ fails and the loss curve looks almost normal.
 """
 from __future__ import annotations
 
+import copy
+from collections import defaultdict
+
 import numpy as np
 
 from lint.batch import Batch, Flat
 from lint.findings import Finding, Level
-from lint.rule import Rule, absolute_rows, consistent, pct, share
+from lint.rule import Rule, Unmergeable, absolute_rows, consistent, pct, share
 from lint.shift import PREFERENCE, SHIFTS, best_shift, first_mismatch, shift_matches
 
 from .separators import inner_starts, padding_free, padding_positions, position_restarts, token_positions
@@ -171,6 +174,8 @@ class LabelAlignment(Rule):
         state.tail = None  # (row, offset, last label, first token) of the last row fed, when its last label is
         #                    trained: whether the next record continues it is known only with the next batch
         state.basis = None
+        state.head = None  # first token of the first row that met the check of last labels: a previous part's
+        #                    tail is continued by it or not (see merge)
         return state
 
     def feed(self, state, batch):
@@ -306,6 +311,8 @@ class LabelAlignment(Rule):
         last = tokens.offsets[rows + 1] - 1
         last_label = labels[last]
         first_token = tokens.values[tokens.offsets[rows]]
+        if state.head is None:
+            state.head = int(first_token[0])
         if state.tail is not None:  # the last row of the previous batch, continued or not by this one
             row, offset, label, own_first = state.tail
             if label == first_token[0]:
@@ -328,8 +335,10 @@ class LabelAlignment(Rule):
                     wraps=int((bad & (last_label == first_token)).sum()))
         state.hit("last-label", absolute_rows(batch, rows[bad]), tokens.lengths[rows[bad]] - 1)
 
-    def end(self, state):
-        if state.tail is not None:
+    @staticmethod
+    def _settle(state) -> None:
+        """The last row of the shard, when its last label is trained: nothing follows it in the shard."""
+        if getattr(state, "tail", None) is not None:
             row, offset, label, own_first = state.tail
             if state.stats["continued"]:
                 state.count(continued=1)  # the shard continues its stream: presumed to go on in the next shard
@@ -337,10 +346,44 @@ class LabelAlignment(Rule):
                 state.hit("last-label", [row], [offset])
                 state.count(wraps=int(label == own_first))
             state.tail = None
-        return state
+
+    # The last row's tail is settled when the shard is reported, not in ``end``: a part of a split shard does not
+    # know yet whether the next part continues it.
+    splittable = True
+
+    def merge(self, first, second):
+        """Counters and hits as usual, after ``first``'s last row is checked against ``second``'s first row as one
+        scan checks it; the first label values met, up to VALUES_KEPT (a state that cannot say exactly which
+        values one scan would have kept raises :class:`lint.rule.Unmergeable`)."""
+        head = copy.copy(first)
+        head.stats = defaultdict(int, first.stats)
+        head.hits = {kind: copy.deepcopy(hits) for kind, hits in first.hits.items()}
+        if first.tail is not None and second.head is not None:
+            row, offset, label, own_first = first.tail
+            if label == second.head:
+                head.count(continued=1)
+            else:
+                head.hit("last-label", [row], [offset])
+                head.count(wraps=int(label == own_first))
+            head.tail = None
+        merged = super().merge(head, second)
+        merged.tail = second.tail if second.head is not None else head.tail
+        merged.head = first.head if first.head is not None else second.head
+        values = dict(first.negative_values)
+        if len(second.negative_values) >= VALUES_KEPT and set(values) - set(second.negative_values):
+            raise Unmergeable("more distinct negative label values than are kept")
+        for value, count in second.negative_values.items():
+            if value in values or len(values) < VALUES_KEPT:
+                values[value] = values.get(value, 0) + count
+        merged.negative_values = values
+        highs = [x for x in (first.max_label, second.max_label) if x is not None]
+        merged.max_label = max(highs) if highs else None
+        merged.basis = first.basis or second.basis
+        return merged
 
     # -- findings -----------------------------------------------------------------------------------------
     def report(self, state):
+        self._settle(state)
         s, st, expected = state.settings, state.stats, state.expected
         convention = self._convention(state)
         measured = st["measured"]

@@ -131,6 +131,13 @@ class PaddingLoss(Rule):
                       "told from real tokens (give --pad-id)")
         return reason
 
+    splittable = True
+
+    def merge(self, first, second):
+        merged = super().merge(first, second)
+        merged.sources = first.sources | second.sources
+        return merged
+
     def begin(self, shard, settings):
         state = super().begin(shard, settings)
         state.sources = set()  # how padding was told: "attention_mask", "pad_id"

@@ -193,6 +193,7 @@ class MissingSeparator(Rule):
             "with fewer separators than one per this many tokens is reported as glued (heuristic).")
     needs = {"tokens_column": "int-list"}
     options = {"tokens_per_separator": TOKENS_PER_SEPARATOR}
+    splittable = True  # counters and hits within rows only: the default merge
 
     def __init__(self, **options):
         super().__init__(**options)

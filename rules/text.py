@@ -237,6 +237,16 @@ class SpecialTokenText(Rule):
         state.per_instance = []  # occurrences in each listed instance's document
         return state
 
+    splittable = True
+
+    def merge(self, first, second):
+        merged = super().merge(first, second)
+        merged.per_string = Counter(first.per_string)
+        merged.per_string.update(second.per_string)  # strings in the order first met, as in one scan
+        merged.per_instance = list(first.per_instance)
+        _keep(merged.per_instance, second.per_instance, first.cap)
+        return merged
+
     def feed(self, state, batch):
         text = document_text(batch, state.settings)
         state.count(documents=text.rows - text.nulls)
@@ -431,6 +441,19 @@ class EncodingError(Rule):
         state.code_points = np.zeros(0xA0, dtype=np.int64)
         return state
 
+    splittable = True
+
+    def merge(self, first, second):
+        merged = super().merge(first, second)
+        merged.per_instance = {}
+        for kind, kept in first.per_instance.items():
+            merged.per_instance[kind] = list(kept)
+            _keep(merged.per_instance[kind], second.per_instance.get(kind, ()), first.cap)
+        merged.byte_offsets = list(first.byte_offsets)
+        _keep(merged.byte_offsets, second.byte_offsets, first.cap)
+        merged.code_points = first.code_points + second.code_points
+        return merged
+
     def feed(self, state, batch):
         text = document_text(batch, state.settings) if batch.has(state.settings.text_column) and \
             is_text(batch.type_of(state.settings.text_column)) else None
@@ -599,6 +622,14 @@ class EmptyDocument(Rule):
         state = super().begin(shard, settings)
         state.padding_from = None
         return state
+
+    splittable = True
+
+    def merge(self, first, second):
+        merged = super().merge(first, second)
+        # each batch sets it, so the last part that set it decides, as in one scan
+        merged.padding_from = second.padding_from if second.padding_from is not None else first.padding_from
+        return merged
 
     def feed(self, state, batch):
         s = state.settings

@@ -36,6 +36,7 @@ class TokenRange(Rule):
             "token ids in a type that holds vocab_size - 1 (int32 or uint32 for vocabularies over 65,536); wrapped "
             "ids cannot be recovered, so re-tokenize the affected shards.")
     needs = {"tokens_column": "int-list"}
+    splittable = True
 
     def begin(self, shard, settings):
         state = super().begin(shard, settings)
@@ -69,6 +70,17 @@ class TokenRange(Rule):
         if vocab is not None and hi >= vocab:
             where = np.flatnonzero(values >= values.dtype.type(vocab))
             self._record(state, batch, flat, where, "above-vocab")
+
+    def merge(self, first, second):
+        """Counters and hits as usual; the storage type of the first batch; the smallest and largest ids, the
+        largest located at its first occurrence (in ``first`` on a tie)."""
+        merged = super().merge(first, second)
+        merged.storage = first.storage if first.storage is not None else second.storage
+        lows = [x for x in (first.min_id, second.min_id) if x is not None]
+        merged.min_id = min(lows) if lows else None
+        if second.max_id is not None and (first.max_id is None or second.max_id > first.max_id):
+            merged.max_id, merged.max_at = second.max_id, second.max_at
+        return merged
 
     @staticmethod
     def _record(state, batch, flat, where, kind):

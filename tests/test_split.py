@@ -1,0 +1,278 @@
+"""Large shards scanned in parts (lint/split.py): the report must be the one a whole-shard scan gives.
+
+Every check here compares a split scan with the plain ``jobs=1`` scan of the same files, report against report
+(the JSON report, apart from the run time), so the expectation is computed by the code path that has its own tests
+against outside references; the tests also check that the shard really was cut, and where.
+"""
+from __future__ import annotations
+
+import json
+import logging
+import random
+import re
+
+import numpy as np
+import pyarrow.parquet as pq
+import pytest
+
+import lint.sources
+import lint.split as split
+from lint import Settings
+from lint.engine import run, select_rules
+from lint.executors import LocalExecutor
+from lint.report.json import to_dict
+from lint.sources import discover
+from rules import registry
+from tests.shards import write
+
+VOCAB = 500
+EOS = 2
+PAD = 0
+
+
+def splittable_ids() -> tuple[str, ...]:
+    return tuple(rule_id for rule_id, cls in registry().items() if cls.splittable)
+
+
+class SerialPair:
+    """An executor that says it has two processes but runs the work here, one item after the other: the parts of a
+    split shard are then read in this process, where the tests' smaller read sizes apply."""
+
+    jobs = 2
+
+    def map(self, fn, items):
+        return map(fn, list(items))
+
+
+@pytest.fixture
+def cut(monkeypatch):
+    """Split every shard (threshold 0), read small batches and blocks, and record the parts of each split."""
+    monkeypatch.setattr(split, "SPLIT_BYTES", 0)
+    monkeypatch.setattr(lint.sources, "DEFAULT_BATCH_TOKENS", 300)
+    monkeypatch.setattr(lint.sources, "DEFAULT_BATCH_BYTES", 700)
+    planned = []
+    plan = split.plan
+
+    def recording(*args, **kwargs):
+        parts = plan(*args, **kwargs)
+        planned.append(parts)
+        return parts
+
+    monkeypatch.setattr(split, "plan", recording)
+    return planned
+
+
+def report(paths, executor=None, jobs=1, **settings) -> dict:
+    settings.setdefault("only", splittable_ids())
+    s = Settings(**settings)
+    out = to_dict(run(discover([str(p) for p in paths]), s, select_rules(s, registry()), jobs=jobs,
+                      executor=executor))
+    out["metrics"].pop("seconds")
+    return json.loads(json.dumps(out, default=str))
+
+
+def windows(rng: random.Random, rows: int, seq_len: int = 24) -> dict:
+    """Packed windows of random documents ending in eos, with shifted labels, an attention mask and position ids;
+    the last row is padded."""
+    stream, positions = [], []
+    while len(stream) < rows * seq_len:
+        doc = [rng.randrange(3, VOCAB) for _ in range(rng.randrange(1, 40))] + [EOS]
+        stream += doc
+        positions += list(range(len(doc)))
+    ids = [stream[i * seq_len:(i + 1) * seq_len] for i in range(rows)]
+    pos = [positions[i * seq_len:(i + 1) * seq_len] for i in range(rows)]
+    ids[-1][-5:] = [PAD] * 5
+    pos[-1][-5:] = [0] * 5
+    mask = [[1] * seq_len for _ in range(rows)]
+    mask[-1][-5:] = [0] * 5
+    # the last label of a row: ignored, the next row's first token (a stream continued), or a wrong token
+    labels = [row[1:] + [rng.choice([-100, ids[i + 1][0] if i + 1 < rows else -100, 9])]
+              for i, row in enumerate(ids)]
+    labels[-1][-6:] = [-100] * 6
+    return {"input_ids": ids, "labels": labels, "attention_mask": mask, "position_ids": pos}
+
+
+def plant(rng: random.Random, cols: dict, near: list[int]) -> None:
+    """Defects in and around the rows ``near`` (the rows next to the cuts): a missing eos at a document boundary,
+    a doubled eos running over the row start, ids out of range, a labels column of the wrong length, an empty row,
+    a padded row whose last document has no eos."""
+    ids, labels, pos = cols["input_ids"], cols["labels"], cols["position_ids"]
+    rows = len(ids)
+    for centre in near:
+        for row in {max(0, min(rows - 2, centre + d)) for d in (-1, 0, 1)}:
+            what = rng.randrange(7)
+            if len(ids[row]) < 2 or len(ids[row + 1]) < 2:
+                continue  # emptied already
+            if what == 0:  # missing eos before a position restart
+                starts = [t for t in range(1, len(ids[row])) if pos[row][t] == 0]
+                if starts:
+                    ids[row][starts[0] - 1] = 7
+            elif what == 1:  # doubled eos: the last token of a row and the first of the next are eos
+                ids[row][-1] = EOS
+                ids[row + 1][0] = EOS
+                ids[row][-2] = EOS
+            elif what == 2:
+                ids[row][rng.randrange(len(ids[row]))] = VOCAB + rng.randrange(50)
+            elif what == 3:
+                ids[row][rng.randrange(len(ids[row]))] = -rng.randrange(1, 4)
+            elif what == 4:
+                labels[row] = labels[row][:-3]
+            elif what == 5:
+                ids[row], labels[row] = [], []
+                cols["attention_mask"][row], pos[row] = [], []
+            else:  # labels shifted by two in this row
+                labels[row] = ids[row][2:] + [-100, -100]
+
+
+def boundaries(sizes: list[int]) -> list[int]:
+    out, total = [], 0
+    for n in sizes[:-1]:
+        total += n
+        out.append(total)
+    return out
+
+
+@pytest.mark.parametrize("seed", range(12))
+def test_split_parquet_and_arrow_match_whole_scan(tmp_path, cut, seed):
+    rng = random.Random(seed)
+    rows, group = rng.randrange(60, 160), rng.randrange(8, 30)
+    cols = windows(rng, rows)
+    cuts = boundaries([group] * (rows // group + 1))[:6]
+    plant(rng, cols, cuts)
+    for row in (c + 1 for c in cuts if c + 1 < rows - 1):  # exact copies of row 1 after each unit boundary
+        for values in cols.values():
+            values[row] = list(values[1])
+    fmt = ["parquet", "arrow"][seed % 2]
+    path = write(tmp_path / f"shard.{fmt}", cols, row_group_size=group)
+    cap = [10_000, 3][seed % 3 == 0]
+    whole = report([path], vocab_size=VOCAB, instance_cap=cap)
+    parted = report([path], SerialPair(), vocab_size=VOCAB, instance_cap=cap)
+    assert parted == whole
+    # the shard was cut into two parts at a unit boundary
+    assert len(cut) == 1 and cut[0] is not None and len(cut[0]) == 2
+    assert cut[0][1].first_row % group == 0 and 0 < cut[0][1].first_row < rows
+
+
+def test_parquet_part_rows_follow_row_groups(tmp_path, cut):
+    rng = random.Random(5)
+    path = write(tmp_path / "a.parquet", windows(rng, 100), row_group_size=10)
+    report([path], SerialPair(), vocab_size=VOCAB)
+    parts = cut[0]
+    assert [(p.lo, p.hi, p.first_row) for p in parts] == [(0, 5, 0), (5, 10, 50)]
+    # the row groups as pyarrow reads them from the file metadata (reference library)
+    meta = pq.ParquetFile(path).metadata
+    assert sum(meta.row_group(g).num_rows for g in range(parts[1].lo)) == parts[1].first_row
+
+
+def jsonl_lines(rng: random.Random, rows: int) -> list[bytes]:
+    """Lines of tokenized records with text, some blank, some not JSON, one with a mistyped input_ids, texts with
+    control characters, special-token strings and nothing but spaces."""
+    cols = windows(rng, rows, seq_len=12)
+    plant(rng, cols, [rows // 3, rows // 2, 2 * rows // 3])
+    for row in range(rows // 4, rows - 1, rows // 4):  # exact copies of row 2 spread over the file
+        for values in cols.values():
+            values[row] = list(values[2])
+    out = []
+    for i in range(rows):
+        record = {k: v[i] for k, v in cols.items()}
+        record["text"] = rng.choice(["a plain line", "tea\x07time", "  ", "", "x <|endoftext|> y", "caf\u00e9"])
+        if rng.random() < 0.05:
+            record["input_ids"] = "not a list"
+        line = json.dumps(record).encode()
+        if rng.random() < 0.05:
+            line = line[: len(line) // 2]  # a bad JSON line
+        if rng.random() < 0.04:
+            line = b""
+        out.append(line)
+    return out
+
+
+@pytest.mark.parametrize("seed", range(10))
+def test_split_jsonl_matches_whole_scan(tmp_path, cut, seed):
+    rng = random.Random(100 + seed)
+    lines = jsonl_lines(rng, rng.randrange(80, 200))
+    data = b"\n".join(lines) + (b"\n" if seed % 3 else b"")  # some files end in a cut-off line
+    if seed % 4 == 0:
+        data = b"\xef\xbb\xbf" + data
+    path = tmp_path / "shard.jsonl"
+    path.write_bytes(data)
+    whole = report([path], vocab_size=VOCAB)
+    parted = report([path], SerialPair(), vocab_size=VOCAB)
+    assert parted == whole
+    parts = cut[0]
+    assert parts is not None and len(parts) == 2
+    # each part starts right after a newline, at the line index counted by the standard library
+    lo = parts[1].lo
+    assert data[lo - 1:lo] == b"\n"
+    assert parts[1].first_row == data[:lo].count(b"\n")
+
+
+def test_split_on_a_process_pool_matches_whole_scan(tmp_path, monkeypatch, caplog):
+    """Real processes (the read sizes are the defaults there): a Parquet shard of several row groups."""
+    monkeypatch.setattr(split, "SPLIT_BYTES", 0)
+    rng = random.Random(9)
+    cols = windows(rng, 400)
+    plant(rng, cols, [99, 100, 199, 200, 300])
+    path = write(tmp_path / "big.parquet", cols, row_group_size=50)
+    whole = report([path], vocab_size=VOCAB)
+    with caplog.at_level(logging.DEBUG, logger="lint.engine"):
+        parted = report([path], LocalExecutor(2), vocab_size=VOCAB)
+    assert parted == whole
+    said = [re.search(r"in 2 parts starting at rows 0, (\d+)$", r.getMessage()) for r in caplog.records]
+    starts = [int(m.group(1)) for m in said if m]
+    assert len(starts) == 1 and starts[0] % 50 == 0 and 0 < starts[0] < 400  # at a row group boundary
+
+
+def test_not_split_when_a_rule_cannot_join_parts(tmp_path, cut, caplog):
+    path = write(tmp_path / "a.parquet", windows(random.Random(1), 60), row_group_size=10)
+    with caplog.at_level(logging.DEBUG, logger="lint.engine"):
+        report([path], SerialPair(), vocab_size=VOCAB, only=("near-duplicate", "token-range"))
+    assert cut == []  # never planned
+    assert any("near-duplicate" in r.getMessage() and "whole" in r.getMessage() for r in caplog.records)
+
+
+def test_parts_that_cannot_be_joined_exactly_are_scanned_whole(tmp_path, cut, caplog):
+    """label-alignment keeps the first 16 distinct negative label values: a second part with many others cannot say
+    how often the first part's values occur in it, so the shard is scanned again whole."""
+    cols = windows(random.Random(4), 80)
+    for row in range(80):
+        cols["labels"][row][3] = -1 - (row % 3) if row < 20 else -10 - row
+    path = write(tmp_path / "a.parquet", cols, row_group_size=10)
+    whole = report([path], vocab_size=VOCAB)
+    with caplog.at_level(logging.DEBUG, logger="lint.engine"):
+        parted = report([path], SerialPair(), vocab_size=VOCAB)
+    assert parted == whole
+    assert len(cut[0]) == 2
+    assert any("scanned again whole" in r.getMessage() for r in caplog.records)
+    assert any(f["rule"] == "label-alignment" and f["kind"] == "negative-label" for f in whole["findings"])
+
+
+def test_not_split_compressed_jsonl_or_arrow_stream(tmp_path, cut):
+    cols = windows(random.Random(2), 60)
+    gz = write(tmp_path / "a.jsonl.gz", cols)
+    stream = write(tmp_path / "b.arrow", cols, fmt="arrows", row_group_size=10)
+    whole = report([gz, stream], vocab_size=VOCAB)
+    assert report([gz, stream], SerialPair(), vocab_size=VOCAB) == whole
+    assert cut == [None, None]
+
+
+def test_small_shards_are_not_split(tmp_path, monkeypatch):
+    monkeypatch.setattr(split, "SPLIT_BYTES", 1 << 30)
+    path = write(tmp_path / "a.parquet", windows(random.Random(3), 60), row_group_size=10)
+    shard = discover([path])[0]
+    assert split.plan(shard, Settings(), 2) is None
+    assert split.plan(shard, Settings(), 2, threshold=0) is not None
+    assert split.plan(shard, Settings(), 1, threshold=0) is None
+
+
+def test_hits_extend_keeps_the_first_locations_and_the_true_count():
+    from lint.findings import Hits
+
+    whole, first, second = Hits(4), Hits(4), Hits(4)
+    for hits, rows in ((first, [1, 2, 3]), (second, [7, 8]), (second, [9])):
+        hits.add(rows, np.array(rows) * 10)
+    for rows in ([1, 2, 3], [7, 8], [9]):
+        whole.add(rows, np.array(rows) * 10)
+    first.extend(second)
+    assert (first.count, first.rows.tolist(), first.offsets.tolist(), first.truncated) == \
+        (whole.count, whole.rows.tolist(), whole.offsets.tolist(), whole.truncated) == (6, [1, 2, 3, 7], [10, 20, 30, 70], True)
