@@ -55,6 +55,14 @@ LOCAL_PARTITIONS = 16
 PRELOAD = ["lint.engine", "rules"]
 
 
+def _one_arrow_thread() -> None:
+    """In a pool process: decode with one Arrow thread, since the pool already gives each core a process (Arrow's
+    own thread pool would have the processes compete for the same cores)."""
+    import pyarrow
+
+    pyarrow.set_cpu_count(1)
+
+
 class LocalExecutor:
     """Runs work in this process (``jobs=1``) or in a pool of ``jobs`` processes.
 
@@ -77,7 +85,8 @@ class LocalExecutor:
         if self.jobs == 1 or len(items) < 2:
             yield from map(fn, items)
             return
-        with ProcessPoolExecutor(max_workers=min(self.jobs, len(items)), mp_context=self._context()) as pool:
+        with ProcessPoolExecutor(max_workers=min(self.jobs, len(items)), mp_context=self._context(),
+                                 initializer=_one_arrow_thread) as pool:
             yield from pool.map(fn, items)
 
     def map_shuffle(self, fn: Callable, items: Iterable, split: Callable, reduce: Callable):
