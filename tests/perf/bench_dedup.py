@@ -20,7 +20,6 @@ import os
 import subprocess
 import sys
 import tempfile
-import time
 
 import numpy as np
 import pyarrow as pa
@@ -29,6 +28,8 @@ import pyarrow.parquet as pq
 VOCAB = 50_000
 NEAR_CHANGES = 10
 ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from bench_scan import time_read  # noqa: E402  (the same batch-by-batch read as the scan benchmark)
 
 
 def write_shard(path: str, tokens: int, seq_len: int, duplicates: float, rows_per_group: int = 1024,
@@ -56,14 +57,6 @@ def write_shard(path: str, tokens: int, seq_len: int, duplicates: float, rows_pe
             writer.write_table(pa.table([pa.ListArray.from_arrays(offsets, pa.array(ids.ravel()))], schema=schema))
             previous = ids
     return rows, exact, near
-
-
-def time_read(path: str, batch_size: int) -> float:
-    started = time.perf_counter()
-    pf = pq.ParquetFile(path)
-    for _ in pf.iter_batches(batch_size=batch_size):
-        pass
-    return time.perf_counter() - started
 
 
 def time_scan(path: str) -> tuple[float, int, dict, dict]:

@@ -15,17 +15,14 @@ import argparse
 import json
 import os
 import shutil
-import subprocess
 import sys
 import tempfile
-import time
 
 import pyarrow.parquet as pq
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from bench_scan import VOCAB, write_shard  # noqa: E402
+from bench_scan import VOCAB, run_cli, write_shard  # noqa: E402
 
-REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 
 def timed_scan(folder: str, jobs: int, only: str | None) -> tuple[float, int]:
@@ -35,12 +32,7 @@ def timed_scan(folder: str, jobs: int, only: str | None) -> tuple[float, int]:
                "--vocab-size", str(VOCAB), "--json", out]
     if only:
         command += ["--only", only]
-    env = {**os.environ, "PYTHONPATH": REPO + os.pathsep + os.environ.get("PYTHONPATH", "")}
-    started = time.perf_counter()
-    done = subprocess.run(command, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
-    seconds = time.perf_counter() - started
-    if done.returncode not in (0, 1):
-        raise SystemExit(f"the scan failed (exit {done.returncode}): {done.stderr}")
+    _, seconds = run_cli(command)
     with open(out) as fh:
         tokens = json.load(fh)["metrics"]["tokens"]
     os.remove(out)

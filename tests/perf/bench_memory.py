@@ -15,17 +15,14 @@ from __future__ import annotations
 import argparse
 import os
 import shutil
-import subprocess
 import sys
 import tempfile
-import time
 
 import pyarrow.parquet as pq
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from bench_scan import VOCAB, write_shard  # noqa: E402
+from bench_scan import VOCAB, run_cli, write_shard  # noqa: E402
 
-REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 #: Bytes per token of a shard written by bench_scan.write_shard (three int32 columns, snappy): measured once on a
 #: 10M-token shard, used only to aim at the size asked for.
 BYTES_PER_TOKEN = 5.4
@@ -46,13 +43,10 @@ def peak_of_scan(path: str, only: str | None) -> tuple[int, float]:
     command = [sys.executable, "-c", CHILD, "scan", path, "--jobs", "1", "--quiet", "--vocab-size", str(VOCAB)]
     if only:
         command += ["--only", only]
-    env = {**os.environ, "PYTHONPATH": REPO + os.pathsep + os.environ.get("PYTHONPATH", "")}
-    started = time.perf_counter()
-    done = subprocess.run(command, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
-    seconds = time.perf_counter() - started
+    done, seconds = run_cli(command)
     peaks = [line.split()[1] for line in done.stderr.splitlines() if line.startswith("VmHWM ")]
-    if done.returncode not in (0, 1) or not peaks:
-        raise SystemExit(f"the scan failed (exit {done.returncode}): {done.stderr}")
+    if not peaks:
+        raise SystemExit(f"the scan reported no peak memory: {done.stderr}")
     return int(peaks[-1]) * 1024, seconds
 
 

@@ -56,6 +56,21 @@ def write_shard(path: str, tokens: int, seq_len: int, rows_per_group: int = 1024
     return rows
 
 
+REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+
+
+def run_cli(command: list[str]) -> tuple[subprocess.CompletedProcess, float]:
+    """Run a scan command in a child process with this checkout first on the path; its result and wall-clock
+    seconds. Exits with the child's stderr when the scan itself failed (exit status other than 0 or 1)."""
+    env = {**os.environ, "PYTHONPATH": REPO + os.pathsep + os.environ.get("PYTHONPATH", "")}
+    started = time.perf_counter()
+    done = subprocess.run(command, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    seconds = time.perf_counter() - started
+    if done.returncode not in (0, 1):
+        raise SystemExit(f"the scan failed (exit {done.returncode}): {done.stderr}")
+    return done, seconds
+
+
 def time_read(path: str, batch_size: int) -> float:
     started = time.perf_counter()
     pf = pq.ParquetFile(path)
