@@ -469,6 +469,13 @@ class DocumentTally:
     ``add`` takes the :class:`BatchDocuments` of each batch in order; ``close`` ends the shard (the open document
     is complete then, but never counted as cut: it may continue in the next shard).  ``on_overlong`` and
     ``on_cut`` receive ``(rows, offsets)`` of the start of each such document, in shard order.
+
+    A tally of one part of a split shard (see :mod:`lint.split`) is open at both ends.  When parts come before it
+    (:meth:`expect_lead`), the real tokens before its first document start are the *lead*: they belong to the
+    document the previous part left open, so they are held aside, not counted as a document.  When parts follow,
+    it ends with :meth:`pause` instead of :meth:`close`, keeping its open document in ``carry``.  :meth:`joined`
+    then stitches two consecutive parts: the previous part's carry plus this part's lead is one document, emitted
+    between the two parts' own documents -- so the joined tally is the tally of one scan of both parts.
     """
 
     def __init__(self, seq_len: int | None, on_overlong: Hit | None = None, on_cut: Hit | None = None):
@@ -485,8 +492,17 @@ class DocumentTally:
         self.rows = 0
         self.padded_rows = 0
         self.carry: list | None = None  # [length, row, offset, cut if closed at the next boundary]
+        # Of a part that continues an earlier one: [length, row, offset, cut if closed here (None: as the earlier
+        # part's carry says), closed (a document starts after it, or the shard ended)]
+        self.lead: list | None = None
         self._on_overlong = on_overlong
         self._on_cut = on_cut
+
+    def expect_lead(self) -> None:
+        """This tally's first rows may continue a document of the previous part of the shard: hold them aside."""
+        if self.rows or self.lead is not None:
+            raise RuntimeError("expect_lead must be called before the first batch")
+        self.lead = [0, -1, -1, None, False]
 
     def add(self, docs: BatchDocuments) -> None:
         self.unit = self.unit or docs.unit
@@ -495,14 +511,22 @@ class DocumentTally:
         self.real_tokens += docs.real_tokens
         self.rows += docs.rows
         self.padded_rows += docs.padded_rows
+        lead = self.lead if self.lead is not None and not self.lead[4] else None
+        open_doc = lead if lead is not None else self.carry
         if docs.head:
-            if self.carry is None:
+            if open_doc is None or open_doc[0] == 0 and lead is not None:
                 row, off = docs.locate(np.zeros(1, dtype=np.int64))
-                self.carry = [0, int(row[0]), int(off[0]), False]
-            self.carry[0] += docs.head
-            self.carry[3] = docs.head_cut if docs.closes else docs.tail_cut
-        if docs.closes and self.carry is not None:
-            self._close_carry(self.carry[3])
+                if open_doc is None:
+                    open_doc = self.carry = [0, int(row[0]), int(off[0]), False]
+                else:
+                    open_doc[1:3] = int(row[0]), int(off[0])
+            open_doc[0] += docs.head
+            open_doc[3] = docs.head_cut if docs.closes else docs.tail_cut
+        if docs.closes:
+            if lead is not None:
+                lead[4] = True
+            elif self.carry is not None:
+                self._close_carry(self.carry[3])
         self._emit(docs.lengths, docs.cut, docs.starts, docs.locate)
         if docs.tail:
             row, off = docs.locate(np.asarray([docs.tail_start]))
@@ -510,10 +534,51 @@ class DocumentTally:
 
     def close(self) -> None:
         """The shard ended: its open document is complete (not counted as cut)."""
+        if self.lead is not None and not self.lead[4]:
+            self.lead[3], self.lead[4] = False, True  # no document started in this part: the lead ran to the end
         if self.carry is not None:
             self._close_carry(False)
+        self.pause()
+
+    def pause(self) -> None:
+        """The part ended but the shard goes on: keep the open document for :meth:`joined`."""
         self.lengths.compact()
         self._on_overlong = self._on_cut = None  # callbacks do not travel between processes
+
+    def joined(self, later: "DocumentTally", on_overlong: Hit | None = None,
+               on_cut: Hit | None = None) -> "DocumentTally":
+        """The tally of this part and the ``later`` one that follows it (which called :meth:`expect_lead`), as one
+        scan of both gives it; the document stitched at the cut is reported to ``on_overlong``/``on_cut``."""
+        out = DocumentTally(self.seq_len, on_overlong, on_cut)
+        out.unit = self.unit or later.unit
+        out.arrangement = self.arrangement or later.arrangement
+        for name in ("overlong", "overlong_tokens", "beyond_window", "cut", "slots", "real_tokens", "rows",
+                     "padded_rows"):
+            setattr(out, name, getattr(self, name) + getattr(later, name))
+        out.lengths = LengthHistogram.merged([self.lengths, later.lengths])
+        out.lead = None if self.lead is None else list(self.lead)
+        carry, lead = self.carry, later.lead or [0, -1, -1, None, True]
+        if out.lead is not None and not out.lead[4]:  # no document started in this part: the lead goes on
+            if not out.lead[0]:
+                out.lead[1:3] = lead[1:3]
+            out.lead[0] += lead[0]
+            out.lead[3] = lead[3] if lead[3] is not None else out.lead[3]
+            out.lead[4] = lead[4]
+            out.carry = None if later.carry is None else list(later.carry)
+            return out
+        length = (carry[0] if carry else 0) + lead[0]
+        row, off = (carry[1], carry[2]) if carry else (lead[1], lead[2])
+        cut = lead[3] if lead[3] is not None else bool(carry and carry[3])
+        if lead[4]:
+            out.carry = None if later.carry is None else list(later.carry)
+            if length:
+                out.carry, after = [length, row, off, cut], out.carry
+                out._close_carry(cut)
+                out.carry = after
+        else:  # nothing started in the later part: the document goes on
+            out.carry = [length, row, off, cut] if length else None
+        out._on_overlong = out._on_cut = None
+        return out
 
     def _close_carry(self, cut: bool) -> None:
         length, row, off, _ = self.carry

@@ -135,6 +135,8 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=Non
     pending = []  # record-less batches (read problems) seen before the first records
     if part is not None:  # the facts were inferred from the shard's first records before the parts were read
         states = {rule.id: rule.begin(shard, facts) for rule in rules}
+        for state in states.values():
+            state.continued, state.continues = part.index > 0, part.index < part.count - 1
     with open_shard(shard, tokens_column=facts.tokens_column, sample=sampling, part=part) as reader:
         # rows, tokens and bytes consumed already reported to ``progress``
         told = (0, 0, part.lo if part is not None and shard.format == "jsonl" else 0)
@@ -178,8 +180,10 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=Non
                        sampling.summary() if sampling is not None else None, joining)
 
 
-def merge_parts(results: list[ShardResult], rules: list[Rule]) -> ShardResult:
-    """One shard's result from the results of its parts, in order: what a scan of the whole shard gives.
+def merge_parts(results: list[ShardResult], rules: list[Rule]) -> tuple[ShardResult, list[Rule]]:
+    """One shard's result from the results of its parts, in order: what a scan of the whole shard gives; and the
+    rules that could not join their parts exactly (``Unmergeable``), whose states are left out: the caller scans
+    the shard whole for them.
 
     Each rule's states are joined pairwise with its ``merge``, left to right.  A part whose reader stopped at a
     failure ends the shard there, as it would in one scan: the later parts are left out."""
@@ -197,7 +201,7 @@ def merge_parts(results: list[ShardResult], rules: list[Rule]) -> ShardResult:
         for rule_id, why in result.part["skipped"].items():
             reasons.setdefault(rule_id, why)
         fed |= result.part["fed"]
-    states = {}
+    states, unjoined = {}, []
     for rule in rules:
         if rule.id in crashed:
             continue
@@ -205,16 +209,41 @@ def merge_parts(results: list[ShardResult], rules: list[Rule]) -> ShardResult:
             state = kept[0].states[rule.id]
             for result in kept[1:]:
                 state = rule.merge(state, result.states[rule.id])
-        except Unmergeable:
-            raise
+        except Unmergeable as exc:
+            if rule.keyed:  # its parts' pieces are in the shuffle already: it must join them
+                crashed[rule.id] = f"Unmergeable: {exc} (a keyed rule must join the parts of a shard)"
+            else:
+                log.debug("%s: %s cannot join the parts exactly (%s)", kept[0].shard.uri, rule.id, exc)
+                unjoined.append(rule)
+            continue
         except Exception as exc:  # noqa: BLE001 - a rule bug must not lose the other rules' findings
             crashed[rule.id] = f"{type(exc).__name__}: {exc}"
             continue
         states[rule.id] = state
     skipped = {rule_id: why for rule_id, why in reasons.items() if rule_id in crashed or rule_id not in fed}
-    return dataclasses.replace(kept[0], states=states, skipped=skipped, crashed=crashed,
-                               rows=sum(r.rows for r in kept), tokens=sum(r.tokens for r in kept),
-                               seconds=sum(r.seconds for r in results), part=None)
+    merged = dataclasses.replace(kept[0], states=states, skipped=skipped, crashed=crashed,
+                                 rows=sum(r.rows for r in kept), tokens=sum(r.tokens for r in kept),
+                                 seconds=sum(r.seconds for r in results), part=None)
+    return merged, unjoined
+
+
+def rescan(result: ShardResult, settings: Settings, rules: list[Rule], sample=None) -> ShardResult:
+    """``result`` with the states of ``rules`` from a scan of the whole shard (after parts that these rules could
+    not join, or parts in which no records were read); the other rules' states are kept.  When the parts read no
+    records, the whole scan's counts and findings of the reader replace theirs."""
+    if not rules:
+        return result
+    whole = scan_shard(result.shard, settings, rules, None, sample)
+    ids = {rule.id for rule in rules}
+
+    def others(table: dict) -> dict:
+        return {key: value for key, value in table.items() if key not in ids}
+
+    base = result if result.rows else dataclasses.replace(whole, seconds=result.seconds)
+    return dataclasses.replace(base, states={**others(result.states), **whole.states},
+                               skipped={**others(result.skipped), **whole.skipped},
+                               crashed={**others(result.crashed), **whole.crashed},
+                               seconds=result.seconds + whole.seconds)
 
 
 def _scan_args(args):
@@ -251,14 +280,10 @@ def run(shards: list[Shard], settings: Settings, rules: list[Rule], jobs: int = 
                 if count == 1:
                     result = next(scanned)
                 else:
-                    pieces = [next(scanned) for _ in range(count)]
-                    try:
-                        result = merge_parts(pieces, rules)
-                    except Unmergeable as exc:  # a rule cannot join these parts exactly: scan the shard whole
-                        log.debug("%s is scanned again whole: %s", pieces[0].shard.uri, exc)
-                        result = dataclasses.replace(pieces[0], rows=0)
-                    if not result.rows:  # no records in any part, or parts that cannot be joined: scan it whole
-                        result = scan_shard(result.shard, _settings_of(items, result), rules, None, sample)
+                    result, unjoined = merge_parts([next(scanned) for _ in range(count)], rules)
+                    if not result.rows:  # no records in any part: the whole scan says what is wrong with it
+                        unjoined = [rule for rule in rules if not rule.keyed]  # (keyed: in the shuffle already)
+                    result = rescan(result, _settings_of(items, result), unjoined, sample)
                 results.append(result)
                 if progress is not None and (reporter is None or count > 1):
                     progress.shard_done(result.shard.uri, result.rows, result.tokens)
@@ -274,8 +299,8 @@ def _parts(shard: Shard, settings: Settings, rules: list[Rule], executor, sample
     processes = split_workers(executor)
     if processes < 2 or (sample is not None and not sample.full) or shard.length <= split.SPLIT_BYTES:
         return None
-    if not all(rule.splittable and not rule.keyed for rule in rules):
-        held = ", ".join(rule.id for rule in rules if not rule.splittable or rule.keyed)
+    if not all(rule.splittable for rule in rules):
+        held = ", ".join(rule.id for rule in rules if not rule.splittable)
         log.debug("%s is scanned whole: rule(s) %s cannot join parts of a shard", shard.uri, held)
         return None
     parts = split.plan(shard, settings, processes)

@@ -11,7 +11,8 @@ runs that step as a partitioned shuffle, so that no single process holds the ent
 * ``partition(state, parts)`` -- map side, run where the shard's state is: split the keyed entries into ``parts``
   pieces by a hash of the key and return ``(state without them, pieces)``;
 * ``reduce_partition(pieces)`` -- reduce side, run once per partition: the pieces of that partition from every
-  shard (in shard order, one per state ``corpus`` will get) become a small *partial* result;
+  shard (in shard order, one per state ``corpus`` will get; a shard scanned in parts gives one piece per part, in
+  order, and the parts' slimmed states are joined with ``merge``) become a small *partial* result;
 * ``corpus(states, partials)`` -- the partials of all partitions (in partition order) with the slimmed states.
 
 The engine runs these same functions in this process for a local scan and as tasks on a cluster (the pieces stay
@@ -40,7 +41,16 @@ class Unmergeable(Exception):
 
 
 class ShardState:
-    """What a rule has gathered about one shard: counters, capped hit lists, and any extra fields it sets."""
+    """What a rule has gathered about one shard: counters, capped hit lists, and any extra fields it sets.
+
+    When a large shard is scanned in parts (see ``Rule.splittable``), the engine sets ``continued`` on the state
+    of every part but the first (its first rows may finish something the previous part left open) and
+    ``continues`` on every part but the last (what is open at its end goes on in the next part), before the first
+    batch; a whole-shard scan leaves both False.
+    """
+
+    continued = False
+    continues = False
 
     def __init__(self, shard: Shard, settings, cap: int):
         self.shard = shard
@@ -110,7 +120,11 @@ class Rule:
     keyed: bool = False
     #: Whether a large shard may be scanned in parts (contiguous row groups or record batches, each read by its own
     #: process) whose states ``merge`` joins into the state a whole-shard scan gives.  The engine splits a shard
-    #: only when every selected rule sets it.
+    #: only when every selected rule sets it.  A rule that carries something from one row to the next reads
+    #: ``state.continued`` / ``state.continues`` (see :class:`ShardState`) and joins the open ends in ``merge``;
+    #: when it cannot join two parts exactly it raises :class:`Unmergeable`, and the engine scans the shard again
+    #: whole for that rule alone.  A ``keyed`` rule's parts go into the shuffle one by one (the reduce gets one
+    #: piece per part, in order), so its ``merge`` must always succeed.
     splittable: bool = False
 
     def __init__(self, **options):

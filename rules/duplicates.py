@@ -471,6 +471,17 @@ class _DuplicateRule(Rule):
         state.content = np.concatenate(parts["content"]) if parts["content"] else np.zeros((0, 2), np.uint64)
         return state
 
+    splittable = True
+
+    def merge(self, first, second):
+        """The windows of both parts, ``first``'s then ``second``'s (one window per row: nothing spans a cut).
+        ``near-duplicate`` joins its parts after the shuffle has taken their band keys (each part's piece gives its
+        windows the ids that follow on from the previous part's), so only the window tables are joined here."""
+        merged = super().merge(first, second)
+        for name in ("rows", "lengths", "domains", "content"):
+            setattr(merged, name, np.concatenate([getattr(first, name), getattr(second, name)]))
+        return merged
+
     def _max_clusters(self) -> int:
         return _check_int(self.id, "max_clusters", self.opts["max_clusters"], 0,
                           f"findings listed before one summary finding; the default is {DEFAULT_MAX_CLUSTERS}")
@@ -497,17 +508,8 @@ class ExactDuplicate(_DuplicateRule):
         super().__init__(**options)
         self._max_clusters()
 
-    splittable = True
-
     def feed(self, state, batch):
         self._keep(state, batch_windows(batch, state.settings))
-
-    def merge(self, first, second):
-        """The windows of both parts, ``first``'s then ``second``'s (one window per row: nothing spans a cut)."""
-        merged = super().merge(first, second)
-        for name in ("rows", "lengths", "domains", "content"):
-            setattr(merged, name, np.concatenate([getattr(first, name), getattr(second, name)]))
-        return merged
 
     def corpus(self, states):
         scan = ScanWindows(states)

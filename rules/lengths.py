@@ -6,12 +6,14 @@ so a shard's state stays small however many documents it holds.
 """
 from __future__ import annotations
 
+import copy
+
 from lint.batch import is_integer_list, is_text
 from lint.documents import (ONE_PER_ROW, QUANTILE_METHOD, QUANTILES, TEXT, DocumentTally, LengthHistogram,
                             documents_of, infer_arrangement)
 from lint.findings import Finding, Level
 from lint.packing import AsBuilt, compare_layouts, savings
-from lint.rule import Rule, consistent, pct, share
+from lint.rule import Rule, Unmergeable, consistent, pct, share
 
 #: Names of the three layouts in reports (camelCase keys) and in messages.
 LAYOUT_KEYS = {"one_per_window": "oneDocumentPerWindow", "concat_chunk": "concatenateAndChunk",
@@ -38,7 +40,14 @@ def length_summary(lengths: LengthHistogram) -> dict:
 
 
 class _DocumentRule(Rule):
-    """Shared by the length rules: feeds every batch's documents to a :class:`~lint.documents.DocumentTally`."""
+    """Shared by the length rules: feeds every batch's documents to a :class:`~lint.documents.DocumentTally`.
+
+    A large shard may be scanned in parts: a part that continues an earlier one holds its first rows aside (they
+    finish the document the earlier part left open), a part that others follow keeps its last document open, and
+    ``merge`` stitches the two into one document.  Each part infers the arrangement from its own first batch; when
+    that differs from the earlier part's, the parts cannot be joined exactly and the shard is scanned whole."""
+
+    splittable = True
 
     def missing(self, batch, settings):
         if _tokenized(batch, settings) or _textual(batch, settings):
@@ -61,6 +70,7 @@ class _DocumentRule(Rule):
             return
         if state.arrangement is None:
             state.arrangement, state.why = infer_arrangement(batch, s)
+            self._lead(state)
         if state.arrangement != TEXT:
             if not _tokenized(batch, s):
                 return
@@ -69,9 +79,31 @@ class _DocumentRule(Rule):
             return
         state.tally.add(documents_of(batch, s, state.arrangement))
 
+    @staticmethod
+    def _lead(state) -> None:
+        """In a part that continues an earlier one, hold the first rows aside (before the first batch)."""
+        if state.continued and state.tally.lead is None and not state.tally.rows:
+            state.tally.expect_lead()
+
     def end(self, state):
-        state.tally.close()
+        self._lead(state)  # also a part none of whose batches reached the rule
+        if state.continues:
+            state.tally.pause()
+        else:
+            state.tally.close()
         return state
+
+    def merge(self, first, second):
+        if first.arrangement and second.arrangement and first.arrangement != second.arrangement:
+            raise Unmergeable(f"{self.id}: the parts look {first.arrangement} and {second.arrangement}")
+        first = copy.copy(first)
+        first.hits = copy.deepcopy(first.hits)
+        tally = first.tally.joined(second.tally, **self._callbacks(first))  # the stitched document's hits
+        merged = super().merge(first, second)
+        merged.tally = tally
+        merged.arrangement, merged.why = (first.arrangement, first.why) if first.arrangement else \
+            (second.arrangement, second.why)
+        return merged
 
 
 class OverlongDocument(_DocumentRule):

@@ -21,6 +21,7 @@ from lint import Settings
 from lint.engine import run, select_rules
 from lint.executors import LocalExecutor
 from lint.report.json import to_dict
+from lint.rule import Rule
 from lint.sources import discover
 from rules import registry
 from tests.shards import write
@@ -223,12 +224,24 @@ def test_split_on_a_process_pool_matches_whole_scan(tmp_path, monkeypatch, caplo
     assert len(starts) == 1 and starts[0] % 50 == 0 and 0 < starts[0] < 400  # at a row group boundary
 
 
+class RowCount(Rule):
+    """A rule that does not say it can join parts (as a plugin might): it only counts rows."""
+
+    id = "row-count"
+    needs = {"tokens_column": "int-list"}
+
+    def feed(self, state, batch):
+        state.count(rows=len(batch))
+
+
 def test_not_split_when_a_rule_cannot_join_parts(tmp_path, cut, caplog):
     path = write(tmp_path / "a.parquet", windows(random.Random(1), 60), row_group_size=10)
+    s = Settings(vocab_size=VOCAB, only=("token-range",))
     with caplog.at_level(logging.DEBUG, logger="lint.engine"):
-        report([path], SerialPair(), vocab_size=VOCAB, only=("near-duplicate", "token-range"))
+        result = run(discover([path]), s, select_rules(s, registry()) + [RowCount()], executor=SerialPair())
     assert cut == []  # never planned
-    assert any("near-duplicate" in r.getMessage() and "whole" in r.getMessage() for r in caplog.records)
+    assert any("row-count" in r.getMessage() and "whole" in r.getMessage() for r in caplog.records)
+    assert result.metrics["rows"] == 60
 
 
 def test_parts_that_cannot_be_joined_exactly_are_scanned_whole(tmp_path, cut, caplog):
@@ -243,7 +256,8 @@ def test_parts_that_cannot_be_joined_exactly_are_scanned_whole(tmp_path, cut, ca
         parted = report([path], SerialPair(), vocab_size=VOCAB)
     assert parted == whole
     assert len(cut[0]) == 2
-    assert any("scanned again whole" in r.getMessage() for r in caplog.records)
+    again = [r.getMessage() for r in caplog.records if "cannot join the parts exactly" in r.getMessage()]
+    assert len(again) == 1 and "label-alignment" in again[0]  # only that rule is scanned again
     assert any(f["rule"] == "label-alignment" and f["kind"] == "negative-label" for f in whole["findings"])
 
 
@@ -276,3 +290,102 @@ def test_hits_extend_keeps_the_first_locations_and_the_true_count():
     first.extend(second)
     assert (first.count, first.rows.tolist(), first.offsets.tolist(), first.truncated) == \
         (whole.count, whole.rows.tolist(), whole.offsets.tolist(), whole.truncated) == (6, [1, 2, 3, 7], [10, 20, 30, 70], True)
+
+
+# -- documents that run across the cuts ---------------------------------------------------------------------------
+
+class SerialParts(SerialPair):
+    """Like SerialPair, with ``jobs`` parts per shard."""
+
+    def __init__(self, jobs: int):
+        self.jobs = jobs
+
+
+def long_documents(rng: random.Random, rows: int, arrangement: str, seq_len: int = 16) -> dict:
+    """Rows of documents of very mixed lengths (some longer than several parts), stored as ``arrangement``:
+    ``positions`` (packed, position_ids restart per document; some documents cut at a row end, the next row then
+    starting a new one), ``separators`` (packed, eos after each document, some rows padded after an eos) or
+    ``one-per-row`` (each row one document, padded, or full without eos: cut), plus a text column."""
+    ids, pos = [], []
+    row, row_pos = [], []
+    while len(ids) < rows:
+        if arrangement == "one-per-row":
+            n = rng.choice([rng.randrange(1, seq_len), seq_len + rng.randrange(0, 40)])
+            doc = [rng.randrange(3, VOCAB) for _ in range(min(n, seq_len))]
+            if n < seq_len:
+                doc = doc + [EOS] + [PAD] * (seq_len - n - 1)
+            ids.append(doc)
+            continue
+        n = rng.choice([rng.randrange(1, 12), rng.randrange(12, 80), rng.randrange(80, 400)]) if ids else 5
+        doc = [rng.randrange(3, VOCAB) for _ in range(n)] + [EOS]
+        for t, token in enumerate(doc):
+            row.append(token)
+            row_pos.append(t)
+            if len(row) == seq_len:
+                ids.append(row)
+                pos.append(row_pos)
+                row, row_pos = [], []
+                if arrangement == "positions" and t < len(doc) - 1 and rng.random() < 0.1:
+                    break  # cut at the window: the rest of the document is not in the shard
+        if arrangement == "separators" and row and len(ids) > 2 and rng.random() < 0.1:  # a padded row
+            ids.append(row + [PAD] * (seq_len - len(row)))
+            row, row_pos = [], []
+    ids = ids[:rows]
+    ids[-1] = ids[-1][:-3] + [PAD] * 3  # the last row padded
+    cols = {"input_ids": ids}
+    if arrangement == "positions":
+        cols["position_ids"] = pos[:rows]
+    cols["text"] = [" ".join(f"w{t % 50}" for t in r[:rng.randrange(0, len(r) + 1)]) for r in ids]
+    return cols
+
+
+@pytest.mark.parametrize("arrangement", ["positions", "separators", "one-per-row"])
+@pytest.mark.parametrize("seed", range(6))
+def test_documents_across_cuts_match_whole_scan(tmp_path, cut, arrangement, seed):
+    """overlong-document and truncation-waste join the document open at each cut (also one that runs through
+    whole parts) and the documents cut at the window; the text lengths of the same rows are joined too."""
+    rng = random.Random(1000 + seed)
+    rows, group = rng.randrange(60, 140), rng.randrange(2, 7) if arrangement != "separators" else 12
+    cols = long_documents(rng, rows, arrangement)  # (separators: inferred from an eos inside a row)
+    fmt = ["parquet", "arrow"][seed % 2]
+    path = write(tmp_path / f"shard.{fmt}", cols, row_group_size=group)
+    only = ("overlong-document", "truncation-waste", "empty-document")
+    cap = [10_000, 2][seed % 2]
+    settings = dict(vocab_size=VOCAB, eos_id=EOS, pad_id=PAD, seq_len=16, only=only, instance_cap=cap,
+                    rule={"truncation-waste": {"max_waste": 0.0}})
+    whole = report([path], **settings)
+    parts = 2 + seed % 4
+    parted = report([path], SerialParts(parts), **settings)
+    assert parted == whole
+    assert cut[0] is not None and len(cut[0]) == parts
+    kinds = {(f["rule"], f["kind"]): f for f in whole["findings"]}
+    assert ("truncation-waste", "budget") in kinds
+    # packed documents run over several windows; a row holding one document never does, but may be cut
+    kind = "cut" if arrangement == "one-per-row" else "longer-than-window"
+    assert kinds["overlong-document", kind]["evidence"]["arrangement"] == {
+        "positions": "position-restarts"}.get(arrangement, arrangement)
+    if arrangement == "positions":
+        assert ("overlong-document", "cut") in kinds
+    # text lengths (UTF-8 bytes) of the same shard, read from the text column
+    text = report([path], SerialParts(parts), vocab_size=VOCAB, tokens_column="absent", only=only)
+    assert text == report([path], vocab_size=VOCAB, tokens_column="absent", only=only)
+    assert text["metrics"]["documentBytes"]["documents"] == sum(1 for t in cols["text"] if t)
+
+
+def test_near_duplicates_across_cuts_match_whole_scan(tmp_path, cut):
+    """Near copies (the last of 64 tokens changed: 59 of 61 5-token shingles shared, Jaccard 0.97) and exact copies of rows in other parts: the band keys of each part go
+    into the shuffle on their own, with the window ids a whole-shard scan gives."""
+    rng = random.Random(77)
+    ids = [[rng.randrange(3, VOCAB) for _ in range(64)] for _ in range(90)]
+    for src, dst in [(1, 40), (1, 85), (30, 31), (50, 88), (12, 61)]:
+        ids[dst] = list(ids[src])
+        if dst != 85:
+            ids[dst][63] = ids[src][63] % (VOCAB - 3) + 3 if ids[src][63] + 1 >= VOCAB else ids[src][63] + 1
+    path = write(tmp_path / "a.parquet", {"input_ids": ids}, row_group_size=10)
+    settings = dict(vocab_size=VOCAB, only=("near-duplicate", "exact-duplicate"))
+    whole = report([path], **settings)
+    assert report([path], SerialParts(3), **settings) == whole
+    assert len(cut[0]) == 3
+    near = [f for f in whole["findings"] if f["rule"] == "near-duplicate"]
+    # a cluster lists its distinct contents (row 85, an exact copy of row 1, is exact-duplicate's)
+    assert sorted(sorted(i["row"] for i in f["instances"]) for f in near) == [[1, 40], [12, 61], [30, 31], [50, 88]]
