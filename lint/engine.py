@@ -256,7 +256,9 @@ def run(shards: list[Shard], settings: Settings, rules: list[Rule], jobs: int = 
     finish every rule in this process.
 
     ``progress`` hears of every batch: an executor that has a ``relay(progress)`` context manager gives the stand-in
-    that reaches it from where the work runs; with any other executor it hears only of finished shards, here.
+    that reaches it from where the work runs (the scans there report each batch and each whole shard; the end of a
+    shard scanned in parts is reported here, through the stand-in); with any other executor it hears only of
+    finished shards, here.
     ``sample`` scans a reproducible random subset of every shard (see :mod:`lint.sampling`).
     """
     started = time.perf_counter()
@@ -286,7 +288,9 @@ def run(shards: list[Shard], settings: Settings, rules: list[Rule], jobs: int = 
                     result = rescan(result, _settings_of(items, result), unjoined, sample)
                 results.append(result)
                 if progress is not None and (reporter is None or count > 1):
-                    progress.shard_done(result.shard.uri, result.rows, result.tokens)
+                    # Through the stand-in when there is one, so the target hears one caller at a time.
+                    (progress if reporter is None else reporter).shard_done(result.shard.uri, result.rows,
+                                                                            result.tokens)
             reduced = partials()
     finally:
         if progress is not None:

@@ -7,6 +7,10 @@ where it lies into a part to keep and one piece per partition, reduce each parti
 parts (in item order) and the reduced partials (in partition order).  :class:`LocalExecutor` does the split and the
 reduce in this process; :class:`DaskExecutor` runs them as tasks on the workers, so the pieces never travel to this
 process.  ``partitions`` says how many partitions the executor wants.
+
+An executor may also give a ``relay(progress)`` context manager: it yields the stand-in for ``progress`` that
+travels with the work and reaches ``progress`` in this process from where the work runs, so a display moves after
+every batch (see :mod:`lint.progress`).
 """
 from __future__ import annotations
 
@@ -16,8 +20,12 @@ import multiprocessing
 import os
 import shutil
 import tempfile
+import threading
+import uuid
 from concurrent.futures import ProcessPoolExecutor
 from typing import Callable, Iterable, Iterator
+
+from .progress import Progress
 
 #: How to install what ``--cluster`` needs.
 CLUSTER_INSTALL = "pip install 'corpuscle[cluster]'"
@@ -135,6 +143,108 @@ def _piece(half, partition: int):
     return half[1][partition]
 
 
+#: How long leaving :meth:`DaskExecutor.relay` waits for the workers' last progress events, in seconds.
+RELAY_FLUSH_SECONDS = 10.0
+
+
+class TopicProgress(Progress):
+    """The stand-in for a :class:`~lint.progress.Progress` on a Dask cluster (see :meth:`DaskExecutor.relay`).
+
+    In a task on a worker, each event is logged under ``topic`` with the worker's ``log_event``: it travels on the
+    worker's stream to the scheduler, which forwards it to the client subscribed to the topic.  Called anywhere
+    else (this process, where the relay was opened), it goes straight to the target, under the relay's lock.  It
+    pickles as its topic alone; a copy unpickled outside a worker has nowhere to send its events and drops them.
+    """
+
+    def __init__(self, topic: str, relay: "_TopicRelay | None" = None):
+        self.topic = topic
+        self._relay = relay
+
+    def __getstate__(self) -> dict:
+        return {"topic": self.topic}
+
+    def __setstate__(self, state: dict) -> None:
+        self.topic = state["topic"]
+        self._relay = None
+
+    def _send(self, event: list) -> None:
+        try:
+            from distributed import get_worker
+
+            worker = get_worker()
+        except (ImportError, ValueError):  # ValueError: not in a task on a worker
+            worker = None
+        if worker is not None:
+            try:
+                worker.log_event(self.topic, event)
+            except Exception:  # noqa: BLE001 - a lost progress event must never stop the scan
+                pass
+        elif self._relay is not None:
+            self._relay.replay(event)
+
+    def batch(self, uri, rows, tokens, nbytes) -> None:
+        self._send(["batch", str(uri), int(rows), int(tokens), int(nbytes)])
+
+    def shard_done(self, uri, rows, tokens) -> None:
+        self._send(["shard_done", str(uri), int(rows), int(tokens)])
+
+
+class _TopicRelay:
+    """The client side of :meth:`DaskExecutor.relay`: replays the events of one topic into ``target``, one call at a
+    time, and tells when every worker has flushed its events."""
+
+    def __init__(self, target: Progress):
+        self.target: Progress | None = target
+        self.lock = threading.Condition()
+        self.flushed: set[str] = set()  # workers whose flush marker arrived
+
+    def heard(self, event) -> None:
+        """The topic's handler, called on the client's event-loop thread with ``(timestamp, message)``; messages
+        are lists (msgpack turns tuples into lists)."""
+        try:
+            _, message = event
+            kind, *args = message
+        except (TypeError, ValueError):
+            return
+        if kind == "flushed":
+            with self.lock:
+                self.flushed.add(args[0])
+                self.lock.notify_all()
+            return
+        self.replay([kind, *args])
+
+    def replay(self, event: list) -> None:
+        kind, *args = event
+        if kind not in ("batch", "shard_done"):
+            return
+        with self.lock:
+            if self.target is None:  # the relay is closed: a late event is dropped
+                return
+            try:
+                getattr(self.target, kind)(*args)
+            except Exception:  # noqa: BLE001 - a display problem must never stop the scan
+                pass
+
+    def flush(self, client, topic: str, timeout: float) -> bool:
+        """Have every worker log a marker after its events and wait (at most ``timeout`` seconds) until all markers
+        arrived.  A worker's events reach the client in the order it logged them, so its marker comes last."""
+        try:
+            workers = client.run(_mark_flushed, topic, on_error="ignore")
+        except Exception:  # noqa: BLE001 - the cluster is going away: nothing more will arrive
+            return False
+        with self.lock:
+            return self.lock.wait_for(lambda: set(workers) <= self.flushed, timeout)
+
+    def close(self) -> None:
+        with self.lock:
+            self.target = None
+
+
+def _mark_flushed(topic: str, dask_worker) -> None:
+    """On a worker's event loop (``Client.run``): log the flush marker after every event logged before."""
+    dask_worker.log_event(topic, ["flushed", dask_worker.address])
+
+
 class DaskExecutor:
     """Runs work on a Dask cluster: the scheduler at ``address`` (e.g. ``tcp://scheduler.example:8786``), or, for
     ``address="local"``, a ``distributed.LocalCluster`` started here: ``jobs`` worker processes (default: the number
@@ -242,6 +352,41 @@ class DaskExecutor:
             return client.gather(reduced)
 
         return results(), partials
+
+    @contextlib.contextmanager
+    def relay(self, progress: Progress):
+        """A context manager giving the progress object to pass to the work: a :class:`TopicProgress` whose
+        events, sent from the tasks on the workers, reach ``progress`` in this process, one call at a time.
+
+        The events travel as Dask events under a topic of their own (a new uuid per relay): the worker logs each
+        one (``Worker.log_event``), the scheduler forwards it to this client, which subscribed to the topic before
+        any work was sent, and the client's event-loop thread replays it into ``progress``.  Calls of the stand-in
+        in this process go to ``progress`` directly, under the same lock.  On a normal exit every worker logs a
+        marker after its events and the relay waits for all markers (at most :data:`RELAY_FLUSH_SECONDS`), so all
+        events of the scan have reached ``progress`` when it returns; on an exit by an exception it does not wait.
+
+        Limits: the events of a worker that leaves the cluster before its stream is sent are lost, and a task the
+        scheduler runs again (its worker was lost) reports its batches again, so the counts can then differ from
+        the shard's; events arriving after the exit are dropped.  The scheduler keeps the last events of each topic
+        (``distributed.admin.low-level-log-length``, 1000 by default) until it stops, since Dask has no public call
+        that drops a topic.
+        """
+        client = self._connected()
+        topic = f"corpuscle-progress-{uuid.uuid4().hex}"
+        here = _TopicRelay(progress)
+        client.subscribe_topic(topic, here.heard)
+        finished = False
+        try:
+            yield TopicProgress(topic, here)
+            finished = True
+        finally:
+            try:
+                if finished:
+                    here.flush(client, topic, RELAY_FLUSH_SECONDS)
+            finally:
+                here.close()
+                with contextlib.suppress(Exception):
+                    client.unsubscribe_topic(topic)
 
     def describe(self) -> str:
         if self.client is None:

@@ -3,7 +3,9 @@
 The engine knows only the :class:`Progress` interface: ``start`` with the shards, ``batch`` after every batch it
 fed to the rules, ``shard_done`` when a shard is finished, ``close`` at the end. Where shards are scanned in other
 processes, an executor gives the engine a stand-in (:class:`QueueProgress`) whose events travel back through a
-queue and are replayed into the real object by one thread of this process (:func:`relay`).
+queue and are replayed into the real object by one thread of this process (:func:`relay`).  On a Dask cluster the
+stand-in (:class:`lint.executors.TopicProgress`) sends them as Dask events to the client, so a cluster scan also
+reports every batch.
 
 Bytes consumed per batch (what the bar advances by) are what the reader reports: for Parquet the compressed size
 of the row group read (from the file metadata), shared out over its batches by rows; for Arrow IPC the buffer size

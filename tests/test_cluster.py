@@ -1,11 +1,11 @@
 """Tests of scanning on a Dask cluster (lint/executors.py DaskExecutor), of the keyed reduce that near-duplicate
 search runs as a partitioned shuffle (lint/rule.py, rules/duplicates.py), and of shards named by URI
-(lint/sources.py).
+(lint/sources.py), and of progress reported per batch from the workers (DaskExecutor.relay).
 
 A scan must give the same report wherever it runs: the cluster run is checked against the local run of the same
 code in one process, and both against outside references -- exact copies against Python equality of the token
 lists, near-duplicate clusters against datasketch's MinHashLSH (via the reference pipeline of test_duplicates.py),
-file sizes against ``os.path.getsize`` (stdlib).
+file sizes against ``os.path.getsize`` (stdlib), progress counts against pyarrow's reading of the files.
 
 The cluster is a ``distributed.LocalCluster`` of two worker processes, started once for the module. ``distributed``
 is an optional dependency (``corpuscle[cluster]``, also in the ``test`` extra): outside CI a missing package skips
@@ -15,21 +15,26 @@ from __future__ import annotations
 
 import json
 import os
+import pickle
 import subprocess
 import sys
 
 import numpy as np
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
 import pytest
 from click.testing import CliRunner
 
 from lint import Settings
 from lint.cli import main
 from lint.engine import run, select_rules
-from lint.executors import ClusterUnavailable, DaskExecutor, LocalExecutor
+from lint import split
+from lint.executors import ClusterUnavailable, DaskExecutor, LocalExecutor, TopicProgress
 from lint.lsh import band_keys, candidate_pairs, partition_candidates, signature_digests
 from lint.sources import discover
 from rules import registry
 from tests.shards import findings, write
+from tests.test_progress import Recorder, row_group_bytes
 from tests.test_duplicates import datasketch_clusters, jaccard, members, miss_probability, mutate, shingles_of
 
 VOCAB = 50_000
@@ -266,6 +271,107 @@ def test_the_cli_scans_on_a_running_scheduler(cluster):
         there_report, here_report = json.load(a), json.load(b)
     # unreadable-record, unreadable-shard, token-range (no vocab_size), 3 exact-duplicate groups, 4 near clusters
     assert len(there_report["findings"]) == 10 and there_report["findings"] == here_report["findings"]
+
+
+# -- progress from the workers ----------------------------------------------------------------------------------
+
+
+def progress_corpus(rng) -> list[str]:
+    """Four Parquet shards of token windows of varied lengths in row groups of 7 rows: several batches each (a
+    batch never spans row groups, and these are far below the read size), written with pyarrow."""
+    paths = []
+    for name, rows in (("a", 30), ("b", 22), ("c", 15), ("d", 40)):
+        windows = [rng.integers(3, VOCAB, int(rng.integers(1, 60))).tolist() for _ in range(rows)]
+        paths.append(write(f"data/{name}.parquet", {"input_ids": windows}, row_group_size=7))
+    return paths
+
+
+def parquet_rows_tokens(path) -> tuple[int, int]:
+    """Rows and token ids of a shard as pyarrow reads them: the table's rows and the sum of its list lengths."""
+    table = pq.read_table(path)
+    return table.num_rows, int(pc.sum(pc.list_value_length(table.column("input_ids"))).as_py())
+
+
+def batches_and_ends(events) -> tuple[dict, dict]:
+    """Per shard: the (rows, tokens, bytes) of its batch events in order, and its shard_done events."""
+    batches, ends = {}, {}
+    for event in events:
+        if event[0] == "batch":
+            batches.setdefault(event[1], []).append(event[2:])
+        elif event[0] == "done":
+            ends.setdefault(event[1], []).append(event[2:])
+    return batches, ends
+
+
+def test_a_cluster_scan_reports_every_batch_from_the_workers(cluster):
+    paths = progress_corpus(np.random.default_rng(8))
+    recorder = Recorder()
+    settings = Settings(only=("token-range",), vocab_size=VOCAB)
+    report = run(discover(["data"]), settings, select_rules(settings, registry()), executor=cluster,
+                 progress=recorder)
+    events = recorder.events
+    assert events[0] == ("start", tuple(paths)) and events[-1] == ("close",)
+    batches, ends = batches_and_ends(events)
+    assert set(batches) == set(ends) == set(paths)
+    for path in paths:
+        rows, tokens = parquet_rows_tokens(path)
+        meta = pq.ParquetFile(path).metadata
+        # One batch per row group (pyarrow's metadata), in file order: the events of one task arrive in order.
+        assert [b[0] for b in batches[path]] == [meta.row_group(g).num_rows for g in range(meta.num_row_groups)]
+        assert [b[2] for b in batches[path]] == row_group_bytes(path)
+        assert (sum(b[0] for b in batches[path]), sum(b[1] for b in batches[path])) == (rows, tokens)
+        assert ends[path] == [(rows, tokens)]  # exactly once: from the worker, not again here
+    assert sum(len(b) for b in batches.values()) == 5 + 4 + 3 + 6 > len(paths)
+    assert report.metrics["rows"] == 107
+
+
+def test_a_shard_split_over_the_workers_reports_its_batches_and_ends_once(cluster, monkeypatch):
+    # The parts are planned here (so the threshold set here applies) and scanned on the workers.
+    monkeypatch.setattr(split, "SPLIT_BYTES", 0)
+    planned, plan = [], split.plan
+    monkeypatch.setattr(split, "plan", lambda *args, **kwargs: planned.append(plan(*args, **kwargs)) or planned[-1])
+    paths = progress_corpus(np.random.default_rng(9))
+    recorder = Recorder()
+    settings = Settings(only=("token-range",), vocab_size=VOCAB)
+    rules = select_rules(settings, registry())
+    assert all(rule.splittable for rule in rules)
+    run(discover(["data"]), settings, rules, executor=cluster, progress=recorder)
+    assert [len(parts) for parts in planned] == [2, 2, 2, 2]  # every shard in two parts, one per worker
+    batches, ends = batches_and_ends(recorder.events)
+    for path in paths:
+        rows, tokens = parquet_rows_tokens(path)
+        meta = pq.ParquetFile(path).metadata
+        # The parts' batches arrive part by part, each part in order; together they are the row groups.
+        assert sorted(b[0] for b in batches[path]) == sorted(meta.row_group(g).num_rows
+                                                             for g in range(meta.num_row_groups))
+        assert (sum(b[0] for b in batches[path]), sum(b[1] for b in batches[path])) == (rows, tokens)
+        assert ends[path] == [(rows, tokens)]  # from the engine, once for the parts joined
+
+
+def _report_from_a_task(progress) -> str:
+    progress.batch("data/x.parquet", 3, 12, 100)
+    progress.shard_done("data/x.parquet", 3, 12)
+    return type(progress).__name__
+
+
+def test_the_cluster_stand_in_pickles_and_reaches_the_target_from_anywhere(cluster):
+    recorder = Recorder()
+    with cluster.relay(recorder) as stand_in, cluster.relay(Recorder()) as other:
+        assert isinstance(stand_in, TopicProgress) and stand_in.topic != other.topic  # a topic per relay
+        copy = pickle.loads(pickle.dumps(stand_in))
+        assert copy.topic == stand_in.topic
+        # Here, outside a worker: straight to the target, before the call returns.
+        stand_in.batch("data/y.parquet", 2, 5, 40)
+        assert recorder.events == [("batch", "data/y.parquet", 2, 5, 40)]
+        copy.batch("data/y.parquet", 1, 1, 1)  # a copy made here has no relay: its event goes nowhere
+        assert len(recorder.events) == 1
+        # In a task on a worker (the stand-in pickled with the task): through the scheduler to this client.
+        assert cluster.client.submit(_report_from_a_task, stand_in, pure=False).result() == "TopicProgress"
+    # Leaving the relay waited for the worker's events.
+    assert recorder.events == [("batch", "data/y.parquet", 2, 5, 40), ("batch", "data/x.parquet", 3, 12, 100),
+                               ("done", "data/x.parquet", 3, 12)]
+    stand_in.batch("data/y.parquet", 9, 9, 9)  # the relay is closed: dropped
+    assert len(recorder.events) == 3
 
 
 # -- usage errors -----------------------------------------------------------------------------------------------
