@@ -83,7 +83,8 @@ def main():
               help="Write the windows to drop here, one JSON line {\"uri\", \"row\"} each: every exact or near "
                    "duplicate but the first copy (scan order), from the rules exact-duplicate and near-duplicate.")
 @click.option("--fail-at", type=click.Choice(FAIL_AT), help="Exit 1 when a finding is at or above this level [default: error].")
-@click.option("--jobs", type=click.IntRange(min=1), help="Shards scanned in parallel [default: number of cores].")
+@click.option("--jobs", type=click.IntRange(min=1), help=("Cores to scan with: shards, and parts of large shards, are scanned by this many processes, each "
+                    "decoding with one Arrow thread [default: number of cores]."))
 @click.option("--cluster", metavar="ADDRESS",
               help="Scan on a Dask cluster: the address of its scheduler (e.g. tcp://scheduler.example:8786), or 'local' to "
                    "start one on this machine with --jobs worker processes. The workers must read the shards at the "

@@ -71,11 +71,26 @@ def _one_arrow_thread() -> None:
     pyarrow.set_cpu_count(1)
 
 
-class LocalExecutor:
-    """Runs work in this process (``jobs=1``) or in a pool of ``jobs`` processes.
+@contextlib.contextmanager
+def _arrow_threads(most: int):
+    """Arrow decodes with at most ``most`` threads inside the block (its CPU thread pool), as before after it."""
+    import pyarrow
 
-    The pool starts its processes with forkserver rather than fork: a child forked from a process whose Arrow
-    thread pools are running can deadlock.
+    before = pyarrow.cpu_count()
+    pyarrow.set_cpu_count(max(1, min(most, before)))
+    try:
+        yield
+    finally:
+        pyarrow.set_cpu_count(before)
+
+
+class LocalExecutor:
+    """Runs work in this process (``jobs=1``, or a single item) or in a pool of ``jobs`` processes.
+
+    ``jobs`` is the number of cores the work may keep busy: a pool process decodes with one Arrow thread, and work
+    run in this process with at most ``jobs`` (so ``jobs=1`` is one core, not one process plus Arrow's threads on
+    the others).  The pool starts its processes with forkserver rather than fork: a child forked from a process
+    whose Arrow thread pools are running can deadlock.
     """
 
     def __init__(self, jobs: int = 1, partitions: int = LOCAL_PARTITIONS):
@@ -91,7 +106,8 @@ class LocalExecutor:
     def map(self, fn: Callable, items: Iterable) -> Iterator:
         items = list(items)
         if self.jobs == 1 or len(items) < 2:
-            yield from map(fn, items)
+            with _arrow_threads(self.jobs):
+                yield from map(fn, items)
             return
         with ProcessPoolExecutor(max_workers=min(self.jobs, len(items)), mp_context=self._context(),
                                  initializer=_one_arrow_thread) as pool:

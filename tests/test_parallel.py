@@ -45,3 +45,27 @@ def test_one_job_and_two_jobs_write_the_same_sarif_apart_from_timing(tmp_path):
     # The corpus does hold defects of several families, cross-shard ones included.
     assert {"exact-duplicate", "missing-separator", "unreadable-record", "label-alignment"} <= rules
     assert any(r["ruleId"] == "exact-duplicate" and "uri" in r["properties"]["instances"][0] for r in results)
+
+
+def _arrow_threads(_item) -> int:
+    import pyarrow
+
+    return pyarrow.cpu_count()
+
+
+def test_jobs_is_the_number_of_cores_arrow_may_decode_with():
+    """--jobs 1 scans in this process with one Arrow thread (not Arrow's pool on every core), and gives the pool
+    back as it was; a pool process decodes with one thread too."""
+    import pyarrow
+
+    from lint.executors import LocalExecutor
+
+    before = pyarrow.cpu_count()
+    pyarrow.set_cpu_count(2)
+    try:
+        assert list(LocalExecutor(1).map(_arrow_threads, [1, 2])) == [1, 1]
+        assert pyarrow.cpu_count() == 2
+        assert list(LocalExecutor(2).map(_arrow_threads, [1, 2])) == [1, 1]
+        assert list(LocalExecutor(2).map(_arrow_threads, [1])) == [2]  # one item, here: up to two threads
+    finally:
+        pyarrow.set_cpu_count(before)
