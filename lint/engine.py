@@ -186,7 +186,9 @@ def merge_parts(results: list[ShardResult], rules: list[Rule]) -> tuple[ShardRes
     the shard whole for them.
 
     Each rule's states are joined pairwise with its ``merge``, left to right.  A part whose reader stopped at a
-    failure ends the shard there, as it would in one scan: the later parts are left out."""
+    failure ends the shard there, as it would in one scan: the later parts are left out -- except for ``keyed``
+    rules: every part with a state gave its entries to the shuffle already, so exactly those states are joined
+    (the ids of the entries follow them), and a part where the rule failed is reported as such."""
     kept = []
     for result in results:
         kept.append(result)
@@ -203,11 +205,20 @@ def merge_parts(results: list[ShardResult], rules: list[Rule]) -> tuple[ShardRes
         fed |= result.part["fed"]
     states, unjoined = {}, []
     for rule in rules:
-        if rule.id in crashed:
+        if rule.keyed:  # every part that has a state gave pieces to the shuffle: join exactly those
+            joined = [result for result in results if rule.id in result.states]
+            for result in results:
+                if rule.id in result.crashed:
+                    crashed.setdefault(rule.id, result.crashed[rule.id])
+            if not joined:
+                continue
+        elif rule.id in crashed:
             continue
+        else:
+            joined = kept
         try:
-            state = kept[0].states[rule.id]
-            for result in kept[1:]:
+            state = joined[0].states[rule.id]
+            for result in joined[1:]:
                 state = rule.merge(state, result.states[rule.id])
         except Unmergeable as exc:
             if rule.keyed:  # its parts' pieces are in the shuffle already: it must join them

@@ -389,3 +389,22 @@ def test_near_duplicates_across_cuts_match_whole_scan(tmp_path, cut):
     near = [f for f in whole["findings"] if f["rule"] == "near-duplicate"]
     # a cluster lists its distinct contents (row 85, an exact copy of row 1, is exact-duplicate's)
     assert sorted(sorted(i["row"] for i in f["instances"]) for f in near) == [[1, 40], [12, 61], [30, 31], [50, 88]]
+
+
+def test_a_part_that_stopped_ends_the_shard_but_keyed_rules_keep_every_part(tmp_path, cut):
+    """A part whose reader stopped at a failure ends the shard, as a whole scan would (later parts are left out);
+    but near-duplicate gave the later parts' band keys to the shuffle already, so its state joins every part."""
+    from lint.engine import merge_parts, scan_shard
+
+    path = write(tmp_path / "a.parquet", {"input_ids": [[i % 7 + 3] * 30 for i in range(40)]}, row_group_size=10)
+    shard = discover([path])[0]
+    s = Settings(vocab_size=VOCAB, only=("near-duplicate", "token-range"))
+    rules = select_rules(s, registry())
+    parts = split.plan(shard, s, 2)
+    results = [scan_shard(shard, s, rules, part=part) for part in parts]
+    results[0].part["stopped"] = True
+    merged, unjoined = merge_parts(results, rules)
+    assert unjoined == []
+    assert merged.rows == parts[1].first_row  # the rows of the first part only
+    assert len(merged.states["near-duplicate"].rows) == 40  # every window of both parts
+    assert merged.tokens == results[0].tokens == 30 * parts[1].first_row

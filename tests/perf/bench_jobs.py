@@ -7,7 +7,9 @@ Writes ``--shards`` Parquet shards of packed windows (as tests/perf/bench_scan.p
 ``--tokens`` tokens each, reads them once to warm the page cache, then runs ``python -m lint scan`` on the folder
 once with each number of jobs (all rules unless ``--only`` is given) and prints the wall-clock time of each run
 (the whole command: start-up, scan, the cross-shard reduce and the report), the tokens per second and the ratio.
-On a machine with two free cores the target is a speed-up of at least 1.6x.
+On a machine with two free cores the target is a speed-up of at least 1.6x. It then measures what a second process
+can add on this machine at all (a CPU-bound numpy kernel run by one process, then by two at once), since on a
+shared machine the second core is not always free.
 """
 from __future__ import annotations
 
@@ -15,13 +17,14 @@ import argparse
 import json
 import os
 import shutil
+import subprocess
 import sys
 import tempfile
 
 import pyarrow.parquet as pq
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from bench_scan import VOCAB, run_cli, write_shard  # noqa: E402
+from bench_scan import REPO, VOCAB, run_cli, write_shard  # noqa: E402
 
 
 
@@ -37,6 +40,24 @@ def timed_scan(folder: str, jobs: int, only: str | None) -> tuple[float, int]:
         tokens = json.load(fh)["metrics"]["tokens"]
     os.remove(out)
     return seconds, tokens
+
+
+#: A CPU-bound numpy kernel (MinHash signatures of random shingles, the heaviest step of a scan), run by one
+#: process and then by two at once: how much a second process can add on this machine right now.
+KERNEL = ("import time, numpy as np; from lint.minhash import signatures; "
+          "h = np.random.default_rng(1).integers(0, 2**32, 4_000_000, dtype=np.uint32); "
+          "o = np.arange(0, 4_000_001, 2000); t = time.perf_counter(); signatures(h, o); signatures(h, o); "
+          "print(time.perf_counter() - t)")
+
+
+def machine_ceiling() -> float:
+    """Throughput of two processes running the kernel at once over one process running it alone."""
+    env = {**os.environ, "PYTHONPATH": REPO + os.pathsep + os.environ.get("PYTHONPATH", "")}
+    command = [sys.executable, "-c", KERNEL]
+    alone = float(subprocess.run(command, env=env, capture_output=True, text=True, check=True).stdout)
+    pair = [subprocess.Popen(command, env=env, stdout=subprocess.PIPE, text=True) for _ in range(2)]
+    together = max(float(p.communicate()[0]) for p in pair)
+    return 2 * alone / together
 
 
 def main() -> None:
@@ -66,6 +87,9 @@ def main() -> None:
         print(f"--jobs 1 : {one_s:7.2f} s  {tokens / one_s / 1e6:6.1f} M tokens/s")
         print(f"--jobs 2 : {two_s:7.2f} s  {tokens / two_s / 1e6:6.1f} M tokens/s")
         print(f"speed-up : {one_s / two_s:7.2f} x")
+        ceiling = machine_ceiling()
+        print(f"machine  : {ceiling:7.2f} x  (two processes of a CPU-bound numpy kernel vs one, measured now; the "
+              f"scan reaches {one_s / two_s / ceiling:.0%} of it)")
     finally:
         if not args.keep:
             shutil.rmtree(folder, ignore_errors=True)

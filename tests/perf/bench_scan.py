@@ -4,8 +4,9 @@
 
 Writes one shard of packed windows (input_ids, shifted labels, position_ids; int32 lists) with at least
 ``--tokens`` tokens, then measures in this one run:
-  (a) pyarrow reading the shard batch by batch (all columns, same batch size as the scan),
-  (b) ``corpuscle scan`` of it with the token-structure rules, in a child process (``--jobs 1``),
+  (a) pyarrow reading the shard batch by batch (all columns, same batch size as the scan, one thread),
+  (b) ``corpuscle scan`` of it with the token-structure rules, in a child process (``--jobs 1``: one core, one
+      Arrow thread),
   (c) the ratio b / a,
   (d) the peak resident memory of the scanning process.
 The file is read once before timing so that both timings see a warm page cache.
@@ -71,10 +72,10 @@ def run_cli(command: list[str]) -> tuple[subprocess.CompletedProcess, float]:
     return done, seconds
 
 
-def time_read(path: str, batch_size: int) -> float:
+def time_read(path: str, batch_size: int, use_threads: bool = True) -> float:
     started = time.perf_counter()
     pf = pq.ParquetFile(path)
-    for _ in pf.iter_batches(batch_size=batch_size):
+    for _ in pf.iter_batches(batch_size=batch_size, use_threads=use_threads):
         pass
     return time.perf_counter() - started
 
@@ -106,10 +107,10 @@ def main() -> None:
 
     batch_rows = max(1, DEFAULT_BATCH_TOKENS // args.seq_len)
     time_read(path, batch_rows)  # warm the page cache
-    read_s = time_read(path, batch_rows)
+    read_s = time_read(path, batch_rows, use_threads=False)  # one thread, as the scan with --jobs 1 decodes
     scan_s, peak, found = time_scan(path)
     print(f"shard: {rows:,} windows x {args.seq_len} = {tokens:,} tokens, {os.path.getsize(path) / 1e6:,.0f} MB")
-    print(f"(a) pyarrow read, batch by batch : {read_s:8.2f} s")
+    print(f"(a) pyarrow read, one thread     : {read_s:8.2f} s")
     print(f"(b) corpuscle scan (--jobs 1)    : {scan_s:8.2f} s  ({tokens / scan_s / 1e6:,.1f} M tokens/s, {found} findings)")
     print(f"(c) ratio scan / read            : {scan_s / read_s:8.2f} x")
     print(f"(d) peak memory of the scan      : {peak / 2**20:8.0f} MiB")
