@@ -90,6 +90,8 @@ _MIX2 = 0x94D049BB133111EB
 # times DEFAULT_CHUNK shingles is 1 MiB of uint32, which stays in a core's L2
 # cache while the multiply, the add and the per-window minimum pass over it.
 _PERM_BLOCK = 16
+# Tokens of the windows hashed per group in shingle_hashes: 64Ki tokens make about 1.5 MiB of scratch.
+_SHINGLE_TOKENS = 1 << 16
 # UTF-8 bytes of words hashed per step of the text path (bounds scratch memory).
 _WORD_CHUNK_BYTES = 1 << 22
 _NON_WORD = f"[^{WORD_CLASS}]+"
@@ -125,8 +127,11 @@ def shingle_hashes(values, offsets, n: int = DEFAULT_N) -> tuple[np.ndarray, np.
     flat and in window order, and int64 offsets with ``hashes[shingle_offsets[i]:
     shingle_offsets[i + 1]]`` belonging to window ``i``. A window of length
     ``L >= n`` has ``L - n + 1`` shingles, a window of ``1 <= L < n`` one
-    shingle of the whole window, an empty window none. Scratch memory is
-    about 24 bytes per token, so pass batches rather than whole shards.
+    shingle of the whole window, an empty window none. The windows are hashed
+    in groups of about :data:`_SHINGLE_TOKENS` tokens, so the scratch arrays
+    (about 24 bytes per token of a group) stay in a core's cache: on a batch of
+    millions of tokens, numpy passes over whole arrays would be bound by memory
+    bandwidth, which the processes of a parallel scan share.
     """
     _check_n(n)
     values = np.asarray(values)
@@ -137,15 +142,28 @@ def shingle_hashes(values, offsets, n: int = DEFAULT_N) -> tuple[np.ndarray, np.
         )
     offsets = _check_offsets(offsets, len(values), "offsets")
     lengths = np.diff(offsets)
-    first = int(offsets[0])
-    tokens = mix64(values[first : int(offsets[-1])].astype(np.uint64))
-
-    is_long = lengths >= n
-    is_short = (lengths > 0) & ~is_long
-    counts = np.where(is_long, lengths - n + 1, is_short.astype(np.int64))
+    counts = np.where(lengths >= n, lengths - n + 1, (lengths > 0).astype(np.int64))
     shingle_offsets = np.zeros(len(lengths) + 1, dtype=np.int64)
     np.cumsum(counts, out=shingle_offsets[1:])
     hashes = np.empty(int(shingle_offsets[-1]), dtype=np.uint32)
+    # Groups of whole windows: a cut at the first window starting at or after each multiple of the group size.
+    first = int(offsets[0])
+    marks = first + np.arange(_SHINGLE_TOKENS, int(offsets[-1]) - first, _SHINGLE_TOKENS)
+    cuts = np.unique(np.concatenate(([0], np.searchsorted(offsets, marks), [len(lengths)])))
+    for w0, w1 in zip(cuts[:-1].tolist(), cuts[1:].tolist()):
+        _shingle_group(values, offsets[w0:w1 + 1], lengths[w0:w1], counts[w0:w1], n,
+                       hashes[shingle_offsets[w0]:shingle_offsets[w1]])
+    return hashes, shingle_offsets
+
+
+def _shingle_group(values, offsets, lengths, counts, n: int, out: np.ndarray) -> None:
+    """The shingle hashes of consecutive windows (``offsets`` into ``values``), written to ``out``."""
+    first = int(offsets[0])
+    tokens = mix64(values[first : int(offsets[-1])].astype(np.uint64))
+    is_long = lengths >= n
+    is_short = (lengths > 0) & ~is_long
+    local = np.zeros(len(lengths) + 1, dtype=np.int64)
+    np.cumsum(counts, out=local[1:])
 
     if is_long.any():
         starts = len(tokens) - n + 1
@@ -158,7 +176,7 @@ def shingle_hashes(values, offsets, n: int = DEFAULT_N) -> tuple[np.ndarray, np.
         inside = np.where(is_long, counts, 0)
         pattern = np.tile(np.array([True, False]), len(lengths))
         valid = np.repeat(pattern, np.column_stack((inside, lengths - inside)).ravel())
-        hashes[np.repeat(is_long, counts)] = _finish(full[valid[:starts]])
+        out[np.repeat(is_long, counts)] = _finish(full[valid[:starts]])
 
     if is_short.any():
         short = np.flatnonzero(is_short)
@@ -168,9 +186,7 @@ def shingle_hashes(values, offsets, n: int = DEFAULT_N) -> tuple[np.ndarray, np.
         for k in range(n - 1):
             live = size > k
             partial[live] = partial[live] * np.uint64(POLY) + tokens[start[live] + k]
-        hashes[shingle_offsets[short]] = _finish(partial)
-
-    return hashes, shingle_offsets
+        out[local[short]] = _finish(partial)
 
 
 def shingle_hash(shingle) -> int:

@@ -94,7 +94,9 @@ def test_shingle_hash_follows_its_documented_definition():
     "dtype, low, high",
     [(np.int32, -200, 50_000), (np.uint16, 0, 2**16), (np.uint64, 2**63, 2**64 - 1), (np.int64, -(2**62), 2**62)],
 )
-def test_shingle_hashes_equal_the_scalar_hash(n, dtype, low, high):
+@pytest.mark.parametrize("group", [minhash._SHINGLE_TOKENS, 7, 50])  # windows hashed a few at a time, or one by one
+def test_shingle_hashes_equal_the_scalar_hash(n, dtype, low, high, group, monkeypatch):
+    monkeypatch.setattr(minhash, "_SHINGLE_TOKENS", group)
     rng = np.random.default_rng(n)
     lengths = varied_lengths(rng, n, 80)
     values, offsets = random_windows(rng, lengths, low, high, dtype)
