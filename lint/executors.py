@@ -301,6 +301,9 @@ class DaskExecutor:
                     # No dashboard; the scheduler's HTTP server (health checks) on a free loopback port, not 8787.
                     scheduler_kwargs={"dashboard_address": "127.0.0.1:0"})
                 self.client = distributed.Client(self._cluster, timeout=self.timeout)
+                # One task at a time per worker process, one core each: Arrow decodes with one thread, as in the
+                # local pool (its own pool would have the workers compete for the same cores).
+                self.client.run(_one_arrow_thread)
             else:
                 self.client = distributed.Client(self.address, timeout=self.timeout)
         except (OSError, TimeoutError, ValueError, RuntimeError) as exc:  # RuntimeError: a worker did not start

@@ -396,3 +396,14 @@ def test_an_unreachable_scheduler_is_a_usage_error():
         DaskExecutor(" ")
     with pytest.raises(ValueError, match="jobs must be"):
         DaskExecutor("local", jobs=0)
+
+
+def _arrow_threads() -> int:
+    import pyarrow
+
+    return pyarrow.cpu_count()
+
+
+def test_a_local_cluster_worker_decodes_with_one_arrow_thread(cluster):
+    """Each worker of --cluster local runs one task at a time on one core, as a process of the local pool does."""
+    assert sorted(cluster.client.run(_arrow_threads).values()) == [1, 1]
