@@ -37,14 +37,15 @@ Content hash (``exact-duplicate``, and ``near-duplicate`` to fold exact copies)
 Near-duplicates
     Each window's shingles (``n`` consecutive tokens, or ``n`` consecutive words after lowercasing; a window
     shorter than ``n`` is one shingle) get a MinHash signature of ``num_perm`` values (:mod:`lint.minhash`), cut
-    into ``b`` bands of ``r`` values with ``(b, r) = optimal_bands(threshold, num_perm)``. Per shard the state
-    keeps ``b`` band keys, a signature digest, the content hash, the row and the length of every window -- O(b)
-    per window -- while the signatures themselves go to a temporary ``.npy`` file (see :class:`SignatureSpill`).
-    Every window has a global id in scan order (the shard's offset plus its index within the shard). The band
-    keys are grouped by key in a partitioned shuffle (the rule is ``keyed``, see :mod:`lint.rule`): ``partition``
-    splits a shard's keys by key modulo the number of partitions, and ``reduce_partition`` groups one partition's
-    keys from all shards (:func:`lint.lsh.partition_candidates`) and verifies its candidate pairs by their
-    estimated Jaccard similarity (signatures read back from the files by memory map, a chunk of pairs at a time).
+    into ``b`` bands of ``r`` values with ``(b, r) = optimal_bands(threshold, num_perm)``. The signatures go to a
+    temporary ``.npy`` file per shard (see :class:`SignatureSpill`); at the end of the shard the ``b`` band keys
+    and a signature digest of every window are made from it into a second file (:class:`BandSpill`), which the
+    state holds as memory maps. Every window has a global id in scan order (the shard's offset plus its index
+    within the shard). The band keys are grouped by key in a partitioned shuffle (the rule is ``keyed``, see
+    :mod:`lint.rule`): ``partition`` splits a shard's keys by key modulo the number of partitions, and
+    ``reduce_partition`` groups one partition's keys from all shards (:func:`lint.lsh.partition_candidates`) and
+    verifies its candidate pairs by their estimated Jaccard similarity (signatures read back from the files a chunk
+    of pairs at a time, see :func:`read_rows`).
     Locally this runs in one process; on a cluster the keys stay on the workers and only the candidate pairs come
     back. The reduce step (``corpus``) folds exact copies into their first copy (a pair is kept when both ends
     are first copies), counts each pair once, and joins the pairs at or above the threshold into clusters
@@ -66,18 +67,30 @@ Temporary files
     rule: a shard's file is written by the worker that scans it and read by the worker that reduces a partition,
     so on a cluster of several machines ``signature_folder`` must be a folder that every worker (and the process
     that starts the scan, which removes it) mounts at the same path. A local process pool or a single-machine
-    cluster needs nothing. Band keys waiting for the reduce stay in memory up to ``memory_limit_mb`` (default 1024)
-    megabytes; past it they go to ``.npy`` files in the same folder and are read back by memory map (see
+    cluster needs nothing. The band files lie in the same folder (8 bytes per band and window, beside the
+    signatures' 4 bytes per permutation and window). The entries of the shuffle (window, band key, digest; 24 bytes
+    each) are picked from them partition by partition; handed over in memory up to ``memory_limit_mb`` (default
+    1024) megabytes, past it they go to ``.npy`` files in the same folder and are read back by memory map (see
     :meth:`NearDuplicate._spill`).
+
+Memory
+    What a scan holds grows with the number of windows only by what the corpus-wide steps need of each window:
+    the row (4 bytes while rows fit in 32 bits), the length (4), the domain (1) and the content hash (16) -- 25
+    bytes per window, held once when both rules run (they share the arrays of each batch, see :func:`_joined`).
+    The band keys and digests stay on disk; the reduce reads them a block or a partition at a time (a partition's
+    entries are 24 bytes per band key that falls into it, about ``24 * b / partitions`` bytes per window), and the
+    grouping of exact copies (:class:`ScanWindows`) adds about 30 bytes per window while it runs. Everything else
+    (shingle hashes, signatures of a batch, signature blocks read back, finer partitions of the reduce) is bounded
+    by the constants below, whatever the size of a shard.
 """
 from __future__ import annotations
 
 import copy
-import dataclasses
 import os
 import shutil
 import struct
 import tempfile
+import threading
 import uuid
 import weakref
 from dataclasses import dataclass
@@ -108,8 +121,18 @@ _HASH_CHUNK = 1 << 20
 _KEY_TABLE = 1 << 16
 # Windows per step of the MinHash signatures in feed (bounds the signature matrix of a batch).
 _SIGNATURE_WINDOWS = 8192
+# Tokens (or text bytes) shingled per step in feed (bounds the scratch memory of the shingle hashes to ~10 MiB).
+_SHINGLE_VALUES = 1 << 18
 # Candidate pairs verified per step in corpus (bounds the signatures read back at once).
 _VERIFY_PAIRS = 1 << 15
+# Rows of a signature or band file read back at once (8 MiB of signatures at num_perm 128): a block is one memory
+# map in read_rows (the file's pages that a read touches count as the process's memory while they are mapped) and
+# one buffer in npy_blocks.
+_VERIFY_BLOCK_ROWS = 1 << 14
+# Windows whose band keys are sorted into partitions per step (bounds the scratch memory of a partition's entries).
+_PARTITION_WINDOWS = 1 << 14
+# Band-key entries grouped into buckets per step of a partition's reduce (bounds its scratch memory, ~14 MiB).
+_REDUCE_ENTRIES = 1 << 17
 # Lanes of the content hash; each keeps 32 bits.
 _LANES = 4
 _KEY_SEED = 0x5EED_C0DE_D0C5_F00D
@@ -204,14 +227,16 @@ def hex_digest(content: np.ndarray) -> str:
 
 @dataclass
 class Windows:
-    """The non-empty windows of one batch: batch-local index, shard row, length (tokens or UTF-8 bytes) and
-    content hash of each; ``domain`` says whether they are token rows or text documents."""
+    """The non-empty windows of one batch: batch-local index, shard row, length (tokens or UTF-8 bytes), content
+    hash and domain of each; ``domain`` says whether they are token rows or text documents. Rows and lengths are
+    uint32 when they fit (always, but in shards of over 2**32 rows or windows of over 2**32 tokens or bytes)."""
 
     domain: int
     local: np.ndarray
     rows: np.ndarray
     lengths: np.ndarray
     content: np.ndarray
+    domains: np.ndarray
 
 
 _WINDOWS_CACHE: "weakref.WeakKeyDictionary[Batch, dict]" = weakref.WeakKeyDictionary()
@@ -249,7 +274,8 @@ def _windows(batch: Batch, settings) -> Windows:
         width = np.int64 if pat.is_large_string(array.type) else np.int32
         buffers = array.buffers()
         if len(array) == 0 or buffers[1] is None:
-            return Windows(TEXT, *(np.zeros(0, np.int64),) * 3, np.zeros((0, 2), np.uint64))
+            return Windows(TEXT, np.zeros(0, np.int64), np.zeros(0, np.uint32), np.zeros(0, np.uint32),
+                           np.zeros((0, 2), np.uint64), np.zeros(0, np.uint8))
         offsets = np.frombuffer(buffers[1], dtype=width)[array.offset:array.offset + len(array) + 1].astype(np.int64)
         values = np.frombuffer(buffers[2], dtype=np.uint8) if buffers[2] is not None else np.zeros(0, np.uint8)
         lengths = np.diff(offsets)
@@ -257,7 +283,8 @@ def _windows(batch: Batch, settings) -> Windows:
             lengths[~pc.is_valid(array).to_numpy(zero_copy_only=False)] = 0  # Arrow allows bytes under a null
     local = np.flatnonzero(lengths > 0)
     content = content_hashes(values, offsets[local], offsets[local + 1], domain)
-    return Windows(domain, local, batch.rows[local], lengths[local].astype(np.int64), content)
+    return Windows(domain, local, _narrow(batch.rows[local]), _narrow(lengths[local]), content,
+                   np.full(len(local), domain, dtype=np.uint8))
 
 
 # -- signatures on disk -----------------------------------------------------------------------------------------
@@ -275,29 +302,33 @@ class SignatureSpill:
     """
 
     HEADER_BYTES = 128
+    DTYPE = "<u4"
+    PREFIX = "signatures-"
+    WHAT = "MinHash signatures"
 
     def __init__(self, folder: str, num_perm: int):
         try:
             os.makedirs(folder, mode=0o700, exist_ok=True)
-            fd, self.path = tempfile.mkstemp(prefix="signatures-", suffix=".npy", dir=folder)
+            fd, self.path = tempfile.mkstemp(prefix=self.PREFIX, suffix=".npy", dir=folder)
         except OSError as exc:
-            raise OSError(f"cannot write MinHash signatures under {folder} ({exc.strerror or exc}); set TMPDIR to a "
-                          f"writable folder with room for {4 * num_perm} bytes per window") from None
+            raise OSError(f"cannot write {self.WHAT} under {folder} ({exc.strerror or exc}); set TMPDIR to a "
+                          f"writable folder with room for {np.dtype(self.DTYPE).itemsize * num_perm} bytes per "
+                          "window") from None
         self.num_perm = num_perm
         self.windows = 0
         self._file = os.fdopen(fd, "wb")
         self._file.write(bytes(self.HEADER_BYTES))
 
     def append(self, rows: np.ndarray) -> None:
-        rows = np.ascontiguousarray(rows, dtype="<u4")
+        rows = np.ascontiguousarray(rows, dtype=self.DTYPE)
         if rows.ndim != 2 or rows.shape[1] != self.num_perm:
-            raise ValueError(f"signatures must have shape (windows, {self.num_perm}), got {rows.shape}")
+            raise ValueError(f"{self.WHAT} must have shape (windows, {self.num_perm}), got {rows.shape}")
         self._file.write(rows.data)
         self.windows += len(rows)
 
     def close(self) -> str:
         """Write the header and close the file; returns its path."""
-        header = {"descr": "<u4", "fortran_order": False, "shape": (self.windows, self.num_perm)}
+        header = {"descr": self.DTYPE, "fortran_order": False, "shape": (self.windows, self.num_perm)}
         text = repr(header).encode("latin1")
         text = text.ljust(self.HEADER_BYTES - 10 - 1) + b"\n"
         self._file.seek(0)
@@ -306,20 +337,200 @@ class SignatureSpill:
         return self.path
 
 
+class BandSpill(SignatureSpill):
+    """The band keys and the signature digest of every window of one shard, in a ``.npy`` file of the same make:
+    uint64 rows of ``bands + 1`` values, the digest last (see :meth:`NearDuplicate.end`)."""
+
+    DTYPE = "<u8"
+    PREFIX = "bands-"
+    WHAT = "LSH band keys"
+
+
+def _npy_layout(path: str) -> tuple[tuple, np.dtype, int]:
+    """``(shape, dtype, offset of the data)`` of the 2-D C-order array in the ``.npy`` file ``path`` (NPY format
+    1.0 or 2.0, read with NumPy's own header parser)."""
+    with open(path, "rb") as fh:
+        version = np.lib.format.read_magic(fh)
+        if version == (1, 0):
+            shape, fortran, dtype = np.lib.format.read_array_header_1_0(fh)
+        elif version == (2, 0):
+            shape, fortran, dtype = np.lib.format.read_array_header_2_0(fh)
+        else:
+            raise ValueError(f"{path}: .npy format version {version} is not supported; expected 1.0 or 2.0")
+        start = fh.tell()
+    if len(shape) != 2 or fortran:
+        raise ValueError(f"{path}: expected a 2-D array in C order, got shape {shape}")
+    return shape, dtype, start
+
+
+def read_rows(path: str, rows: np.ndarray) -> np.ndarray:
+    """Rows ``rows`` (sorted, distinct) of the 2-D array in the ``.npy`` file ``path``, as :func:`np.load` gives
+    them.
+
+    The file is memory-mapped one block of :data:`_VERIFY_BLOCK_ROWS` rows at a time, and only where rows are asked
+    for: pages of a file that a process has mapped count in its resident memory while the map lasts, so one map of
+    the whole file would make the scan's peak memory grow with the shard (up to the size of its signature file);
+    block by block it grows by one block at most. The loop runs once per block that holds asked-for rows."""
+    shape, dtype, start = _npy_layout(path)
+    rows = np.asarray(rows, dtype=np.int64)
+    out = np.empty((len(rows), shape[1]), dtype=dtype)
+    if len(rows) == 0 or shape[1] == 0:
+        return out
+    if rows[0] < 0 or rows[-1] >= shape[0]:
+        raise IndexError(f"{path}: rows {int(rows[0])} to {int(rows[-1])} asked for, the file has {shape[0]}")
+    blocks = rows // _VERIFY_BLOCK_ROWS
+    cuts = np.flatnonzero(blocks[1:] != blocks[:-1]) + 1
+    row_bytes = shape[1] * dtype.itemsize
+    for a, b in zip([0, *cuts.tolist()], [*cuts.tolist(), len(rows)]):
+        first, last = int(rows[a]), int(rows[b - 1])
+        mapped = np.memmap(path, dtype=dtype, mode="r", offset=start + first * row_bytes,
+                           shape=(last - first + 1, shape[1]))
+        out[a:b] = mapped[rows[a:b] - first]
+        del mapped
+    return out
+
+
+def npy_blocks(path: str):
+    """The rows of the 2-D array in the ``.npy`` file ``path`` in order, :data:`_VERIFY_BLOCK_ROWS` at a time:
+    ``(index of the first row, block)``, read into one buffer that the next block overwrites."""
+    shape, dtype, start = _npy_layout(path)
+    buffer = np.empty((min(shape[0], _VERIFY_BLOCK_ROWS), shape[1]), dtype=dtype)
+    with open(path, "rb") as fh:
+        fh.seek(start)
+        for lo in range(0, shape[0], _VERIFY_BLOCK_ROWS):
+            block = buffer[:min(_VERIFY_BLOCK_ROWS, shape[0] - lo)]
+            if fh.readinto(block.data) != block.nbytes:
+                raise OSError(f"{path} ends before its {shape[0]} rows; it was cut or changed during the scan")
+            yield lo, block
+
+
 # -- the shuffle of band keys ----------------------------------------------------------------------------------
 
 
-@dataclass
 class BandPiece:
-    """One shard's band keys that fall into one partition: an entry per (window, band), with the window's index in
-    the shard and its signature digest; ``windows`` is the shard's count of windows (for global ids) and
-    ``signatures`` the path of its signature file."""
+    """One shard's band keys that fall into one partition: an entry per (window, band) -- the window's index in the
+    shard (``window``, int64), the band key (``keys``, uint64) and the window's signature digest (``digests``,
+    uint64), in window then band order; ``windows`` is the shard's count of windows (for global ids) and
+    ``signatures`` the path of its signature file.
 
-    windows: int
-    window: np.ndarray
-    keys: np.ndarray
-    digests: np.ndarray
-    signatures: str | None
+    :meth:`NearDuplicate.partition` makes a shard's pieces as views of its band keys (a :class:`ShardBands` and a
+    partition number): a piece picks its entries when they are asked for (:meth:`entries`, a chunk of windows at a
+    time) and does not keep them, so the pieces waiting in memory for the reduce add nothing to the band keys the
+    shard's state holds. A piece that is pickled -- sent to the process that reduces its partition -- carries its
+    own entries only. A piece made with ``entries`` holds them (e.g. memory maps of spilled files)."""
+
+    def __init__(self, windows: int, signatures: str | None, entries: tuple | None = None,
+                 source: "ShardBands | None" = None, part: int = 0):
+        if (entries is None) == (source is None):
+            raise ValueError("a BandPiece takes either its entries or the ShardBands it picks them from")
+        self.windows = windows
+        self.signatures = signatures
+        self._entries = entries
+        self._source = source
+        self._part = part
+
+    def entries(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``(window, keys, digests)`` of the piece's entries."""
+        if self._entries is not None:
+            return self._entries
+        return self._source.pick(self._part)
+
+    @property
+    def count(self) -> int:
+        """The number of entries (without picking them)."""
+        return len(self._entries[0]) if self._entries is not None else int(self._source.counts[self._part])
+
+    @property
+    def nbytes(self) -> int:
+        """Bytes of the entries once picked: 8 each for window, key and digest."""
+        return sum(a.nbytes for a in self._entries) if self._entries is not None else 24 * self.count
+
+    window = property(lambda self: self.entries()[0])
+    keys = property(lambda self: self.entries()[1])
+    digests = property(lambda self: self.entries()[2])
+
+    def __getstate__(self):
+        return {"windows": self.windows, "signatures": self.signatures, "_entries": self.entries(),
+                "_source": None, "_part": 0}
+
+    def __setstate__(self, state):
+        self.__dict__.update(state)
+
+
+class ShardBands:
+    """The band keys of one shard's windows, to be cut into partitions by key modulo ``parts``: ``keys`` (windows,
+    bands) and ``digests`` as in the shard's state, ``firsts`` the sorted indices of the windows that take part
+    (None: all of them). ``counts[p]`` is the number of entries of partition ``p``.
+
+    When ``keys`` and ``digests`` are the memory maps of a band file that :meth:`NearDuplicate.end` made, the file
+    is read instead, a block at a time into one buffer: reading the maps would make their pages count in this
+    process's memory for as long as the state lives. Other arrays (e.g. a state that came from another process)
+    are read as they are."""
+
+    def __init__(self, keys: np.ndarray, digests: np.ndarray, firsts: np.ndarray | None, parts: int):
+        self.path = _band_file(keys, digests)
+        self.keys, self.digests = (None, None) if self.path else (keys, digests)
+        self.bands, self.firsts, self.parts = keys.shape[1], firsts, parts
+        self.counts = np.zeros(parts, dtype=np.int64)
+        for _, chunk, _ in self._chunks():
+            self.counts += np.bincount((chunk % np.uint64(parts)).ravel().astype(np.intp), minlength=parts)
+
+    def _chunks(self):
+        """``(window indices, their band keys, their digests)``, a chunk of windows at a time (views that the next
+        chunk may overwrite)."""
+        firsts = self.firsts
+        if self.path is not None:
+            for lo, block in npy_blocks(self.path):
+                if firsts is None:
+                    yield np.arange(lo, lo + len(block)), block[:, :self.bands], block[:, self.bands]
+                    continue
+                a, z = np.searchsorted(firsts, [lo, lo + len(block)])
+                rows = block[firsts[a:z] - lo]
+                yield firsts[a:z], rows[:, :self.bands], rows[:, self.bands]
+            return
+        total = len(self.keys) if firsts is None else len(firsts)
+        for lo in range(0, total, _PARTITION_WINDOWS):
+            hi = min(total, lo + _PARTITION_WINDOWS)
+            if firsts is None:
+                yield np.arange(lo, hi), self.keys[lo:hi], self.digests[lo:hi]
+            else:
+                yield firsts[lo:hi], self.keys[firsts[lo:hi]], self.digests[firsts[lo:hi]]
+
+    def pick(self, part: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``(window, keys, digests)`` of the entries whose key is ``part`` modulo ``parts``, in window then band
+        order."""
+        count = int(self.counts[part])
+        window = np.empty(count, dtype=np.int64)
+        keys = np.empty(count, dtype=np.uint64)
+        digests = np.empty(count, dtype=np.uint64)
+        at = 0
+        for windows, chunk, chunk_digests in self._chunks():
+            which, band = np.nonzero(chunk % np.uint64(self.parts) == np.uint64(part))
+            end = at + len(which)
+            window[at:end], keys[at:end], digests[at:end] = windows[which], chunk[which, band], chunk_digests[which]
+            at = end
+        return window, keys, digests
+
+
+def _band_file(keys: np.ndarray, digests: np.ndarray) -> str | None:
+    """The path of the band file when ``keys`` and ``digests`` are its memory maps as :meth:`NearDuplicate.end`
+    makes them -- all rows; the key columns, and the digest column after them -- else None."""
+    if not (isinstance(keys, np.memmap) and isinstance(digests, np.memmap)) or keys.ndim != 2 or \
+            not keys.filename or keys.filename != digests.filename:
+        return None
+    try:
+        shape, dtype, _ = _npy_layout(keys.filename)
+    except (OSError, ValueError):
+        return None
+    row = dtype.itemsize * shape[1]
+    if dtype != np.dtype("<u8") or keys.dtype != dtype or digests.dtype != dtype or \
+            shape != (len(keys), keys.shape[1] + 1) or digests.shape != (shape[0],) or \
+            keys.strides != (row, dtype.itemsize) or digests.strides != (row,):
+        return None
+    start = keys.__array_interface__["data"][0]
+    if digests.__array_interface__["data"][0] - start != dtype.itemsize * keys.shape[1]:
+        return None
+    return keys.filename
 
 
 @dataclass
@@ -339,69 +550,97 @@ class NearPartial:
 class ScanWindows:
     """The windows of all shards of a scan, with global ids in scan order (shard order, then row).
 
-    Window ``i`` of the shard at position ``s`` has id ``offsets[s] + i``. ``first_copy[id]`` is the id of the
-    first window with the same content hash, so a window is an exact copy of an earlier one when
-    ``first_copy[id] != id``. ``order`` sorts the ids by content, then id; ``group_starts`` and ``group_sizes``
-    give the start (in ``order``) and size of every run of equal content.
+    Window ``i`` of the shard at position ``s`` has id ``offsets[s] + i``; :meth:`shard_of` gives the position back.
+    ``first_copy[id]`` is the id of the first window with the same content hash, so a window is an exact copy of an
+    earlier one when ``first_copy[id] != id``. ``order`` sorts the ids by content, then id; ``group_starts`` and
+    ``group_sizes`` give the start (in ``order``) and size of every run of equal content. Ids are int32 when the
+    scan has fewer than 2**31 windows; a scan of one shard uses the shard's arrays as they are (no copy).
     """
 
     def __init__(self, states: list[ShardState]):
         self.states = states
-        counts = [len(st.rows) for st in states]
         self.offsets = np.zeros(len(states) + 1, dtype=np.int64)
-        np.cumsum(counts, out=self.offsets[1:])
+        np.cumsum([len(st.rows) for st in states], out=self.offsets[1:])
         self.count = int(self.offsets[-1])
+        index = np.int32 if self.count < 2 ** 31 else np.int64
 
-        def joined(name, shape, dtype):
-            parts = [getattr(st, name) for st in states]
-            return np.concatenate(parts) if parts else np.zeros(shape, dtype=dtype)
+        def joined(name, empty):
+            return _joined([getattr(st, name) for st in states], empty)
 
-        self.rows = joined("rows", 0, np.int64)
-        self.lengths = joined("lengths", 0, np.int64)
-        self.domains = joined("domains", 0, np.uint8)
-        self.content = joined("content", (0, 2), np.uint64)
-        self.shard_of = np.repeat(np.arange(len(states)), counts)
+        self.rows = joined("rows", np.zeros(0, np.uint32))
+        self.lengths = joined("lengths", np.zeros(0, np.uint32))
+        self.domains = joined("domains", np.zeros(0, np.uint8))
+        self.content = joined("content", np.zeros((0, 2), np.uint64))
         # Exact copies: sort by content, then id; a run of equal content is one group, its first id the first copy.
-        self.order = np.lexsort((np.arange(self.count), self.content[:, 1], self.content[:, 0]))
-        ordered = self.content[self.order]
-        new = np.ones(self.count, dtype=bool)
-        new[1:] = np.any(ordered[1:] != ordered[:-1], axis=1)
-        self.group_starts = np.flatnonzero(new)
-        self.group_sizes = np.diff(np.append(self.group_starts, self.count))
-        first = self.order[self.group_starts]
-        self.first_copy = np.empty(self.count, dtype=np.int64)
-        self.first_copy[self.order] = np.repeat(first, self.group_sizes)
+        order, new = _content_order(self.content)
+        self.order = order.astype(index)
+        del order
+        self.group_starts = np.flatnonzero(new).astype(index)
+        del new
+        self.group_sizes = np.diff(self.group_starts, append=index(self.count))
+        self.first_copy = np.empty(self.count, dtype=index)
+        self.first_copy[self.order] = np.repeat(self.order[self.group_starts], self.group_sizes)
+
+    def shard_of(self, windows: np.ndarray) -> np.ndarray:
+        """The position of each window's shard (in ``states``)."""
+        return np.searchsorted(self.offsets, windows, side="right") - 1
 
     def uri(self, window: int) -> str:
-        return self.states[int(self.shard_of[window])].uri
+        return self.states[int(self.shard_of(window))].uri
 
     def drop_entries(self, windows: np.ndarray) -> list[dict]:
         """``{"uri", "row"}`` of each window id (in the order given)."""
         uris = [st.uri for st in self.states]
-        return [{"uri": uris[s], "row": r} for s, r in zip(self.shard_of[windows].tolist(),
+        return [{"uri": uris[s], "row": r} for s, r in zip(self.shard_of(windows).tolist(),
                                                               self.rows[windows].tolist())]
 
-    def sizes(self, windows: np.ndarray) -> dict:
-        """Token and text-byte totals of the given windows."""
-        tokens = self.domains[windows] == TOKENS
-        return {"tokens": int(self.lengths[windows][tokens].sum()),
-                "textBytes": int(self.lengths[windows][~tokens].sum())}
+    def sizes(self, windows: np.ndarray | None = None) -> dict:
+        """Token and text-byte totals of the given windows (default: all)."""
+        lengths, domains = (self.lengths, self.domains) if windows is None else \
+            (self.lengths[windows], self.domains[windows])
+        tokens = domains == TOKENS
+        return {"tokens": int(lengths[tokens].sum(dtype=np.int64)),
+                "textBytes": int(lengths[~tokens].sum(dtype=np.int64))}
 
     def group_finding(self, rule: Rule, members: np.ndarray, kind: str, message: str, cap: int,
                       **evidence) -> Finding:
         """A finding over windows of possibly several shards: instances carry the uri; members in id order."""
         members = np.sort(members)
         shown = members[:cap]
-        shards = np.unique(self.shard_of[members])
+        shards = np.unique(self.shard_of(members))
         single = self.states[int(shards[0])].shard if len(shards) == 1 else None
         finding = Finding(rule.id, rule.level, message, single.uri if single else None, kind=kind,
-                          count=int(len(members)), rows=self.rows[shown].copy(),
+                          count=int(len(members)), rows=self.rows[shown].astype(np.int64),
                           offsets=np.full(len(shown), -1, dtype=np.int64),
-                          instance_uris=[self.states[s].uri for s in self.shard_of[shown].tolist()],
+                          instance_uris=[self.states[s].uri for s in self.shard_of(shown).tolist()],
                           truncated=len(members) > len(shown), evidence=evidence)
         if single is not None and single.line_based:
             finding.start_line = int(self.rows[members[0]]) + 1
         return finding
+
+
+def _content_order(content: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``(order, new)``: ``order`` sorts windows by content hash, equal contents in window order (the sort is
+    stable); ``new[k]`` says whether position ``k`` of ``order`` starts a run of equal content."""
+    order = np.lexsort((content[:, 1], content[:, 0]))
+    new = np.empty(len(order), dtype=bool)
+    new[:1] = True
+    for lane in (0, 1):  # one lane at a time: a sorted copy of one column, not of both
+        column = content[order, lane]
+        if lane == 0:
+            np.not_equal(column[1:], column[:-1], out=new[1:])
+        else:
+            new[1:] |= column[1:] != column[:-1]
+        del column
+    return order, new
+
+
+def _first_copies(content: np.ndarray) -> np.ndarray | None:
+    """Sorted indices of the windows whose content no earlier window has; None when that is every window."""
+    order, new = _content_order(content)
+    if new.all():
+        return None
+    return np.sort(order[new])
 
 
 def _unit(domain: int) -> tuple[str, str]:
@@ -415,17 +654,66 @@ def _size_evidence(domain: int, total: int, redundant: int) -> dict:
     return {"textBytes": total, "redundantTextBytes": redundant}
 
 
-def _fractions(scan: ScanWindows, duplicates: np.ndarray, windows: np.ndarray) -> dict:
-    """Counts and shares of duplicate windows, tokens and text bytes among ``windows``."""
-    whole, dup = scan.sizes(windows), scan.sizes(duplicates)
+def _fractions(scan: ScanWindows, duplicates: np.ndarray) -> dict:
+    """Counts and shares of duplicate windows, tokens and text bytes among all windows of the scan."""
+    whole, dup = scan.sizes(), scan.sizes(duplicates)
     return {
-        "windows": int(len(windows)), "duplicateWindows": int(len(duplicates)),
-        "windowFraction": share(len(duplicates), len(windows)),
+        "windows": scan.count, "duplicateWindows": int(len(duplicates)),
+        "windowFraction": share(len(duplicates), scan.count),
         "tokens": whole["tokens"], "duplicateTokens": dup["tokens"],
         "tokenFraction": share(dup["tokens"], whole["tokens"]),
         "textBytes": whole["textBytes"], "duplicateTextBytes": dup["textBytes"],
         "textByteFraction": share(dup["textBytes"], whole["textBytes"]),
     }
+
+
+def _ranges(bounds: np.ndarray, limit: int):
+    """Consecutive ranges ``(w0, w1)`` of the rows whose values lie between ``bounds[w]`` and ``bounds[w + 1]``:
+    each of at least one row, and of at most ``limit`` values unless its one row has more."""
+    rows = len(bounds) - 1
+    w0 = 0
+    while w0 < rows:
+        w1 = int(np.searchsorted(bounds, int(bounds[w0]) + limit, side="right")) - 1
+        w1 = min(rows, max(w1, w0 + 1))
+        yield w0, w1
+        w0 = w1
+
+
+def _narrow(values: np.ndarray) -> np.ndarray:
+    """Non-negative integers as uint32 when they all fit, else as they are."""
+    if len(values) == 0 or int(values.max()) <= 0xFFFF_FFFF:
+        return values.astype(np.uint32)
+    return values
+
+
+_JOINS: dict = {}
+_JOINS_LOCK = threading.Lock()
+
+
+def _joined(parts: list, empty: np.ndarray) -> np.ndarray:
+    """The arrays of ``parts`` end to end (``empty`` when there are none), emptying the list: one array is returned
+    as it is, and otherwise the parts are let go once the result holds them.
+
+    Joining the very same array objects again (the other duplicate rule ending the same shard) gives the very same
+    result, not a copy: the two rules' per-window arrays are held once. The results are remembered by weak
+    references to them and to their parts (so nothing is kept alive here, and an entry counts only while all its
+    parts are alive: ``id`` values are not reused while their objects live); each process has its own.
+    """
+    if not parts:
+        return empty
+    if len(parts) == 1:
+        return parts.pop()
+    key = tuple(id(part) for part in parts)
+    with _JOINS_LOCK:
+        refs, result = _JOINS.get(key, ((), None))
+        out = result() if result is not None else None
+        if out is None or len(refs) != len(parts) or any(ref() is not part for ref, part in zip(refs, parts)):
+            out = np.concatenate(parts)
+            for stale in [k for k, (rs, r) in _JOINS.items() if r() is None or any(x() is None for x in rs)]:
+                del _JOINS[stale]
+            _JOINS[key] = ([weakref.ref(part) for part in parts], weakref.ref(out))
+    parts.clear()
+    return out
 
 
 def _check_int(rule_id: str, name: str, value, minimum: int, hint: str) -> int:
@@ -457,18 +745,26 @@ class _DuplicateRule(Rule):
         return state
 
     def _keep(self, state, windows: Windows, select: np.ndarray | None = None) -> None:
-        pick = slice(None) if select is None else select
-        state.parts["rows"].append(windows.rows[pick])
-        state.parts["lengths"].append(windows.lengths[pick])
-        state.parts["content"].append(windows.content[pick])
-        state.parts["domains"].append(np.full(len(windows.rows[pick]), windows.domain, dtype=np.uint8))
+        """Keep the rows, lengths, domains and content hashes of the batch's windows (or of ``select`` of them).
+        When all of them are kept, the batch's own arrays are kept: both rules of this module hold the same arrays
+        then, and :meth:`end` joins them into arrays the two states share (see :func:`_joined`)."""
+        names = ("rows", "lengths", "content", "domains")
+        if select is not None and len(select) < len(windows.local):
+            for name in names:
+                state.parts[name].append(getattr(windows, name)[select])
+            return
+        for name in names:
+            state.parts[name].append(getattr(windows, name))
 
     def end(self, state):
         parts = state.__dict__.pop("parts")
-        state.rows = np.concatenate(parts["rows"]) if parts["rows"] else np.zeros(0, np.int64)
-        state.lengths = np.concatenate(parts["lengths"]) if parts["lengths"] else np.zeros(0, np.int64)
-        state.domains = np.concatenate(parts["domains"]) if parts["domains"] else np.zeros(0, np.uint8)
-        state.content = np.concatenate(parts["content"]) if parts["content"] else np.zeros((0, 2), np.uint64)
+        # One array at a time, each list let go as soon as it is joined: the end of a shard briefly holds one
+        # array twice, not the whole state. The arrays may be shared with the other rule's state: they are never
+        # changed in place.
+        state.rows = _joined(parts.pop("rows"), np.zeros(0, np.uint32))
+        state.lengths = _joined(parts.pop("lengths"), np.zeros(0, np.uint32))
+        state.domains = _joined(parts.pop("domains"), np.zeros(0, np.uint8))
+        state.content = _joined(parts.pop("content"), np.zeros((0, 2), np.uint64))
         return state
 
     splittable = True
@@ -526,9 +822,8 @@ class ExactDuplicate(_DuplicateRule):
             findings.append(self._group(scan, members, cap))
         if len(repeated) > len(listed):
             findings.append(self._rest(scan, repeated[len(listed):], cap))
-        copies = np.flatnonzero(scan.first_copy != np.arange(scan.count))
-        metrics = {"exactDuplicates": {"groups": int(len(repeated)), **_fractions(scan, copies,
-                                                                                  np.arange(scan.count))}}
+        copies = np.flatnonzero(scan.first_copy != np.arange(scan.count, dtype=scan.first_copy.dtype))
+        metrics = {"exactDuplicates": {"groups": int(len(repeated)), **_fractions(scan, copies)}}
         return findings, metrics, {DROP_LIST: scan.drop_entries(copies)}
 
     def _group(self, scan: ScanWindows, members: np.ndarray, cap: int) -> Finding:
@@ -607,7 +902,6 @@ class NearDuplicate(_DuplicateRule):
 
     def begin(self, shard, settings):
         state = super().begin(shard, settings)
-        state.parts.update(keys=[], digests=[])
         state.spill = None
         return state
 
@@ -616,35 +910,60 @@ class NearDuplicate(_DuplicateRule):
         n = self.minhash.n
         if windows.domain == TOKENS:
             flat = batch.flat(state.settings.tokens_column)
-            hashes, offsets = shingle_hashes(flat.values, flat.offsets, n)
+            sizes = flat.offsets
+
+            def shingled_hashes(w0, w1):
+                return shingle_hashes(flat.values, flat.offsets[w0:w1 + 1], n)
         else:
             text = document_text(batch, state.settings)
             if text.array is None:
                 return
-            hashes, offsets = word_shingle_hashes(text.array, n)
-        shingled = np.flatnonzero(offsets[1:] > offsets[:-1])  # windows with at least one shingle
-        if len(shingled) == 0:
-            return
-        # Shingled windows are non-empty, so each is one of ``windows``.
-        self._keep(state, windows, np.searchsorted(windows.local, shingled))
-        if state.spill is None:
-            state.spill = SignatureSpill(self.spill_folder, self.minhash.num_perm)
-        for lo in range(0, len(shingled), _SIGNATURE_WINDOWS):
-            chosen = shingled[lo:lo + _SIGNATURE_WINDOWS]
-            first, last = int(chosen[0]), int(chosen[-1])
-            block = signatures(hashes, offsets[first:last + 2], self.minhash.num_perm, self.minhash.seed)
-            block = block[chosen - first]
-            state.spill.append(block)
-            state.parts["keys"].append(band_keys(block, self.bands, self.rows_per_band))
-            state.parts["digests"].append(signature_digests(block))
+            sizes = np.zeros(len(text.array) + 1, dtype=np.int64)
+            np.cumsum(pc.binary_length(text.array).fill_null(0).to_numpy(zero_copy_only=False), out=sizes[1:])
+
+            def shingled_hashes(w0, w1):
+                return word_shingle_hashes(text.array.slice(w0, w1 - w0), n)
+        # Shingles are hashed a range of rows at a time (at least one row, at most about _SHINGLE_VALUES tokens or
+        # text bytes otherwise): their scratch memory is some 40 bytes per token.
+        shingled = []  # windows with at least one shingle, by range
+        for w0, w1 in _ranges(sizes, _SHINGLE_VALUES):
+            hashes, offsets = shingled_hashes(w0, w1)
+            local = np.flatnonzero(offsets[1:] > offsets[:-1])
+            if len(local) == 0:
+                continue
+            if state.spill is None:
+                state.spill = SignatureSpill(self.spill_folder, self.minhash.num_perm)
+            for lo in range(0, len(local), _SIGNATURE_WINDOWS):
+                chosen = local[lo:lo + _SIGNATURE_WINDOWS]
+                first, last = int(chosen[0]), int(chosen[-1])
+                block = signatures(hashes, offsets[first:last + 2], self.minhash.num_perm, self.minhash.seed)
+                state.spill.append(block[chosen - first])
+            shingled.append(local + w0)
+            del hashes, offsets
+        if shingled:
+            # Shingled windows are non-empty, so each is one of ``windows``.
+            self._keep(state, windows, np.searchsorted(windows.local, np.concatenate(shingled)))
 
     def end(self, state):
-        keys, digests = state.parts["keys"], state.parts["digests"]
+        """The shard's band keys and signature digests, made from its signature file once the shard is read.
+
+        They are wanted only by the reduce, so they go to a file of their own (:class:`BandSpill`, a block of
+        signatures at a time) and the state holds read-only memory maps of it (``keys`` and ``digests``), which take
+        no memory until read: :class:`ShardBands` reads the file itself, block by block, rather than the maps. Held
+        in memory, they would be most of what a shard's state holds (8 bytes per band and window, of about 100)."""
         state = super().end(state)
-        state.keys = np.concatenate(keys) if keys else np.zeros((0, self.bands), np.uint64)
-        state.digests = np.concatenate(digests) if digests else np.zeros(0, np.uint64)
         spill = state.__dict__.pop("spill")
         state.signatures_path = spill.close() if spill is not None else None
+        if spill is None or spill.windows == 0:
+            state.keys = np.zeros((0, self.bands), dtype=np.uint64)
+            state.digests = np.zeros(0, dtype=np.uint64)
+            return state
+        bands = BandSpill(self.spill_folder, self.bands + 1)
+        for _, block in npy_blocks(state.signatures_path):
+            bands.append(np.column_stack((band_keys(block, self.bands, self.rows_per_band),
+                                          signature_digests(block))))
+        stored = np.load(bands.close(), mmap_mode="r")
+        state.keys, state.digests = stored[:, :self.bands], stored[:, self.bands]
         return state
 
     # -- the reduce step -------------------------------------------------------------------------------------------
@@ -652,38 +971,27 @@ class NearDuplicate(_DuplicateRule):
     def partition(self, state, parts):
         """Map side of the shuffle: the band keys of the shard's windows, by partition (key modulo ``parts``; the
         keys are mixed hashes, so the low bits spread evenly). A window whose content already appeared earlier in
-        the same shard is left out: it is an exact copy, never a first copy, and the result does not need it."""
+        the same shard is left out: it is an exact copy, never a first copy, and the result does not need it. The
+        pieces are views of the state's band keys (see :class:`BandPiece`): nothing is copied here."""
         slim = copy.copy(state)
         del slim.keys, slim.digests
+        source = ShardBands(state.keys, state.digests, _first_copies(state.content), parts)
         count = len(state.rows)
-        order = np.lexsort((np.arange(count), state.content[:, 1], state.content[:, 0]))
-        new = np.ones(count, dtype=bool)
-        new[1:] = np.any(state.content[order][1:] != state.content[order][:-1], axis=1)
-        windows = np.sort(order[new])
-        keys = state.keys[windows].ravel()
-        window = np.repeat(windows, self.bands)
-        if parts == 1:
-            return slim, self._spill([BandPiece(count, window, keys, state.digests[window], state.signatures_path)])
-        where = (keys % np.uint64(parts)).astype(np.int64)
-        by_part = np.argsort(where, kind="stable")
-        bounds = np.concatenate(([0], np.cumsum(np.bincount(where, minlength=parts))))
-        pieces = []
-        for p in range(parts):
-            pick = by_part[bounds[p]:bounds[p + 1]]
-            pieces.append(BandPiece(count, window[pick], keys[pick], state.digests[window[pick]],
-                                    state.signatures_path))
-        return slim, self._spill(pieces)
+        return slim, self._spill([BandPiece(count, state.signatures_path, source=source, part=p)
+                                  for p in range(parts)])
 
     def _spill(self, pieces: list) -> list:
-        """Bound the band keys held in memory until the reduce (``memory_limit_mb``).
+        """Bound the band keys held for the reduce (``memory_limit_mb``).
 
-        Pieces are kept as they are while the pieces made by this process add up to at most ``memory_limit_mb``
-        megabytes (in a local scan that is every piece of the scan: this process splits every shard's state).
-        Past it, each piece's arrays are written with ``np.save`` to ``.npy`` files in the scan's temporary folder
-        (the one of the signature files, removed with it) and replaced by read-only memory maps of those files, which
-        ``reduce_partition`` reads back. The findings are the same either way.
+        Pieces are kept as they are while the entries of the pieces made by this process add up to at most
+        ``memory_limit_mb`` megabytes at 24 bytes an entry (what they weigh once picked, in the reduce or on their
+        way to another process; until then they are views of the shard's band keys). In a local scan that is every
+        piece of the scan: this process splits every shard's state. Past it, each piece's entries are written with
+        ``np.save`` to ``.npy`` files in the scan's temporary folder (the one of the signature files, removed with
+        it), one piece at a time, and replaced by read-only memory maps of those files, which ``reduce_partition``
+        reads back. The findings are the same either way.
         """
-        size = sum(p.window.nbytes + p.keys.nbytes + p.digests.nbytes for p in pieces)
+        size = sum(piece.nbytes for piece in pieces)
         held = getattr(self, "_held_bytes", 0) + size
         if held <= self.opts["memory_limit_mb"] * 2 ** 20:
             self._held_bytes = held
@@ -691,16 +999,16 @@ class NearDuplicate(_DuplicateRule):
         os.makedirs(self.spill_folder, mode=0o700, exist_ok=True)
         out = []
         for piece in pieces:
-            mapped = {}
-            for name in ("window", "keys", "digests"):
-                values = getattr(piece, name)
+            mapped = []
+            for name, values in zip(("window", "keys", "digests"), piece.entries()):
                 if values.size == 0:  # an empty file cannot be memory-mapped; nothing to hold anyway
+                    mapped.append(values)
                     continue
                 fd, path = tempfile.mkstemp(prefix=f"band-{name}-", suffix=".npy", dir=self.spill_folder)
                 with os.fdopen(fd, "wb") as fh:
                     np.save(fh, values)
-                mapped[name] = np.load(path, mmap_mode="r")
-            out.append(dataclasses.replace(piece, **mapped))
+                mapped.append(np.load(path, mmap_mode="r"))
+            out.append(BandPiece(piece.windows, piece.signatures, entries=tuple(mapped)))
         return out
 
     def reduce_partition(self, pieces):
@@ -708,17 +1016,51 @@ class NearDuplicate(_DuplicateRule):
         estimated Jaccard similarity, the signatures read back from the shards' signature files."""
         offsets = np.zeros(len(pieces) + 1, dtype=np.int64)
         np.cumsum([piece.windows for piece in pieces], out=offsets[1:])
-
-        def joined(name, dtype):
-            parts = [getattr(piece, name) for piece in pieces]
-            return np.concatenate(parts).astype(dtype, copy=False) if parts else np.zeros(0, dtype)
-
-        ids = np.concatenate([piece.window + offsets[s] for s, piece in enumerate(pieces)]) if pieces else \
-            np.zeros(0, np.int64)
-        found = partition_candidates(joined("keys", np.uint64), ids.astype(np.int64), digests=joined("digests",
-                                     np.uint64), max_bucket=self.opts["max_bucket"])
+        # The entries of all pieces, each piece picked and copied into place in turn.
+        total = sum(piece.count for piece in pieces)
+        keys, ids, digests = np.empty(total, np.uint64), np.empty(total, np.int64), np.empty(total, np.uint64)
+        at = 0
+        for s, piece in enumerate(pieces):
+            window, piece_keys, piece_digests = piece.entries()
+            end = at + len(window)
+            np.add(window, offsets[s], out=ids[at:end])
+            keys[at:end], digests[at:end] = piece_keys, piece_digests
+            at = end
+            del window, piece_keys, piece_digests
+        found = self._bucket_candidates(keys, ids, digests)
+        del keys, ids, digests
         similarity = self._verify(found.pairs, offsets, [piece.signatures for piece in pieces])
         return NearPartial(found.pairs, similarity, found.capped_buckets, found.largest_bucket)
+
+    def _bucket_candidates(self, keys: np.ndarray, ids: np.ndarray, digests: np.ndarray) -> Candidates:
+        """:func:`lint.lsh.partition_candidates` of a partition's entries, in finer partitions of at most about
+        :data:`_REDUCE_ENTRIES` entries each when it has more: its scratch memory is several times that of the
+        entries it is given, so it is given a bounded share at a time.
+
+        The finer partitions split by other bits of the key (bits 32 and up modulo their number; the keys are
+        mixed hashes, so these spread evenly too): each bucket still lies wholly in one of them, and windows with
+        identical signatures share all their keys, so the union of their pairs is the partition's pair set (the
+        reasoning of :func:`~lint.lsh.partition_candidates`), made unique here; capped buckets add up and the
+        largest bucket is the largest of any."""
+        max_bucket = self.opts["max_bucket"]
+        finer = -(-len(keys) // _REDUCE_ENTRIES)
+        if finer <= 1:
+            return partition_candidates(keys, ids, digests=digests, max_bucket=max_bucket)
+        which = ((keys >> np.uint64(32)) % np.uint64(finer)).astype(np.min_scalar_type(finer - 1))
+        found, capped, largest = [], 0, 0
+        for q in range(finer):
+            mask = which == q
+            part = partition_candidates(keys[mask], ids[mask], digests=digests[mask], max_bucket=max_bucket)
+            found.append(part.pairs)
+            capped += part.capped_buckets
+            largest = max(largest, part.largest_bucket)
+            del mask, part
+        pairs = np.concatenate(found)
+        del found
+        pairs = pairs[np.lexsort((pairs[:, 1], pairs[:, 0]))]
+        once = np.ones(len(pairs), dtype=bool)
+        once[1:] = np.any(pairs[1:] != pairs[:-1], axis=1)
+        return Candidates(pairs[once], capped, largest)
 
     def corpus(self, states, partials=None):
         try:
@@ -761,7 +1103,7 @@ class NearDuplicate(_DuplicateRule):
         metrics = {"nearDuplicates": {
             "threshold": self.threshold, "bands": self.bands, "rowsPerBand": self.rows_per_band,
             "numPerm": self.minhash.num_perm, "shingleSize": self.minhash.n, "clusters": int(len(heads)),
-            **_fractions(scan, near, ids),
+            **_fractions(scan, near),
             "candidatePairs": int(len(found.pairs)), "verifiedPairs": int(len(pairs)),
             "cappedBuckets": found.capped_buckets, "largestBucket": found.largest_bucket,
         }}
@@ -796,9 +1138,7 @@ class NearDuplicate(_DuplicateRule):
             cuts = np.flatnonzero(np.diff(shard)) + 1
             for a, b in zip(np.concatenate(([0], cuts)).tolist(), np.concatenate((cuts, [len(needed)])).tolist()):
                 s = int(shard[a])
-                stored = np.load(paths[s], mmap_mode="r")  # reads only the rows asked for
-                block[a:b] = stored[needed[a:b] - offsets[s]]
-                del stored
+                block[a:b] = read_rows(paths[s], needed[a:b] - offsets[s])
             similarity[lo:lo + len(chunk)] = estimated_jaccard(block[where[:, 0]], block[where[:, 1]])
         return similarity
 

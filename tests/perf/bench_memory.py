@@ -8,7 +8,8 @@ reads the peak resident memory of that child process (``VmHWM`` from its ``/proc
 unlike ``ru_maxrss`` it does not carry over the peak of the process that started it). The reader reads a batch
 of about ``DEFAULT_BATCH_TOKENS`` tokens at a time, so both peaks should be about equal; what grows with the shard
 is only the per-window state of the duplicate rules (a few dozen bytes per window in memory, the MinHash
-signatures on disk). The shards are deleted afterwards unless ``--keep`` is given.
+signatures and band keys on disk); the last line gives the growth between the smallest and the largest shard in
+bytes per window. The shards are deleted afterwards unless ``--keep`` is given.
 """
 from __future__ import annotations
 
@@ -65,7 +66,7 @@ def main() -> None:
         raise SystemExit(f"not enough room under {folder}: {sum(sizes):,} MB asked, {free / 1e6:,.0f} MB free; "
                          "give smaller --sizes-mb")
     try:
-        lines = []
+        lines, measured = [], []
         for size in sizes:
             path = os.path.join(folder, f"shard-{size}mb.parquet")
             if not os.path.exists(path):
@@ -75,10 +76,17 @@ def main() -> None:
             peak, seconds = peak_of_scan(path, args.only)
             lines.append(f"{os.path.getsize(path) / 1e6:8,.0f} MB  {tokens / 1e6:7,.0f} M tokens  "
                          f"{meta.num_rows:9,} windows  peak {peak / 2**20:7,.0f} MiB  ({seconds:.1f} s)")
+            measured.append((meta.num_rows, peak))
             if not args.keep:
                 os.remove(path)
         print(f"scan with --jobs 1, rules: {args.only or 'all'}")
         print("\n".join(lines))
+        (few, low), (many, high) = min(measured), max(measured)
+        if many > few:
+            # What the peak gained per window the larger shard has more (the per-window state, and noise: the peak
+            # of one run varies by some MiB with the allocators' timing).
+            print(f"growth: {(high - low) / 2**20:+,.0f} MiB for {many - few:,} more windows, "
+                  f"{(high - low) / (many - few):+,.0f} bytes per window")
     finally:
         if not args.keep:
             shutil.rmtree(folder, ignore_errors=True)
