@@ -84,8 +84,59 @@ def _arrow_threads(most: int):
         pyarrow.set_cpu_count(before)
 
 
+class _SharedWork:
+    """Items done by this process and a pool of ``workers`` processes together, results in item order.
+
+    The pool takes items from the front, one more each time one of its processes finishes one (so none waits while
+    work is left); this process takes them from the back, with one Arrow thread, until the two meet.  So this
+    process works while the pool's processes start (the fork server imports the engine first: a few tenths of a
+    second), and ``jobs`` cores are busy with ``jobs - 1`` pool processes.
+    """
+
+    def __init__(self, fn: Callable, items: list, workers: int, context):
+        self.fn, self.items, self.workers, self.context = fn, items, workers, context
+        self.lock = threading.Lock()
+        self.front, self.back = 0, len(items)  # items[front:back] are not taken yet
+        self.futures: dict = {}
+
+    def _take(self, from_back: bool) -> int | None:
+        with self.lock:
+            if self.front >= self.back:
+                return None
+            if from_back:
+                self.back -= 1
+                return self.back
+            self.front += 1
+            return self.front - 1
+
+    def _feed(self, pool) -> None:
+        """Give the pool its next item (from the front), if any is left."""
+        i = self._take(from_back=False)
+        if i is None:
+            return
+        try:
+            future = pool.submit(self.fn, self.items[i])
+        except RuntimeError:  # the pool is shutting down (an error elsewhere): nothing more to give it
+            return
+        self.futures[i] = future
+        future.add_done_callback(lambda _: self._feed(pool))
+
+    def results(self) -> Iterator:
+        done = {}
+        with ProcessPoolExecutor(max_workers=self.workers, mp_context=self.context,
+                                 initializer=_one_arrow_thread) as pool:
+            for _ in range(self.workers):
+                self._feed(pool)
+            with _arrow_threads(1):
+                while (i := self._take(from_back=True)) is not None:
+                    done[i] = self.fn(self.items[i])
+            for i in range(len(self.items)):
+                yield done.pop(i) if i in done else self.futures.pop(i).result()
+
+
 class LocalExecutor:
-    """Runs work in this process (``jobs=1``, or a single item) or in a pool of ``jobs`` processes.
+    """Runs work in this process (``jobs=1``, or a single item), or in this process and a pool of ``jobs - 1``
+    processes (see :class:`_SharedWork`).
 
     ``jobs`` is the number of cores the work may keep busy: a pool process decodes with one Arrow thread, and work
     run in this process with at most ``jobs`` (so ``jobs=1`` is one core, not one process plus Arrow's threads on
@@ -109,9 +160,7 @@ class LocalExecutor:
             with _arrow_threads(self.jobs):
                 yield from map(fn, items)
             return
-        with ProcessPoolExecutor(max_workers=min(self.jobs, len(items)), mp_context=self._context(),
-                                 initializer=_one_arrow_thread) as pool:
-            yield from pool.map(fn, items)
+        yield from _SharedWork(fn, items, min(self.jobs, len(items)) - 1, self._context()).results()
 
     def map_shuffle(self, fn: Callable, items: Iterable, split: Callable, reduce: Callable):
         """``map`` then a keyed shuffle of the results in this process (see the module notes)."""

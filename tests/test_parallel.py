@@ -6,6 +6,7 @@ from __future__ import annotations
 import json
 import re
 
+import pytest
 from click.testing import CliRunner
 
 from lint.cli import main
@@ -69,3 +70,32 @@ def test_jobs_is_the_number_of_cores_arrow_may_decode_with():
         assert list(LocalExecutor(2).map(_arrow_threads, [1])) == [2]  # one item, here: up to two threads
     finally:
         pyarrow.set_cpu_count(before)
+
+
+def _where(item):
+    import os
+
+    return item, os.getpid()
+
+
+def _fails_on_three(item):
+    if item == 3:
+        raise ValueError("item three")
+    return item
+
+
+def test_two_jobs_are_this_process_and_one_pool_process_sharing_the_items():
+    """The pool takes items from the front and this process from the back (so it works while the pool starts);
+    the results come back in item order, and an error in either place reaches the caller."""
+    import os
+
+    from lint.executors import LocalExecutor
+
+    out = list(LocalExecutor(2).map(_where, range(6)))
+    assert [item for item, _ in out] == list(range(6))
+    pids = [pid for _, pid in out]
+    assert pids[0] != os.getpid() and pids[-1] == os.getpid()  # the first item in the pool, the last here
+    assert len(set(pids)) == 2
+    for items in ([0, 1, 2, 3], [3, 0, 1, 2]):  # item three done here (last), then in the pool (first)
+        with pytest.raises(ValueError, match="item three"):
+            list(LocalExecutor(2).map(_fails_on_three, items))
