@@ -513,7 +513,8 @@ class LabelAlignment(Rule):
                 f"ignored positions are marked with the pad id {s.pad_id}{inferred} instead of ignore_index "
                 f"{s.ignore_index}: {st['pad_label_positions']:,} padding positions in {pad.count:,} rows carry "
                 f"label {s.pad_id}, so the loss will train on them and teach the model to emit padding. Set "
-                f"labels at padding to {s.ignore_index}.",
+                f"labels at padding to {s.ignore_index}. (padding-loss, when it runs, reports the same rows as "
+                "trained padding: one fix for both.)",
                 padId=s.pad_id, positions=st["pad_label_positions"], ignoreIndex=s.ignore_index, rows=pad.count))
         return out
 

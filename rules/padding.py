@@ -246,7 +246,8 @@ class PaddingLoss(Rule):
                 f"{s.ignore_index} at positions that are padding{target} (padding told by {told}; the shard has "
                 f"{pads:,} padding positions). The loss is spent predicting filler. Set labels to {s.ignore_index} "
                 "wherever attention_mask is 0" + (" and at the last real position of a padded row"
-                                                   if s.labels == "shifted" else "") + ".",
+                                                   if s.labels == "shifted" else "") + ". (Where these labels are "
+                "the pad id, label-alignment, when it runs, reports the same rows as pad-label: one fix for both.)",
                 positions=positions, paddingPositions=pads, paddingFrom=told,
                 labelConvention=s.labels or "unknown"))
         side_hits = self._side(state)
@@ -276,7 +277,9 @@ class PaddingLoss(Rule):
                 state, "masked-real-tokens",
                 f"{hits.count:,} rows where attention_mask is 0 on {positions:,} tokens that are not the pad id "
                 f"({s.pad_id}): real tokens hidden from attention (a mask cut shorter than the tokens, or taken "
-                "from another row). Build the mask from each row's real length.",
+                "from another row). Build the mask from each row's real length." + (
+                    " Rows with a hole inside their real tokens are also in the mask-shape finding: one fix for "
+                    "both." if side_hits else ""),
                 positions=positions, padId=s.pad_id))
         hits = state.hits.get("eos-never-trained")
         if hits:

@@ -224,6 +224,8 @@ def test_mask_with_holes_is_located_for_the_shard_padding_side(tmp_path, side):
     assert locations(f) == expected
     assert f.evidence == {"paddingSide": side, "rightPaddedRows": right, "leftPaddedRows": len(padded_rows) - right}
     assert "heuristic" in f.message and f"{side}-padded" in f.message
+    hidden = findings(report, RULE, "masked-real-tokens")  # the holes inside real tokens (odd rows) hide tokens
+    assert len(hidden) == 1 and "also in the mask-shape finding" in hidden[0].message
 
 
 def test_mask_that_disagrees_with_the_pad_run(tmp_path):
@@ -248,6 +250,7 @@ def test_mask_that_disagrees_with_the_pad_run(tmp_path):
     assert locations(a) == attended and a.evidence == {"positions": attended_n, "padId": PAD}
     assert locations(h) == hidden and h.evidence == {"positions": hidden_n, "padId": PAD}
     assert findings(report, RULE, "mask-shape") == []  # both masks are still ones then zeros
+    assert "mask-shape" not in h.message
 
 
 # -- real eos never trained on when pad id == eos id --------------------------------------------------------------
