@@ -125,11 +125,13 @@ class _SharedWork:
         done = {}
         with ProcessPoolExecutor(max_workers=self.workers, mp_context=self.context,
                                  initializer=_one_arrow_thread) as pool:
-            for _ in range(self.workers):
-                self._feed(pool)
+            # Starting a pool process waits for the fork server to import the engine: let another thread wait.
+            starter = threading.Thread(target=lambda: [self._feed(pool) for _ in range(self.workers)], daemon=True)
+            starter.start()
             with _arrow_threads(1):
                 while (i := self._take(from_back=True)) is not None:
                     done[i] = self.fn(self.items[i])
+            starter.join()
             for i in range(len(self.items)):
                 yield done.pop(i) if i in done else self.futures.pop(i).result()
 

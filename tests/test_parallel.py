@@ -74,11 +74,16 @@ def test_jobs_is_the_number_of_cores_arrow_may_decode_with():
 
 def _where(item):
     import os
+    import time
 
+    time.sleep(0.2)  # long enough for the pool to take the first item before this process reaches it
     return item, os.getpid()
 
 
 def _fails_on_three(item):
+    import time
+
+    time.sleep(0.2)
     if item == 3:
         raise ValueError("item three")
     return item
