@@ -408,3 +408,28 @@ def test_a_part_that_stopped_ends_the_shard_but_keyed_rules_keep_every_part(tmp_
     assert merged.rows == parts[1].first_row  # the rows of the first part only
     assert len(merged.states["near-duplicate"].rows) == 40  # every window of both parts
     assert merged.tokens == results[0].tokens == 30 * parts[1].first_row
+
+
+@pytest.mark.parametrize("damage", ["row group", "truncated"])
+def test_a_damaged_shard_split_in_parts_reports_what_a_whole_scan_does(tmp_path, cut, damage):
+    """A flipped byte in the data of a middle row group (page checksums on, so the reader sees it), or a file cut
+    off in its middle: the split scan gives the whole scan's report."""
+    cols = windows(random.Random(21), 120)
+    table = __import__("pyarrow").table(cols)
+    path = tmp_path / "a.parquet"
+    pq.write_table(table, path, row_group_size=10, write_page_checksum=True)
+    data = bytearray(path.read_bytes())
+    if damage == "row group":
+        chunk = pq.ParquetFile(path).metadata.row_group(7).column(0)
+        assert chunk.total_compressed_size > 200
+        data[chunk.data_page_offset + 200] ^= 0xFF  # inside the page's data, past its header
+    else:
+        data = data[: len(data) // 2]
+    path.write_bytes(bytes(data))
+    whole = report([path], vocab_size=VOCAB)
+    parted = report([path], SerialParts(3), vocab_size=VOCAB)
+    assert parted == whole
+    unreadable = [f for f in whole["findings"] if f["rule"] == "unreadable-shard"]
+    assert len(unreadable) == 1
+    if damage == "row group":  # the other row groups are still scanned
+        assert unreadable[0]["instances"] == [{"row": 70}] and whole["metrics"]["rows"] == 110
