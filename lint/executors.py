@@ -116,7 +116,7 @@ class _SharedWork:
             return
         try:
             future = pool.submit(self.fn, self.items[i])
-        except RuntimeError:  # the pool is shutting down (an error elsewhere): nothing more to give it
+        except RuntimeError:  # the pool is broken or shutting down: the item is left to this process
             return
         self.futures[i] = future
         future.add_done_callback(lambda _: self._feed(pool))
@@ -133,7 +133,15 @@ class _SharedWork:
                     done[i] = self.fn(self.items[i])
             starter.join()
             for i in range(len(self.items)):
-                yield done.pop(i) if i in done else self.futures.pop(i).result()
+                future = self.futures.pop(i, None)
+                if i in done:
+                    yield done.pop(i)
+                elif future is not None:
+                    yield future.result()
+                else:  # the pool could not take it (broken, or shutting down after an error)
+                    with _arrow_threads(1):
+                        result = self.fn(self.items[i])
+                    yield result
 
 
 class LocalExecutor:

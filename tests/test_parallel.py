@@ -104,3 +104,20 @@ def test_two_jobs_are_this_process_and_one_pool_process_sharing_the_items():
     for items in ([0, 1, 2, 3], [3, 0, 1, 2]):  # item three done here (last), then in the pool (first)
         with pytest.raises(ValueError, match="item three"):
             list(LocalExecutor(2).map(_fails_on_three, items))
+
+
+def test_items_a_broken_pool_cannot_take_are_done_here(monkeypatch):
+    """A pool that refuses work (a process died: BrokenProcessPool) loses no item: this process does them."""
+    import os
+    from concurrent.futures import ProcessPoolExecutor
+    from concurrent.futures.process import BrokenProcessPool
+
+    import lint.executors
+
+    class Broken(ProcessPoolExecutor):
+        def submit(self, *args, **kwargs):
+            raise BrokenProcessPool("a process of the pool died")
+
+    monkeypatch.setattr(lint.executors, "ProcessPoolExecutor", Broken)
+    out = list(lint.executors.LocalExecutor(2).map(_where, range(4)))
+    assert out == [(i, os.getpid()) for i in range(4)]
