@@ -220,6 +220,23 @@ def test_a_cluster_scan_reports_what_a_local_scan_reports(cluster):
     assert not os.path.exists(spill)  # the signature files written by the workers are gone
 
 
+def test_shards_split_over_the_workers_report_what_a_whole_local_scan_reports(cluster, monkeypatch):
+    """Every shard in two parts on the workers (all rules: near-duplicate's parts enter the shuffle one by one)."""
+    rng = np.random.default_rng(21)  # the corpus whose planted pairs check_against_references accepts
+    shards, near, exact = write_corpus(rng)
+    write(URIS["b"], {"input_ids": shards["b"]}, row_group_size=8)  # a and b can be cut between row groups
+    local = scan_with(LocalExecutor(1), ["data"])
+    monkeypatch.setattr(split, "SPLIT_BYTES", 0)  # the parts are planned here, so this reaches the scan
+    planned, plan = [], split.plan
+    monkeypatch.setattr(split, "plan", lambda *args, **kwargs: planned.append(plan(*args, **kwargs)) or planned[-1])
+    settings = Settings()
+    remote = run(discover(["data"]), settings, select_rules(settings, registry()), executor=cluster)
+    # a and b in two parts each; c (JSON Lines in one read block) and d (not Parquet) are scanned whole
+    assert [None if parts is None else len(parts) for parts in planned] == [2, 2, None, None]
+    assert comparable(remote) == comparable(local)
+    check_against_references(remote, shards, near, exact)
+
+
 def test_per_path_settings_apply_on_workers_in_another_folder(cluster):
     # The workers started in the folder pytest was started in, not in this test's folder: relative paths and
     # [paths] patterns are resolved here before the work leaves.
