@@ -135,8 +135,9 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=Non
     pending = []  # record-less batches (read problems) seen before the first records
     if part is not None:  # the facts were inferred from the shard's first records before the parts were read
         states = {rule.id: rule.begin(shard, facts) for rule in rules}
-        for state in states.values():
+        for rule_id, state in states.items():
             state.continued, state.continues = part.index > 0, part.index < part.count - 1
+            state.inferred = part.inferred.get(rule_id)
     with open_shard(shard, tokens_column=facts.tokens_column, sample=sampling, part=part) as reader:
         # rows, tokens and bytes consumed already reported to ``progress``
         told = (0, 0, part.lo if part is not None and shard.format == "jsonl" else 0)
@@ -318,7 +319,7 @@ def _parts(shard: Shard, settings: Settings, rules: list[Rule], executor, sample
         held = ", ".join(rule.id for rule in rules if not rule.splittable)
         log.debug("%s is scanned whole: rule(s) %s cannot join parts of a shard", shard.uri, held)
         return None
-    parts = split.plan(shard, settings, processes)
+    parts = split.plan(shard, settings, processes, rules=tuple(rules))
     if parts is not None:
         log.debug("%s is scanned in %s", shard.uri, split.describe(parts))
     return parts

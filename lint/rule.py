@@ -45,12 +45,15 @@ class ShardState:
 
     When a large shard is scanned in parts (see ``Rule.splittable``), the engine sets ``continued`` on the state
     of every part but the first (its first rows may finish something the previous part left open) and
-    ``continues`` on every part but the last (what is open at its end goes on in the next part), before the first
-    batch; a whole-shard scan leaves both False.
+    ``continues`` on every part but the last (what is open at its end goes on in the next part), and ``inferred``,
+    before the first batch; a whole-shard scan leaves them False and None.
     """
 
     continued = False
     continues = False
+    #: What the rule inferred from the shard's first records (:meth:`Rule.infer`) when this is a part of a split
+    #: shard; None otherwise (the rule then infers from the first batch it is fed).
+    inferred = None
 
     def __init__(self, shard: Shard, settings, cap: int):
         self.shard = shard
@@ -150,6 +153,13 @@ class Rule:
                 return f"no {name!r} column"
             if not COLUMN_KINDS[kind](batch.type_of(name)):
                 return f"column {name!r} is {batch.type_of(name)}, not {kind}"
+        return None
+
+    def infer(self, batch: Batch, settings) -> object | None:
+        """What the rule infers once per shard from its first batch (a heuristic such as how documents are arranged
+        in rows), or None.  A shard scanned in parts has it computed from the shard's first records and given to
+        every part as ``state.inferred``, so that all parts decide alike; a rule that infers from its first batch
+        uses ``state.inferred`` when it is set.  Must not keep the batch."""
         return None
 
     def begin(self, shard: Shard, settings) -> ShardState:

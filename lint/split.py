@@ -17,7 +17,7 @@ parts are read, and given to every part.
 from __future__ import annotations
 
 import logging
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -39,7 +39,8 @@ COUNT_BYTES = 8 << 20
 class Part:
     """One contiguous part of a shard: units ``[lo, hi)`` (row groups, record batches, or for JSON Lines byte
     offsets), whose first row is ``first_row`` of the shard; ``facts`` are the shard's settings with the values
-    inferred from its first records."""
+    inferred from its first records, and ``inferred`` what each rule inferred from them (``Rule.infer``), by rule
+    id."""
 
     index: int
     count: int
@@ -47,6 +48,7 @@ class Part:
     hi: int
     first_row: int
     facts: Settings
+    inferred: dict = field(default_factory=dict)
 
 
 def splittable_format(shard: Shard) -> bool:
@@ -58,9 +60,11 @@ def splittable_format(shard: Shard) -> bool:
     return shard.format == "jsonl" and shard.compression is None
 
 
-def plan(shard: Shard, settings: Settings, parts: int, threshold: int | None = None) -> list[Part] | None:
+def plan(shard: Shard, settings: Settings, parts: int, threshold: int | None = None,
+         rules: tuple = ()) -> list[Part] | None:
     """The parts to scan ``shard`` in, or None to scan it whole (small, not splittable, a single unit, no records,
-    or anything unexpected while looking: the whole-shard scan then reports it)."""
+    or anything unexpected while looking: the whole-shard scan then reports it).  What ``rules`` infer from the
+    shard's first records goes with every part."""
     threshold = SPLIT_BYTES if threshold is None else threshold
     if parts < 2 or shard.length <= threshold or not splittable_format(shard):
         return None
@@ -68,23 +72,35 @@ def plan(shard: Shard, settings: Settings, parts: int, threshold: int | None = N
         cuts = _cuts(shard, parts)
         if cuts is None or len(cuts) < 2:
             return None
-        facts = first_facts(shard, settings)
+        first = first_facts(shard, settings, rules)
     except Exception as exc:  # noqa: BLE001 - a shard we cannot look into is scanned whole, and reported there
         log.debug("scanning %s whole: %s", shard.uri, exc)
         return None
-    if facts is None:
+    if first is None:
         return None
-    return [Part(i, len(cuts), lo, hi, row, facts) for i, (lo, hi, row) in enumerate(cuts)]
+    facts, inferred = first
+    return [Part(i, len(cuts), lo, hi, row, facts, inferred) for i, (lo, hi, row) in enumerate(cuts)]
 
 
-def first_facts(shard: Shard, settings: Settings) -> Settings | None:
+def first_facts(shard: Shard, settings: Settings, rules: tuple = ()) -> tuple[Settings, dict] | None:
     """The shard's settings with the unset facts inferred from its first records, as a whole-shard scan infers
-    them; None when the shard holds no records."""
+    them, and what each of ``rules`` infers from the same records (rules that infer nothing, or fail to, are left
+    out: each part then infers for itself); None when the shard holds no records."""
     facts = settings.for_path(shard.path)
     with open_shard(shard, tokens_column=facts.tokens_column) as reader:
         for batch in reader:
             if len(batch):
-                return infer_from_batch(facts, batch)
+                facts = infer_from_batch(facts, batch)
+                inferred = {}
+                for rule in rules:
+                    try:
+                        value = rule.infer(batch, facts) if rule.missing(batch, facts) is None else None
+                    except Exception as exc:  # noqa: BLE001 - the parts infer for themselves then
+                        log.debug("%s: %s inferred nothing from the first records (%s)", shard.uri, rule.id, exc)
+                        value = None
+                    if value is not None:
+                        inferred[rule.id] = value
+                return facts, inferred
     return None
 
 

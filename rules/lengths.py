@@ -44,8 +44,9 @@ class _DocumentRule(Rule):
 
     A large shard may be scanned in parts: a part that continues an earlier one holds its first rows aside (they
     finish the document the earlier part left open), a part that others follow keeps its last document open, and
-    ``merge`` stitches the two into one document.  Each part infers the arrangement from its own first batch; when
-    that differs from the earlier part's, the parts cannot be joined exactly and the shard is scanned whole."""
+    ``merge`` stitches the two into one document.  Every part reads the documents as arranged in the shard's first
+    batch (``infer``); should two parts still differ, they cannot be joined exactly and the shard is scanned whole
+    for the rule."""
 
     splittable = True
 
@@ -69,7 +70,7 @@ class _DocumentRule(Rule):
         if not len(batch):
             return
         if state.arrangement is None:
-            state.arrangement, state.why = infer_arrangement(batch, s)
+            state.arrangement, state.why = state.inferred or infer_arrangement(batch, s)
             self._lead(state)
         if state.arrangement != TEXT:
             if not _tokenized(batch, s):
@@ -78,6 +79,11 @@ class _DocumentRule(Rule):
         elif not _textual(batch, s):
             return
         state.tally.add(documents_of(batch, s, state.arrangement))
+
+    def infer(self, batch, settings):
+        """How documents sit in the shard's rows, from its first batch (see :func:`lint.documents.infer_arrangement`):
+        every part of a split shard reads its documents the same way."""
+        return infer_arrangement(batch, settings) if len(batch) else None
 
     @staticmethod
     def _lead(state) -> None:

@@ -433,3 +433,27 @@ def test_a_damaged_shard_split_in_parts_reports_what_a_whole_scan_does(tmp_path,
     assert len(unreadable) == 1
     if damage == "row group":  # the other row groups are still scanned
         assert unreadable[0]["instances"] == [{"row": 70}] and whole["metrics"]["rows"] == 110
+
+
+def test_every_part_reads_documents_as_the_shards_first_records_say(tmp_path, cut, caplog):
+    """Packed rows whose first row group has eos inside rows (separators), and a document of 600 tokens running
+    through the rows where the second part starts: that part's own first batch has no eos inside a row and alone
+    would look like one document per row. The parts read the shard as its first records say, and join without a
+    second scan."""
+    stream = []
+    for n in [5, 7, 3, 9, 600, 11, 4, 200, 6]:
+        stream += [3 + (i * 7 + n) % 400 for i in range(n)] + [EOS]
+    stream += [5] * (-len(stream) % 16)
+    rows = [stream[i:i + 16] for i in range(0, len(stream), 16)]
+    path = write(tmp_path / "a.parquet", {"input_ids": rows}, row_group_size=4)
+    settings = dict(vocab_size=VOCAB, eos_id=EOS, seq_len=16, only=("overlong-document", "truncation-waste"),
+                    rule={"truncation-waste": {"max_waste": 0.0}})
+    whole = report([path], **settings)
+    with caplog.at_level(logging.DEBUG, logger="lint.engine"):
+        parted = report([path], SerialParts(2), **settings)
+    assert parted == whole
+    start = cut[0][1].first_row
+    assert 0 < start < len(rows) and all(EOS not in row[:-1] for row in rows[start:start + 4])  # mid-document
+    assert not [r for r in caplog.records if "cannot join" in r.getMessage()]
+    [overlong] = [f for f in whole["findings"] if f["kind"] == "longer-than-window"]
+    assert overlong["evidence"]["arrangement"] == "separators" and overlong["evidence"]["overlong"] == 2
