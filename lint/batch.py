@@ -362,3 +362,33 @@ class Batch:
     def select(self, mask: np.ndarray) -> "Batch":
         """The rows where ``mask`` is true, as a new batch of the same shard."""
         return Batch(self.shard, self.table.filter(pa.array(mask)), self.rows[mask])
+
+
+#: A shard's facts are inferred from its first records: at least this many rows or tokens (or the whole shard),
+#: gathered over its first batches when they are small (a first Parquet row group of a few rows, say).
+FIRST_ROWS = 1024
+FIRST_TOKENS = 1 << 20
+
+
+def enough_first_records(batches: list[Batch], tokens_column: str) -> bool:
+    """Whether ``batches`` (a shard's first, in order) hold enough records to infer its facts from."""
+    rows = tokens = 0
+    for batch in batches:
+        rows += len(batch)
+        if len(batch) and batch.has(tokens_column) and is_integer_list(batch.type_of(tokens_column)):
+            tokens += int(batch.flat(tokens_column).values.size)
+    return rows >= FIRST_ROWS or tokens >= FIRST_TOKENS
+
+
+def first_records(batches: list[Batch]) -> Batch | None:
+    """The records of a shard's first batches as one batch (None when they hold none); when their columns differ
+    (JSON Lines blocks typed apart), the first batch with records alone."""
+    full = [batch for batch in batches if len(batch)]
+    if len(full) <= 1:
+        return full[0] if full else None
+    try:
+        tables = [b.table if isinstance(b.table, pa.Table) else pa.Table.from_batches([b.table]) for b in full]
+        joined = pa.concat_tables(tables)
+    except (pa.ArrowInvalid, pa.ArrowTypeError, pa.ArrowNotImplementedError):
+        return full[0]
+    return Batch(full[0].shard, joined, np.concatenate([b.rows for b in full]))

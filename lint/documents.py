@@ -18,7 +18,7 @@ in each:
     Token rows that each hold at most one document (typically padded to the window): the row's real tokens are
     the document.
 
-The arrangement of a token shard is inferred once, from its first batch (:func:`infer_arrangement`): position_ids
+The arrangement of a token shard is inferred once, from its first records (:func:`infer_arrangement`): position_ids
 decide when present; otherwise a separator inside a row (not as its last real token) means packed rows
 (``separators``); else one document per row.  The choice is a heuristic and is reported with its reason.
 
@@ -280,7 +280,7 @@ def _marker(settings) -> tuple[str, int | None]:
 
 
 def infer_arrangement(batch: Batch, settings) -> tuple[str, str]:
-    """How documents sit in a shard's rows, from its first batch: ``(arrangement, why)`` (a heuristic; cached
+    """How documents sit in a shard's rows, from its first records: ``(arrangement, why)`` (a heuristic; cached
     on the batch)."""
     key = ("arrangement", settings.tokens_column, settings.mask_column, settings.positions_column,
            settings.separator, settings.eos_id, settings.bos_id, settings.pad_id)

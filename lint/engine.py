@@ -17,12 +17,12 @@ import time
 from dataclasses import dataclass, field
 from typing import Iterable
 
-from .batch import Shard, is_integer_list
+from .batch import Shard, enough_first_records, first_records, is_integer_list
 from .executors import LocalExecutor, shuffle_here
 from .progress import Progress
 from .sampling import Sample, corpus_figures, finding_estimate
 from .findings import Finding, Level
-from .rule import Rule, ShardState, Unmergeable
+from .rule import Rule, ShardState, Unmergeable, inferred_by
 from .settings import Settings, SettingsError, infer_from_batch
 from .sources import absolute, discover, open_shard
 from . import split
@@ -132,33 +132,51 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=Non
                 crashed[rule.id] = f"{type(exc).__name__}: {exc}"
             states[rule.id].fed = True
 
-    pending = []  # record-less batches (read problems) seen before the first records
+    def begin(inferred: dict) -> dict[str, ShardState]:
+        out = {rule.id: rule.begin(shard, facts) for rule in rules}
+        for rule_id, state in out.items():
+            state.inferred = inferred.get(rule_id)
+            if part is not None:
+                state.continued, state.continues = part.index > 0, part.index < part.count - 1
+        return out
+
+    # Batches read before the facts are known: the first records (enough to infer from) and read problems.
+    pending: list = []
     if part is not None:  # the facts were inferred from the shard's first records before the parts were read
-        states = {rule.id: rule.begin(shard, facts) for rule in rules}
-        for rule_id, state in states.items():
-            state.continued, state.continues = part.index > 0, part.index < part.count - 1
-            state.inferred = part.inferred.get(rule_id)
+        states = begin(part.inferred)
     with open_shard(shard, tokens_column=facts.tokens_column, sample=sampling, part=part) as reader:
         # rows, tokens and bytes consumed already reported to ``progress``
         told = (0, 0, part.lo if part is not None and shard.format == "jsonl" else 0)
-        for batch in reader:
-            if not states:
-                if not len(batch):
-                    pending.append(batch)
-                    continue
-                facts = infer_from_batch(facts, batch)  # unset facts, from the first records of the shard
-                states = {rule.id: rule.begin(shard, facts) for rule in rules}
-                for waiting in pending:
-                    feed(waiting)
+
+        def fed(batch, consumed: int) -> None:
+            """Feed a batch, then tell ``progress`` what it added (``consumed``: the reader's position after it)."""
+            nonlocal told
             feed(batch)
             if progress is not None:
-                now = (counted["rows"], counted["tokens"], reader.consumed)
+                now = (counted["rows"], counted["tokens"], consumed)
                 progress.batch(shard.uri, *(n - t for n, t in zip(now, told)))
                 told = now
-    if not states:
-        states = {rule.id: rule.begin(shard, facts) for rule in rules}
-        for waiting in pending:
-            feed(waiting)
+
+        def start() -> None:
+            nonlocal facts, states, pending
+            sample = first_records([batch for batch, _ in pending])
+            if sample is not None:  # unset facts, from the first records of the shard
+                facts = infer_from_batch(facts, sample)
+            states = begin(inferred_by(rules, sample, facts) if sample is not None else {})
+            del sample
+            waiting, pending = pending, []
+            for batch, consumed in waiting:
+                fed(batch, consumed)
+
+        for batch in reader:
+            if states:
+                fed(batch, reader.consumed)
+                continue
+            pending.append((batch, reader.consumed))
+            if enough_first_records([waiting for waiting, _ in pending], facts.tokens_column):
+                start()
+        if not states:
+            start()
     rows, tokens = counted["rows"], counted["tokens"]
     joining = None
     if part is not None:

@@ -271,3 +271,18 @@ def consistent(batch: Batch, names: list[str]) -> Batch:
     # with it the Arrow memory of every batch read in between.)
     narrowed = batch.memo(("consistent",) + present, restrict)
     return batch if narrowed is None else narrowed
+
+
+def inferred_by(rules, sample: Batch, settings) -> dict:
+    """What each rule infers (:meth:`Rule.infer`) from a shard's first records, by rule id; rules that infer
+    nothing, or cannot (the records lack their columns, or the rule fails), are left out and infer for themselves
+    from the first batch they are fed."""
+    out = {}
+    for rule in rules:
+        try:
+            value = rule.infer(sample, settings) if rule.missing(sample, settings) is None else None
+        except Exception:  # noqa: BLE001 - a rule bug here must not stop the scan
+            value = None
+        if value is not None:
+            out[rule.id] = value
+    return out

@@ -198,7 +198,7 @@ def build(config: dict | None = None, flags: dict | None = None) -> Settings:
     return settings
 
 
-# -- inference from a shard's first batch -------------------------------------------------------------------
+# -- inference from a shard's first records -----------------------------------------------------------------
 
 #: A value is inferred only when this share of the evidence agrees, over at least MIN_EVIDENCE observations.
 AGREEMENT = 0.9
@@ -216,7 +216,8 @@ def _dominant(values: np.ndarray) -> tuple[int | None, float, int]:
 
 
 def infer_from_batch(settings: Settings, batch) -> Settings:
-    """Fill unset facts of a tokenized shard from its first batch, each with its evidence.
+    """Fill unset facts of a tokenized shard from its first records (``batch``: its first batches joined up to
+    :data:`lint.batch.FIRST_ROWS` rows or :data:`lint.batch.FIRST_TOKENS` tokens), each with its evidence.
 
     These are heuristics and are reported as inferred: ``seq_len`` (most common row length), ``pad_id`` (the id
     under attention_mask 0), ``eos_id`` (the id before position restarts, else the last real token of rows),

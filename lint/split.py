@@ -22,7 +22,8 @@ from dataclasses import dataclass, field
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .batch import Shard
+from .batch import Shard, enough_first_records, first_records
+from .rule import inferred_by
 from .settings import Settings, infer_from_batch
 from .sources import _open_input, is_uri, open_shard
 
@@ -83,25 +84,21 @@ def plan(shard: Shard, settings: Settings, parts: int, threshold: int | None = N
 
 
 def first_facts(shard: Shard, settings: Settings, rules: tuple = ()) -> tuple[Settings, dict] | None:
-    """The shard's settings with the unset facts inferred from its first records, as a whole-shard scan infers
-    them, and what each of ``rules`` infers from the same records (rules that infer nothing, or fail to, are left
-    out: each part then infers for itself); None when the shard holds no records."""
+    """The shard's settings with the unset facts inferred from its first records, and what each of ``rules``
+    infers from them (:func:`lint.rule.inferred_by`), as a whole-shard scan infers them; None when the shard holds
+    no records."""
     facts = settings.for_path(shard.path)
+    batches = []
     with open_shard(shard, tokens_column=facts.tokens_column) as reader:
         for batch in reader:
-            if len(batch):
-                facts = infer_from_batch(facts, batch)
-                inferred = {}
-                for rule in rules:
-                    try:
-                        value = rule.infer(batch, facts) if rule.missing(batch, facts) is None else None
-                    except Exception as exc:  # noqa: BLE001 - the parts infer for themselves then
-                        log.debug("%s: %s inferred nothing from the first records (%s)", shard.uri, rule.id, exc)
-                        value = None
-                    if value is not None:
-                        inferred[rule.id] = value
-                return facts, inferred
-    return None
+            batches.append(batch)
+            if enough_first_records(batches, facts.tokens_column):
+                break
+    sample = first_records(batches)
+    if sample is None:
+        return None
+    facts = infer_from_batch(facts, sample)
+    return facts, inferred_by(rules, sample, facts)
 
 
 def _balanced(sizes: list[int], parts: int) -> list[int]:

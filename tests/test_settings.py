@@ -15,6 +15,7 @@ from lint.batch import Batch, Shard
 from lint.engine import scan_shard
 from lint.sources import discover
 from lint.settings import FACTS, OPTIONS, Settings, SettingsError, build, infer_from_batch, load_config
+from rules import registry
 from tests.shards import pack, run, write
 
 
@@ -75,6 +76,27 @@ def test_inferred_values_are_reported_as_heuristic_notes(tmp_path):
         "trained positions in the first 4 rows",
         "seq_len = 8 inferred (heuristic) in p.parquet: most common row length (100% of the first 4 rows)",
     ]
+
+
+def test_facts_are_inferred_from_the_first_records_over_small_first_batches(tmp_path):
+    """Row groups of 2 rows: one row group alone is too little to infer from (seq_len needs 4 rows agreeing), so
+    the first batches are gathered up to FIRST_ROWS rows or FIRST_TOKENS tokens, here the whole shard; the
+    document arrangement comes from the same records."""
+    docs = [[10 + i] * (3 + i % 5) for i in range(24)]
+    cols = pack(docs, seq_len=8, eos=2, positions=False)
+    rows = len(cols["input_ids"])
+    assert rows > 8 and all(len(r) == 8 for r in cols["input_ids"])
+    write("p.parquet", cols, row_group_size=2)
+    report = run("p.parquet", only=("overlong-document",), eos_id=2)
+    texts = sorted(n.message for n in report.notes if n.rule_id is None)
+    assert f"seq_len = 8 inferred (heuristic) in p.parquet: most common row length (100% of the first {rows} rows)" \
+        in texts
+    assert report.findings == []  # no document is longer than 8 tokens, none is cut
+    [shard] = discover(["p.parquet"])
+    result = scan_shard(shard, build({}, {"eos_id": 2, "pad_id": 0}), [registry()["overlong-document"]()])
+    state = result.states["overlong-document"]
+    assert state.arrangement == "separators" and f"of the first {rows} rows" in state.why
+    assert state.tally.lengths.documents == 24  # each ended by its eos (the padding after the last is no document)
 
 
 # -- the config file ----------------------------------------------------------------------------------------
