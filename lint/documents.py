@@ -514,7 +514,7 @@ class DocumentTally:
         lead = self.lead if self.lead is not None and not self.lead[4] else None
         open_doc = lead if lead is not None else self.carry
         if docs.head:
-            if open_doc is None or open_doc[0] == 0 and lead is not None:
+            if open_doc is None or (lead is not None and open_doc[0] == 0):  # a new document, or a lead begun
                 row, off = docs.locate(np.zeros(1, dtype=np.int64))
                 if open_doc is None:
                     open_doc = self.carry = [0, int(row[0]), int(off[0]), False]
