@@ -2,15 +2,16 @@
 
 Use from a data-prep job::
 
-    from lint import scan, Settings
-    report = scan(["shards/"], Settings(eos_id=2, vocab_size=32000))
+    from corpuscle import scan, load_settings
+    report = scan(["shards/"], load_settings(eos_id=2, vocab_size=32000))
     if report.exit_code:
         ...
 """
-__version__ = "0.1.0"
+from corpuscle.engine.scan import Report, scan
+from corpuscle.findings import Finding, Level
+from corpuscle.rules.api import Rule, ShardState
+from corpuscle.settings import Settings, SettingsError, load_settings
+from corpuscle.version import __version__
 
-from .engine import Report, scan  # noqa: E402
-from .findings import Finding, Level  # noqa: E402
-from .settings import Settings  # noqa: E402
-
-__all__ = ["scan", "Report", "Finding", "Level", "Settings", "__version__"]
+__all__ = ["scan", "Report", "Finding", "Level", "Settings", "SettingsError", "load_settings", "Rule", "ShardState",
+           "__version__"]

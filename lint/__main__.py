@@ -1,3 +1,3 @@
-from .cli import main
+from corpuscle.cli import main
 
 main()

@@ -8,15 +8,14 @@ import sys
 import textwrap
 
 import click
-
-from . import __version__
-from .engine import run, select_rules
-from .progress import TerminalProgress
-from .report import droplist, sarif, text, write_atomic
-from .report import json as json_report
-from .sampling import Sample
-from .settings import FAIL_AT, LABEL_CONVENTIONS, SettingsError, build, load_config
-from .sources import NoShardsFound, discover
+from corpuscle.engine.progress import TerminalProgress
+from corpuscle.engine.sampling import Sample
+from corpuscle.engine.scan import run, select_rules
+from corpuscle.io.sources import NoShardsFound, discover
+from corpuscle.report import droplist, sarif, text, write_atomic
+from corpuscle.report import json as json_report
+from corpuscle.settings import FAIL_AT, LABEL_CONVENTIONS, SettingsError, build, load_config
+from corpuscle.version import __version__
 
 
 class UsageProblem(click.ClickException):
@@ -26,7 +25,7 @@ class UsageProblem(click.ClickException):
 
 
 def _registry():
-    from rules import PluginError, registry
+    from corpuscle.engine.registry import PluginError, registry
 
     try:
         return registry()
@@ -47,7 +46,7 @@ def _executor(address: str | None, jobs: int | None):
     if address is None:
         yield None
         return
-    from .executors import ClusterUnavailable, DaskExecutor
+    from corpuscle.engine.executors import ClusterUnavailable, DaskExecutor
 
     try:
         executor = DaskExecutor(address, jobs).__enter__()

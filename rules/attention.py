@@ -2,12 +2,18 @@
 from __future__ import annotations
 
 import numpy as np
-
-from lint.findings import Level
-from lint.rule import Rule, absolute_rows, consistent, pct, share
-
-from .separators import (inner_starts, missing_ids, padding_free, parallel_columns, position_restarts, real_ranks,
-                         real_token_positions, token_positions)
+from corpuscle.findings import Level
+from corpuscle.kernels.tokens import (
+    inner_starts,
+    missing_ids,
+    padding_free,
+    parallel_columns,
+    position_restarts,
+    real_ranks,
+    real_token_positions,
+    token_positions,
+)
+from corpuscle.rules.api import Rule, absolute_rows, consistent, pct, share
 
 
 class DocumentAttention(Rule):

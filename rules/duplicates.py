@@ -5,7 +5,7 @@ it is memorised more readily, and it spends budget that unseen text would have u
 
 * ``exact-duplicate``: windows (or documents) whose content is identical;
 * ``near-duplicate``: windows whose shingle sets are similar above a threshold, estimated with MinHash and
-  locality-sensitive hashing (:mod:`lint.minhash`, :mod:`lint.lsh`) -- a statistical estimate, and the findings
+  locality-sensitive hashing (:mod:`corpuscle.kernels.minhash`, :mod:`corpuscle.kernels.lsh`) -- a statistical estimate, and the findings
   say so.
 
 Windows
@@ -25,7 +25,7 @@ Content hash (``exact-duplicate``, and ``near-duplicate`` to fold exact copies)
         lane = (k_c + k_len * (2 * L + domain) + sum_j k_j * s_j)  mod 2**64,   keep lane >> 32
 
     with ``domain`` 0 for token windows and 1 for text documents (a token window never equals a document), and
-    64-bit keys ``k`` from :func:`lint.minhash.mix64` of fixed inputs, independent per lane. For keys drawn at
+    64-bit keys ``k`` from :func:`corpuscle.kernels.minhash.mix64` of fixed inputs, independent per lane. For keys drawn at
     random this family is strongly universal on its top 32 bits (multilinear hashing of 32-bit words, from
     memory: Lemire and Kaser, "Strongly universal string hashing is fast", 2014), so two different windows agree
     in one lane with probability 2**-32 and in all four -- the 128-bit content hash -- with probability 2**-128;
@@ -36,20 +36,20 @@ Content hash (``exact-duplicate``, and ``near-duplicate`` to fold exact copies)
 
 Near-duplicates
     Each window's shingles (``n`` consecutive tokens, or ``n`` consecutive words after lowercasing; a window
-    shorter than ``n`` is one shingle) get a MinHash signature of ``num_perm`` values (:mod:`lint.minhash`), cut
+    shorter than ``n`` is one shingle) get a MinHash signature of ``num_perm`` values (:mod:`corpuscle.kernels.minhash`), cut
     into ``b`` bands of ``r`` values with ``(b, r) = optimal_bands(threshold, num_perm)``. The signatures go to a
     temporary ``.npy`` file per shard (see :class:`SignatureSpill`); at the end of the shard the ``b`` band keys
     and a signature digest of every window are made from it into a second file (:class:`BandSpill`), which the
     state holds as memory maps. Every window has a global id in scan order (the shard's offset plus its index
     within the shard). The band keys are grouped by key in a partitioned shuffle (the rule is ``keyed``, see
-    :mod:`lint.rule`): ``partition`` splits a shard's keys by key modulo the number of partitions, and
-    ``reduce_partition`` groups one partition's keys from all shards (:func:`lint.lsh.partition_candidates`) and
+    :mod:`corpuscle.rules.api`): ``partition`` splits a shard's keys by key modulo the number of partitions, and
+    ``reduce_partition`` groups one partition's keys from all shards (:func:`corpuscle.kernels.lsh.partition_candidates`) and
     verifies its candidate pairs by their estimated Jaccard similarity (signatures read back from the files a chunk
     of pairs at a time, see :func:`read_rows`).
     Locally this runs in one process; on a cluster the keys stay on the workers and only the candidate pairs come
     back. The reduce step (``corpus``) folds exact copies into their first copy (a pair is kept when both ends
     are first copies), counts each pair once, and joins the pairs at or above the threshold into clusters
-    (:func:`lint.lsh.clusters`). A cluster's representative is its first window in scan order. The result is the
+    (:func:`corpuscle.kernels.lsh.clusters`). A cluster's representative is its first window in scan order. The result is the
     same for any number of partitions.
 
 Exact copies inside near-duplicate clusters
@@ -88,7 +88,6 @@ from __future__ import annotations
 import copy
 import os
 import shutil
-import struct
 import tempfile
 import threading
 import uuid
@@ -97,311 +96,39 @@ from dataclasses import dataclass
 
 import numpy as np
 import pyarrow.compute as pc
-import pyarrow.types as pat
-
-from lint.batch import Batch, is_integer_list, is_text
-from lint.findings import Finding, Level
-from lint.lsh import DEFAULT_MAX_BUCKET, Candidates, band_keys, clusters, estimated_jaccard, optimal_bands
-from lint.lsh import partition_candidates, signature_digests
-from lint.minhash import MinHashSettings, mix64, shingle_hashes, signatures, word_shingle_hashes
-from lint.rule import Rule, ShardState, share
-from rules.text import document_text
-
-TOKENS, TEXT = 0, 1
-"""Window domains: rows of a token column, documents of a text column."""
+from corpuscle.findings import Finding, Level
+from corpuscle.kernels.hashing import hex_digest
+from corpuscle.kernels.lsh import (
+    DEFAULT_MAX_BUCKET,
+    Candidates,
+    band_keys,
+    clusters,
+    estimated_jaccard,
+    optimal_bands,
+    partition_candidates,
+    signature_digests,
+)
+from corpuscle.kernels.minhash import MinHashSettings, shingle_hashes, signatures, word_shingle_hashes
+from corpuscle.kernels.spill import BandSpill, SignatureSpill, npy_blocks, npy_layout, read_rows
+from corpuscle.kernels.text import document_text
+from corpuscle.kernels.windows import TOKENS, Windows, batch_windows, window_domain
+from corpuscle.rules.api import Rule, ShardState, share
 
 DROP_LIST = "drop-list"
 """Name of the extra output both rules give: ``[{"uri": ..., "row": ...}, ...]``, the windows to drop."""
 
 DEFAULT_MAX_CLUSTERS = 1000
 
-# Words hashed per step of content_hashes (bounds its scratch memory to about 32 MiB).
-_HASH_CHUNK = 1 << 20
-# Word positions whose keys are kept in a table (2 MiB); longer windows get their keys made piece by piece.
-_KEY_TABLE = 1 << 16
 # Windows per step of the MinHash signatures in feed (bounds the signature matrix of a batch).
 _SIGNATURE_WINDOWS = 8192
 # Tokens (or text bytes) shingled per step in feed (bounds the scratch memory of the shingle hashes to ~10 MiB).
 _SHINGLE_VALUES = 1 << 18
 # Candidate pairs verified per step in corpus (bounds the signatures read back at once).
 _VERIFY_PAIRS = 1 << 15
-# Rows of a signature or band file read back at once (8 MiB of signatures at num_perm 128): a block is one memory
-# map in read_rows (the file's pages that a read touches count as the process's memory while they are mapped) and
-# one buffer in npy_blocks.
-_VERIFY_BLOCK_ROWS = 1 << 14
 # Windows whose band keys are sorted into partitions per step (bounds the scratch memory of a partition's entries).
 _PARTITION_WINDOWS = 1 << 14
 # Band-key entries grouped into buckets per step of a partition's reduce (bounds its scratch memory, ~14 MiB).
 _REDUCE_ENTRIES = 1 << 17
-# Lanes of the content hash; each keeps 32 bits.
-_LANES = 4
-_KEY_SEED = 0x5EED_C0DE_D0C5_F00D
-
-
-# -- the content hash -------------------------------------------------------------------------------------------
-
-
-def _key_block(first: int, count: int) -> np.ndarray:
-    """Keys ``first .. first + count - 1`` of every lane, shape ``(lanes, count)``."""
-    index = np.arange(first, first + count, dtype=np.uint64)[None, :] * np.uint64(_LANES)
-    index = index + np.arange(_LANES, dtype=np.uint64)[:, None]
-    return mix64(index ^ np.uint64(_KEY_SEED))
-
-
-_CONSTANT_KEYS = _key_block(0, 2)  # column 0: k_c, column 1: k_len
-_POSITION_KEYS = _key_block(2, _KEY_TABLE)  # column j: k_j of word position j
-
-
-def _position_keys(first: int, count: int) -> np.ndarray:
-    """Per-lane keys of word positions ``first .. first + count - 1``, shape ``(lanes, count)``."""
-    if first + count <= _KEY_TABLE:
-        return _POSITION_KEYS[:, first:first + count]
-    return _key_block(2 + first, count)
-
-
-def _words(values: np.ndarray) -> np.ndarray:
-    """Values as 32-bit words (modulo 2**32) in uint64, ready for the 64-bit multiply-add."""
-    if values.dtype == np.uint8:
-        return values.astype(np.uint64)
-    if values.dtype.itemsize == 4:
-        return values.view(np.uint32).astype(np.uint64)
-    return values.astype(np.uint32).astype(np.uint64)
-
-
-def content_hashes(values: np.ndarray, starts: np.ndarray, ends: np.ndarray, domain: int) -> np.ndarray:
-    """128-bit content hash of each window ``values[starts[i]:ends[i]]``, shape ``(windows, 2)``, uint64.
-
-    ``values`` is a flat integer array (token ids, or the uint8 bytes of text); the windows must be non-empty.
-    They usually lie back to back (``starts[i + 1] == ends[i]``), as the non-empty rows of an Arrow list or
-    string array do; when they do not, their values are gathered first. Equal windows of the same ``domain``
-    give equal hashes; see the module notes for the family and its collision probability.
-    """
-    starts = np.asarray(starts, dtype=np.int64)
-    ends = np.asarray(ends, dtype=np.int64)
-    lengths = ends - starts
-    if len(starts) > 1 and not np.array_equal(starts[1:], ends[:-1]):
-        packed = np.zeros(len(starts) + 1, dtype=np.int64)
-        np.cumsum(lengths, out=packed[1:])
-        values = values[np.arange(packed[-1]) + np.repeat(starts - packed[:-1], lengths)]
-        starts, ends = packed[:-1], packed[1:]
-    lanes = np.empty((len(starts), _LANES), dtype=np.uint64)
-    long = np.flatnonzero(lengths > _KEY_TABLE)
-    w0 = 0
-    while w0 < len(starts):
-        if lengths[w0] > _KEY_TABLE:  # one long window, a piece at a time
-            lanes[w0] = 0
-            for p0 in range(0, int(lengths[w0]), _HASH_CHUNK):
-                piece = _words(values[starts[w0] + p0:min(ends[w0], starts[w0] + p0 + _HASH_CHUNK)])
-                lanes[w0] += _position_keys(p0, len(piece)) @ piece
-            w0 += 1
-            continue
-        # Windows w0 .. w1 - 1: at most _HASH_CHUNK words (at least one window), none of them long.
-        w1 = int(np.searchsorted(ends, starts[w0] + _HASH_CHUNK, side="right"))
-        after = int(np.searchsorted(long, w0))
-        w1 = max(w0 + 1, min(w1, int(long[after]) if after < len(long) else len(starts)))
-        lo, hi = int(starts[w0]), int(ends[w1 - 1])
-        size = lengths[w0:w1]
-        words = _words(values[lo:hi])
-        longest = int(size.max())
-        keys = _position_keys(0, longest)
-        if np.all(size == longest):
-            lanes[w0:w1] = np.einsum("wl,kl->wk", words.reshape(w1 - w0, longest), keys)
-        else:
-            position = np.arange(hi - lo, dtype=np.int64) - np.repeat(starts[w0:w1] - lo, size)
-            for lane in range(_LANES):
-                lanes[w0:w1, lane] = np.add.reduceat(words * keys[lane][position], starts[w0:w1] - lo)
-        w0 = w1
-    lanes += _CONSTANT_KEYS[:, 0]
-    lanes += _CONSTANT_KEYS[:, 1] * (lengths.astype(np.uint64)[:, None] * np.uint64(2) + np.uint64(domain))
-    top = lanes >> np.uint64(32)
-    return np.column_stack((top[:, 0] << np.uint64(32) | top[:, 1], top[:, 2] << np.uint64(32) | top[:, 3]))
-
-
-def hex_digest(content: np.ndarray) -> str:
-    """A content hash as 32 hex digits (stable across runs: fingerprints of findings use it)."""
-    return f"{int(content[0]):016x}{int(content[1]):016x}"
-
-
-# -- the windows of a batch -------------------------------------------------------------------------------------
-
-
-@dataclass
-class Windows:
-    """The non-empty windows of one batch: batch-local index, shard row, length (tokens or UTF-8 bytes), content
-    hash and domain of each; ``domain`` says whether they are token rows or text documents. Rows and lengths are
-    uint32 when they fit (always, but in shards of over 2**32 rows or windows of over 2**32 tokens or bytes)."""
-
-    domain: int
-    local: np.ndarray
-    rows: np.ndarray
-    lengths: np.ndarray
-    content: np.ndarray
-    domains: np.ndarray
-
-
-_WINDOWS_CACHE: "weakref.WeakKeyDictionary[Batch, dict]" = weakref.WeakKeyDictionary()
-
-
-def window_domain(batch: Batch, settings) -> int | None:
-    """TOKENS when the batch has the tokens column as integer lists, else TEXT when it has the text column as
-    strings, else None. A shard with both columns is compared by its token windows (what the model trains on)."""
-    tok, text = settings.tokens_column, settings.text_column
-    if batch.has(tok) and is_integer_list(batch.type_of(tok)):
-        return TOKENS
-    if batch.has(text) and is_text(batch.type_of(text)):
-        return TEXT
-    return None
-
-
-def batch_windows(batch: Batch, settings) -> Windows:
-    """The windows of a batch (computed once per batch for both rules of this module)."""
-    per_batch = _WINDOWS_CACHE.setdefault(batch, {})
-    key = (settings.tokens_column, settings.text_column)
-    if key not in per_batch:
-        per_batch[key] = _windows(batch, settings)
-    return per_batch[key]
-
-
-def _windows(batch: Batch, settings) -> Windows:
-    domain = window_domain(batch, settings)
-    if domain == TOKENS:
-        flat = batch.flat(settings.tokens_column)
-        values, offsets = flat.values, flat.offsets
-        lengths = flat.lengths
-    else:
-        # The UTF-8 bytes of the documents, straight from the Arrow string buffer (as stored, not repaired).
-        array = batch.column(settings.text_column)
-        width = np.int64 if pat.is_large_string(array.type) else np.int32
-        buffers = array.buffers()
-        if len(array) == 0 or buffers[1] is None:
-            return Windows(TEXT, np.zeros(0, np.int64), np.zeros(0, np.uint32), np.zeros(0, np.uint32),
-                           np.zeros((0, 2), np.uint64), np.zeros(0, np.uint8))
-        offsets = np.frombuffer(buffers[1], dtype=width)[array.offset:array.offset + len(array) + 1].astype(np.int64)
-        values = np.frombuffer(buffers[2], dtype=np.uint8) if buffers[2] is not None else np.zeros(0, np.uint8)
-        lengths = np.diff(offsets)
-        if array.null_count:
-            lengths[~pc.is_valid(array).to_numpy(zero_copy_only=False)] = 0  # Arrow allows bytes under a null
-    local = np.flatnonzero(lengths > 0)
-    content = content_hashes(values, offsets[local], offsets[local + 1], domain)
-    return Windows(domain, local, _narrow(batch.rows[local]), _narrow(lengths[local]), content,
-                   np.full(len(local), domain, dtype=np.uint8))
-
-
-# -- signatures on disk -----------------------------------------------------------------------------------------
-
-
-class SignatureSpill:
-    """The MinHash signatures of one shard, appended batch by batch to a NumPy ``.npy`` file.
-
-    A ``.npy`` file states its shape in a header before the data, but the number of windows of a shard is known
-    only at its end. So the header is reserved as a fixed :attr:`HEADER_BYTES` bytes when the file is opened,
-    each batch's signatures are appended as little-endian uint32 rows, and :meth:`close` writes the header (NPY
-    format version 1.0: magic, version, header length, the dictionary padded with spaces and ended by a newline,
-    128 bytes in all, a multiple of 64 as the format asks). The result is an ordinary ``.npy`` file, read back
-    with ``np.load(path, mmap_mode="r")``. Only the path travels in the rule's state.
-    """
-
-    HEADER_BYTES = 128
-    DTYPE = "<u4"
-    PREFIX = "signatures-"
-    WHAT = "MinHash signatures"
-
-    def __init__(self, folder: str, num_perm: int):
-        try:
-            os.makedirs(folder, mode=0o700, exist_ok=True)
-            fd, self.path = tempfile.mkstemp(prefix=self.PREFIX, suffix=".npy", dir=folder)
-        except OSError as exc:
-            raise OSError(f"cannot write {self.WHAT} under {folder} ({exc.strerror or exc}); set TMPDIR to a "
-                          f"writable folder with room for {np.dtype(self.DTYPE).itemsize * num_perm} bytes per "
-                          "window") from None
-        self.num_perm = num_perm
-        self.windows = 0
-        self._file = os.fdopen(fd, "wb")
-        self._file.write(bytes(self.HEADER_BYTES))
-
-    def append(self, rows: np.ndarray) -> None:
-        rows = np.ascontiguousarray(rows, dtype=self.DTYPE)
-        if rows.ndim != 2 or rows.shape[1] != self.num_perm:
-            raise ValueError(f"{self.WHAT} must have shape (windows, {self.num_perm}), got {rows.shape}")
-        self._file.write(rows.data)
-        self.windows += len(rows)
-
-    def close(self) -> str:
-        """Write the header and close the file; returns its path."""
-        header = {"descr": self.DTYPE, "fortran_order": False, "shape": (self.windows, self.num_perm)}
-        text = repr(header).encode("latin1")
-        text = text.ljust(self.HEADER_BYTES - 10 - 1) + b"\n"
-        self._file.seek(0)
-        self._file.write(b"\x93NUMPY\x01\x00" + struct.pack("<H", len(text)) + text)
-        self._file.close()
-        return self.path
-
-
-class BandSpill(SignatureSpill):
-    """The band keys and the signature digest of every window of one shard, in a ``.npy`` file of the same make:
-    uint64 rows of ``bands + 1`` values, the digest last (see :meth:`NearDuplicate.end`)."""
-
-    DTYPE = "<u8"
-    PREFIX = "bands-"
-    WHAT = "LSH band keys"
-
-
-def _npy_layout(path: str) -> tuple[tuple, np.dtype, int]:
-    """``(shape, dtype, offset of the data)`` of the 2-D C-order array in the ``.npy`` file ``path`` (NPY format
-    1.0 or 2.0, read with NumPy's own header parser)."""
-    with open(path, "rb") as fh:
-        version = np.lib.format.read_magic(fh)
-        if version == (1, 0):
-            shape, fortran, dtype = np.lib.format.read_array_header_1_0(fh)
-        elif version == (2, 0):
-            shape, fortran, dtype = np.lib.format.read_array_header_2_0(fh)
-        else:
-            raise ValueError(f"{path}: .npy format version {version} is not supported; expected 1.0 or 2.0")
-        start = fh.tell()
-    if len(shape) != 2 or fortran:
-        raise ValueError(f"{path}: expected a 2-D array in C order, got shape {shape}")
-    return shape, dtype, start
-
-
-def read_rows(path: str, rows: np.ndarray) -> np.ndarray:
-    """Rows ``rows`` (sorted, distinct) of the 2-D array in the ``.npy`` file ``path``, as :func:`np.load` gives
-    them.
-
-    The file is memory-mapped one block of :data:`_VERIFY_BLOCK_ROWS` rows at a time, and only where rows are asked
-    for: pages of a file that a process has mapped count in its resident memory while the map lasts, so one map of
-    the whole file would make the scan's peak memory grow with the shard (up to the size of its signature file);
-    block by block it grows by one block at most. The loop runs once per block that holds asked-for rows."""
-    shape, dtype, start = _npy_layout(path)
-    rows = np.asarray(rows, dtype=np.int64)
-    out = np.empty((len(rows), shape[1]), dtype=dtype)
-    if len(rows) == 0 or shape[1] == 0:
-        return out
-    if rows[0] < 0 or rows[-1] >= shape[0]:
-        raise IndexError(f"{path}: rows {int(rows[0])} to {int(rows[-1])} asked for, the file has {shape[0]}")
-    blocks = rows // _VERIFY_BLOCK_ROWS
-    cuts = np.flatnonzero(blocks[1:] != blocks[:-1]) + 1
-    row_bytes = shape[1] * dtype.itemsize
-    for a, b in zip([0, *cuts.tolist()], [*cuts.tolist(), len(rows)]):
-        first, last = int(rows[a]), int(rows[b - 1])
-        mapped = np.memmap(path, dtype=dtype, mode="r", offset=start + first * row_bytes,
-                           shape=(last - first + 1, shape[1]))
-        out[a:b] = mapped[rows[a:b] - first]
-        del mapped
-    return out
-
-
-def npy_blocks(path: str):
-    """The rows of the 2-D array in the ``.npy`` file ``path`` in order, :data:`_VERIFY_BLOCK_ROWS` at a time:
-    ``(index of the first row, block)``, read into one buffer that the next block overwrites."""
-    shape, dtype, start = _npy_layout(path)
-    buffer = np.empty((min(shape[0], _VERIFY_BLOCK_ROWS), shape[1]), dtype=dtype)
-    with open(path, "rb") as fh:
-        fh.seek(start)
-        for lo in range(0, shape[0], _VERIFY_BLOCK_ROWS):
-            block = buffer[:min(_VERIFY_BLOCK_ROWS, shape[0] - lo)]
-            if fh.readinto(block.data) != block.nbytes:
-                raise OSError(f"{path} ends before its {shape[0]} rows; it was cut or changed during the scan")
-            yield lo, block
 
 
 # -- the shuffle of band keys ----------------------------------------------------------------------------------
@@ -519,7 +246,7 @@ def _band_file(keys: np.ndarray, digests: np.ndarray) -> str | None:
             not keys.filename or keys.filename != digests.filename:
         return None
     try:
-        shape, dtype, _ = _npy_layout(keys.filename)
+        shape, dtype, _ = npy_layout(keys.filename)
     except (OSError, ValueError):
         return None
     row = dtype.itemsize * shape[1]
@@ -677,13 +404,6 @@ def _ranges(bounds: np.ndarray, limit: int):
         w1 = min(rows, max(w1, w0 + 1))
         yield w0, w1
         w0 = w1
-
-
-def _narrow(values: np.ndarray) -> np.ndarray:
-    """Non-negative integers as uint32 when they all fit, else as they are."""
-    if len(values) == 0 or int(values.max()) <= 0xFFFF_FFFF:
-        return values.astype(np.uint32)
-    return values
 
 
 _JOINS: dict = {}
@@ -1033,14 +753,14 @@ class NearDuplicate(_DuplicateRule):
         return NearPartial(found.pairs, similarity, found.capped_buckets, found.largest_bucket)
 
     def _bucket_candidates(self, keys: np.ndarray, ids: np.ndarray, digests: np.ndarray) -> Candidates:
-        """:func:`lint.lsh.partition_candidates` of a partition's entries, in finer partitions of at most about
+        """:func:`corpuscle.kernels.lsh.partition_candidates` of a partition's entries, in finer partitions of at most about
         :data:`_REDUCE_ENTRIES` entries each when it has more: its scratch memory is several times that of the
         entries it is given, so it is given a bounded share at a time.
 
         The finer partitions split by other bits of the key (bits 32 and up modulo their number; the keys are
         mixed hashes, so these spread evenly too): each bucket still lies wholly in one of them, and windows with
         identical signatures share all their keys, so the union of their pairs is the partition's pair set (the
-        reasoning of :func:`~lint.lsh.partition_candidates`), made unique here; capped buckets add up and the
+        reasoning of :func:`~corpuscle.kernels.lsh.partition_candidates`), made unique here; capped buckets add up and the
         largest bucket is the largest of any."""
         max_bucket = self.opts["max_bucket"]
         finer = -(-len(keys) // _REDUCE_ENTRIES)

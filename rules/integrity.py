@@ -3,10 +3,9 @@ missing, of the wrong type, or of different lengths where they must run in paral
 from __future__ import annotations
 
 import numpy as np
-
-from lint.batch import is_integer_list, is_text
-from lint.findings import Level
-from lint.rule import Rule, absolute_rows
+from corpuscle.findings import Level
+from corpuscle.io.batch import is_integer_list, is_text
+from corpuscle.rules.api import Rule, absolute_rows
 
 RECORD_PROBLEMS = {
     "bad-json": "line(s) that are not valid JSON",

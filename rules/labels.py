@@ -12,13 +12,11 @@ import copy
 from collections import defaultdict
 
 import numpy as np
-
-from lint.batch import Batch, Flat
-from lint.findings import Finding, Level
-from lint.rule import Rule, Unmergeable, absolute_rows, consistent, pct, share
-from lint.shift import PREFERENCE, SHIFTS, best_shift, first_mismatch, shift_matches
-
-from .separators import inner_starts, padding_free, padding_positions, position_restarts, token_positions
+from corpuscle.findings import Finding, Level
+from corpuscle.io.batch import Batch, Flat
+from corpuscle.kernels.shift import PREFERENCE, SHIFTS, best_shift, first_mismatch, shift_matches
+from corpuscle.kernels.tokens import inner_starts, padding_free, padding_positions, position_restarts, token_positions
+from corpuscle.rules.api import Rule, Unmergeable, absolute_rows, consistent, pct, share
 
 #: Label shift each convention expects in the data.
 CONVENTION_SHIFT = {"shifted": 1, "aligned": 0}
@@ -354,7 +352,7 @@ class LabelAlignment(Rule):
     def merge(self, first, second):
         """Counters and hits as usual, after ``first``'s last row is checked against ``second``'s first row as one
         scan checks it; the first label values met, up to VALUES_KEPT (a state that cannot say exactly which
-        values one scan would have kept raises :class:`lint.rule.Unmergeable`)."""
+        values one scan would have kept raises :class:`corpuscle.rules.api.Unmergeable`)."""
         head = copy.copy(first)
         head.stats = defaultdict(int, first.stats)
         head.hits = {kind: copy.deepcopy(hits) for kind, hits in first.hits.items()}

@@ -1,6 +1,6 @@
 """Document lengths against the context window, and what the shard's layout spends its token budget on.
 
-Both rules read the shard's documents the same way (:mod:`lint.documents`: position restarts, separators, one
+Both rules read the shard's documents the same way (:mod:`corpuscle.kernels.documents`: position restarts, separators, one
 document per row, or raw text counted with a tokenizer or in UTF-8 bytes) and keep their lengths as a histogram,
 so a shard's state stays small however many documents it holds.
 """
@@ -8,12 +8,20 @@ from __future__ import annotations
 
 import copy
 
-from lint.batch import is_integer_list, is_text
-from lint.documents import (ONE_PER_ROW, QUANTILE_METHOD, QUANTILES, TEXT, DocumentTally, LengthHistogram,
-                            documents_of, infer_arrangement)
-from lint.findings import Finding, Level
-from lint.packing import AsBuilt, compare_layouts, savings
-from lint.rule import Rule, Unmergeable, consistent, pct, share
+from corpuscle.findings import Finding, Level
+from corpuscle.io.batch import is_integer_list, is_text
+from corpuscle.kernels.documents import (
+    ONE_PER_ROW,
+    QUANTILE_METHOD,
+    QUANTILES,
+    TEXT,
+    DocumentTally,
+    LengthHistogram,
+    documents_of,
+    infer_arrangement,
+)
+from corpuscle.kernels.packing import AsBuilt, compare_layouts, savings
+from corpuscle.rules.api import Rule, Unmergeable, consistent, pct, share
 
 #: Names of the three layouts in reports (camelCase keys) and in messages.
 LAYOUT_KEYS = {"one_per_window": "oneDocumentPerWindow", "concat_chunk": "concatenateAndChunk",
@@ -40,7 +48,7 @@ def length_summary(lengths: LengthHistogram) -> dict:
 
 
 class _DocumentRule(Rule):
-    """Shared by the length rules: feeds every batch's documents to a :class:`~lint.documents.DocumentTally`.
+    """Shared by the length rules: feeds every batch's documents to a :class:`~corpuscle.kernels.documents.DocumentTally`.
 
     A large shard may be scanned in parts: a part that continues an earlier one holds its first rows aside (they
     finish the document the earlier part left open), a part that others follow keeps its last document open, and
@@ -81,7 +89,7 @@ class _DocumentRule(Rule):
         state.tally.add(documents_of(batch, s, state.arrangement))
 
     def infer(self, batch, settings):
-        """How documents sit in the shard's rows, from its first batch (see :func:`lint.documents.infer_arrangement`):
+        """How documents sit in the shard's rows, from its first batch (see :func:`corpuscle.kernels.documents.infer_arrangement`):
         every part of a split shard reads its documents the same way."""
         return infer_arrangement(batch, settings) if len(batch) else None
 

@@ -16,13 +16,10 @@ from __future__ import annotations
 from functools import cached_property
 
 import numpy as np
-
-from lint.batch import Flat, MaskRanks, is_integer_list, spans
-from lint.findings import Finding, Level
-from lint.rule import Rule, absolute_rows, consistent, pct, share
-
-from .separators import padding_positions, real_per_row, real_positions, real_ranks
-
+from corpuscle.findings import Finding, Level
+from corpuscle.io.batch import Flat, MaskRanks, is_integer_list, spans
+from corpuscle.kernels.tokens import padding_positions, real_per_row, real_positions, real_ranks
+from corpuscle.rules.api import Rule, absolute_rows, consistent, pct, share
 
 # -- per-row arithmetic over flat arrays --------------------------------------------------------------------------
 

@@ -19,9 +19,7 @@ from __future__ import annotations
 import functools
 import os
 import string
-import weakref
 from collections import Counter
-from dataclasses import dataclass, field
 
 import numpy as np
 import orjson
@@ -29,76 +27,10 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.types as pat
 import regex
-
-from lint.batch import Batch, is_integer_list, is_text
-from lint.findings import Finding, Level
-from lint.rule import Rule, absolute_rows, consistent, pct, share
-
-# -- the text column of a batch, as valid UTF-8 ----------------------------------------------------------------
-
-
-@dataclass
-class DocumentText:
-    """The text column of one batch, safe for Arrow's UTF-8 kernels.
-
-    ``array`` is None when the column holds nothing but nulls (Arrow type ``null``). ``invalid`` lists the rows
-    whose stored bytes were not UTF-8 as ``(batch-local row, byte offset in the value, character offset)`` of the
-    first bad byte; those values are repaired in ``array``.
-    """
-
-    array: pa.Array | None
-    rows: int
-    invalid: list[tuple[int, int, int]] = field(default_factory=list)
-
-    @property
-    def nulls(self) -> int:
-        return self.rows if self.array is None else self.array.null_count
-
-
-_TEXT_CACHE: "weakref.WeakKeyDictionary[Batch, dict]" = weakref.WeakKeyDictionary()
-
-
-def has_text(batch: Batch, settings) -> bool:
-    """Whether the batch has the text column as strings, or as all-null values (Arrow type ``null``)."""
-    name = settings.text_column
-    return batch.has(name) and (is_text(batch.type_of(name)) or pat.is_null(batch.type_of(name)))
-
-
-def document_text(batch: Batch, settings) -> DocumentText:
-    """The batch's text column (see :class:`DocumentText`), computed once per batch for all rules of this module."""
-    name = settings.text_column
-    per_batch = _TEXT_CACHE.setdefault(batch, {})
-    if name not in per_batch:
-        array = batch.column(name)
-        if pat.is_null(array.type):
-            per_batch[name] = DocumentText(None, len(array))
-        elif batch.shard.line_based:
-            # The JSON Lines reader decodes every line (replacing invalid bytes and reporting them): valid already.
-            per_batch[name] = DocumentText(array, len(array))
-        else:
-            per_batch[name] = _validated(array)
-    return per_batch[name]
-
-
-def _validated(array: pa.Array) -> DocumentText:
-    """Arrow's full validation checks that every value is UTF-8; a batch that fails is repaired row by row."""
-    try:
-        array.validate(full=True)
-        return DocumentText(array, len(array))
-    except pa.ArrowInvalid:
-        pass
-    binary = pa.large_binary() if pat.is_large_string(array.type) else pa.binary()
-    values, invalid = [], []
-    for i, raw in enumerate(array.view(binary).to_pylist()):  # only a batch known to hold invalid bytes
-        if raw is None:
-            values.append(None)
-            continue
-        try:
-            values.append(raw.decode("utf-8"))
-        except UnicodeDecodeError as bad:
-            values.append(raw.decode("utf-8", errors="replace"))
-            invalid.append((i, bad.start, len(raw[:bad.start].decode("utf-8"))))
-    return DocumentText(pa.array(values, type=array.type), len(array), invalid)
+from corpuscle.findings import Finding, Level
+from corpuscle.io.batch import is_integer_list, is_text
+from corpuscle.kernels.text import DocumentText, document_text, has_text
+from corpuscle.rules.api import Rule, absolute_rows, consistent, pct, share
 
 
 def _true_rows(mask: pa.Array) -> np.ndarray:

@@ -3,9 +3,8 @@ type too narrow for the vocabulary, in which ids have silently wrapped around.""
 from __future__ import annotations
 
 import numpy as np
-
-from lint.findings import Finding, Level
-from lint.rule import Rule, absolute_rows, pct
+from corpuscle.findings import Finding, Level
+from corpuscle.rules.api import Rule, absolute_rows, pct
 
 #: A largest observed id within this share of the storage type's range below its maximum is reported as what
 #: wrapped ids look like (a heuristic: wrapped ids spread over the whole range of the type).

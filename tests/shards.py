@@ -12,8 +12,7 @@ import pathlib
 
 import pyarrow as pa
 import pyarrow.parquet as pq
-
-from lint import Settings, scan
+from corpuscle import Settings, scan
 
 REPO = pathlib.Path(__file__).resolve().parent.parent
 SARIF_SCHEMA = REPO.parent / "shared" / "standards" / "sarif-schema-2.1.0.json"

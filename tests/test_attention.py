@@ -4,8 +4,8 @@ Expected rows, offsets and shares are computed here by plain Python over the sam
 from: a row holds several documents when a separator sits before its last real token.
 """
 import pytest
+from corpuscle import Level
 
-from lint import Level
 from tests.shards import findings, locations, pack, run, write
 from tests.test_separators import BOS, EOS, PAD, documents, real_lengths
 

@@ -6,8 +6,8 @@ import os
 import pyarrow as pa
 import pyarrow.parquet as pq
 from click.testing import CliRunner
+from corpuscle.cli import main
 
-from lint.cli import main
 from tests.shards import findings, locations, run
 
 

@@ -5,8 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pyarrow as pa
 import pytest
-
-from lint.batch import Flat, flatten_list, running_count, spans
+from corpuscle.io.batch import Flat, flatten_list, running_count, spans
 
 
 def random_rows(rng, max_rows=20, max_len=14):
@@ -70,7 +69,7 @@ def test_fixed_size_lists_flatten_with_regular_offsets():
 
 @pytest.mark.parametrize("numpy_popcount", [True, False])
 def test_mask_ranks_rank_and_select_equal_counting_in_python(numpy_popcount, monkeypatch):
-    from lint.batch import MaskRanks
+    from corpuscle.io.batch import MaskRanks
 
     if not numpy_popcount:  # the bit-twiddling count used with numpy < 2.0
         monkeypatch.delattr(np, "bitwise_count", raising=False)
@@ -99,8 +98,8 @@ def test_batch_memo_computes_once_and_consistent_batches_hold_no_cycle():
     import gc
     import weakref
 
-    from lint.batch import Batch, Shard
-    from lint.rule import consistent
+    from corpuscle.io.batch import Batch, Shard
+    from corpuscle.rules.api import consistent
 
     table = pa.table({"input_ids": pa.array([[1, 2], [3]]), "labels": pa.array([[2, -100], [-100]])})
     batch = Batch(Shard("x.parquet", "x.parquet", "parquet"), table, np.arange(2))

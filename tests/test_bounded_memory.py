@@ -6,14 +6,14 @@ from __future__ import annotations
 import gc
 import weakref
 
+import corpuscle.engine.scan as engine
 import numpy as np
 import pytest
+from corpuscle.engine.registry import registry
+from corpuscle.io.batch import is_integer_list
+from corpuscle.io.sources import discover, open_shard
+from corpuscle.settings import Settings
 
-import lint.engine as engine
-from lint.batch import is_integer_list
-from lint.settings import Settings
-from lint.sources import discover, open_shard
-from rules import registry
 from tests.shards import pack, write
 
 BUDGET = 1000

@@ -13,10 +13,10 @@ import sys
 
 import pytest
 from click.testing import CliRunner
+from corpuscle import __version__
+from corpuscle.cli import main
+from corpuscle.engine.registry import registry
 
-from lint import __version__
-from lint.cli import main
-from rules import registry
 from tests.shards import REPO, pack, write
 
 # -- shards -------------------------------------------------------------------------------------------------

@@ -24,18 +24,18 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 import pytest
 from click.testing import CliRunner
+from corpuscle import Settings
+from corpuscle.cli import main
+from corpuscle.engine import split
+from corpuscle.engine.executors import ClusterUnavailable, DaskExecutor, LocalExecutor, TopicProgress
+from corpuscle.engine.registry import registry
+from corpuscle.engine.scan import run, select_rules
+from corpuscle.io.sources import discover
+from corpuscle.kernels.lsh import band_keys, candidate_pairs, partition_candidates, signature_digests
 
-from lint import Settings
-from lint.cli import main
-from lint.engine import run, select_rules
-from lint import split
-from lint.executors import ClusterUnavailable, DaskExecutor, LocalExecutor, TopicProgress
-from lint.lsh import band_keys, candidate_pairs, partition_candidates, signature_digests
-from lint.sources import discover
-from rules import registry
 from tests.shards import findings, write
-from tests.test_progress import Recorder, row_group_bytes
 from tests.test_duplicates import datasketch_clusters, jaccard, members, miss_probability, mutate, shingles_of
+from tests.test_progress import Recorder, row_group_bytes
 
 VOCAB = 50_000
 LENGTH = 256
@@ -188,7 +188,7 @@ def test_a_keyed_rule_splits_its_state_and_leaves_it_unchanged(tmp_path):
     settings = Settings(only=("near-duplicate",))
     report_rules = select_rules(settings, registry())
     rule = report_rules[0]
-    from lint.engine import scan_shard
+    from corpuscle.engine.scan import scan_shard
 
     state = scan_shard(discover(["a.parquet"])[0], settings, report_rules).states[rule.id]
     slim, pieces = rule.partition(state, 3)
@@ -397,7 +397,7 @@ def test_the_cluster_stand_in_pickles_and_reaches_the_target_from_anywhere(clust
 def test_cluster_without_distributed_is_a_usage_error():
     write("a.parquet", {"input_ids": [[1, 2, 3]]})
     # In a child process where `import distributed` raises ImportError (this one may be running a cluster).
-    code = "import sys; sys.modules['distributed'] = None; from lint.cli import main; main()"
+    code = "import sys; sys.modules['distributed'] = None; from corpuscle.cli import main; main()"
     result = subprocess.run([sys.executable, "-c", code, "scan", "a.parquet", "--cluster", "local"], text=True,
                             capture_output=True, env={**os.environ, "PYTHONPATH": REPO}, timeout=120)
     assert result.returncode == 2 and result.stdout == ""

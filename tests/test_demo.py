@@ -8,8 +8,8 @@ import json
 
 import pyarrow.parquet as pq
 from click.testing import CliRunner
+from corpuscle.cli import main
 
-from lint.cli import main
 from tests.shards import REPO
 
 DEMO = REPO / "fixtures" / "demo"

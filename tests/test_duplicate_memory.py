@@ -13,24 +13,35 @@ from __future__ import annotations
 
 import pickle
 
+import corpuscle.kernels.spill as spill_files
+import corpuscle.rules.duplicates as duplicates
 import numpy as np
 import pytest
+from corpuscle.engine.scan import scan_shard
+from corpuscle.io.sources import discover, open_shard
+from corpuscle.kernels.lsh import band_keys, signature_digests
+from corpuscle.kernels.minhash import shingle_hash
+from corpuscle.kernels.spill import SignatureSpill, npy_blocks, read_rows
+from corpuscle.rules.duplicates import ExactDuplicate, NearDuplicate
+from corpuscle.settings import Settings
 from datasketch import MinHash
 
-import rules.duplicates as duplicates
-from lint.engine import scan_shard
-from lint.lsh import band_keys, signature_digests
-from lint.minhash import shingle_hash
-from lint.settings import Settings
-from lint.sources import discover, open_shard
-from rules.duplicates import ExactDuplicate, NearDuplicate, SignatureSpill, npy_blocks, read_rows
 from tests.shards import findings
-from tests.test_duplicates import (datasketch_clusters, members, run_dedup, shingles_of, text_corpus, token_corpus,
-                                   words_of, write_lines, write_tokens)
+from tests.test_duplicates import (
+    datasketch_clusters,
+    members,
+    run_dedup,
+    shingles_of,
+    text_corpus,
+    token_corpus,
+    words_of,
+    write_lines,
+    write_tokens,
+)
 
 
 def test_rows_read_back_block_by_block_are_what_np_load_gives(tmp_path, monkeypatch):
-    monkeypatch.setattr(duplicates, "_VERIFY_BLOCK_ROWS", 7)
+    monkeypatch.setattr(spill_files, "_VERIFY_BLOCK_ROWS", 7)
     rng = np.random.default_rng(2)
     values = rng.integers(0, 2 ** 32, size=(100, 6), dtype=np.uint64)
     spill = SignatureSpill(str(tmp_path / "s"), 6)
@@ -54,7 +65,7 @@ def test_rows_read_back_block_by_block_are_what_np_load_gives(tmp_path, monkeypa
 
 def test_verified_similarity_is_datasketch_jaccard(tmp_path, monkeypatch):
     # Small blocks and chunks: rows of one chunk of pairs come from several blocks of both files.
-    monkeypatch.setattr(duplicates, "_VERIFY_BLOCK_ROWS", 5)
+    monkeypatch.setattr(spill_files, "_VERIFY_BLOCK_ROWS", 5)
     monkeypatch.setattr(duplicates, "_VERIFY_PAIRS", 37)
     rule = NearDuplicate(signature_folder=str(tmp_path))
     rng = np.random.default_rng(8)
@@ -88,8 +99,9 @@ def summary(report) -> tuple:
 def tiny_steps(monkeypatch) -> None:
     """Every step that bounds the rules' memory made tiny, so that each loop runs many times."""
     for name, value in (("_SHINGLE_VALUES", 50), ("_SIGNATURE_WINDOWS", 2), ("_VERIFY_PAIRS", 3),
-                        ("_VERIFY_BLOCK_ROWS", 4), ("_PARTITION_WINDOWS", 3), ("_REDUCE_ENTRIES", 16)):
+                        ("_PARTITION_WINDOWS", 3), ("_REDUCE_ENTRIES", 16)):
         monkeypatch.setattr(duplicates, name, value)
+    monkeypatch.setattr(spill_files, "_VERIFY_BLOCK_ROWS", 4)
 
 
 def test_the_steps_that_bound_memory_do_not_change_a_token_report(monkeypatch):
@@ -169,7 +181,7 @@ def test_text_windows_without_words_keep_the_near_duplicate_arrays_apart():
 
 
 def test_band_keys_go_to_a_file_and_both_ways_of_reading_them_agree(monkeypatch):
-    monkeypatch.setattr(duplicates, "_VERIFY_BLOCK_ROWS", 4)
+    monkeypatch.setattr(spill_files, "_VERIFY_BLOCK_ROWS", 4)
     monkeypatch.setattr(duplicates, "_PARTITION_WINDOWS", 3)
     rng = np.random.default_rng(6)
     rows = [rng.integers(0, 50_000, 40).tolist() for _ in range(25)]

@@ -25,17 +25,20 @@ import pyarrow.parquet as pq
 import pytest
 import regex
 from click.testing import CliRunner
+from corpuscle import Settings, scan
+from corpuscle.cli import main
+from corpuscle.engine.registry import registry
+from corpuscle.engine.scan import select_rules
+from corpuscle.kernels.hashing import content_hashes
+from corpuscle.kernels.minhash import WORD_CLASS, shingle_hash, shingle_hashes, signatures
+from corpuscle.kernels.spill import SignatureSpill
+from corpuscle.kernels.windows import TOKENS
+from corpuscle.report import droplist, sarif
+from corpuscle.rules.duplicates import NearDuplicate
+from corpuscle.settings import SettingsError
 from datasketch import MinHash, MinHashLSH
 from datasketch.lsh import _optimal_param
 
-from lint import Settings, scan
-from lint.cli import main
-from lint.engine import select_rules
-from lint.minhash import WORD_CLASS, shingle_hash, shingle_hashes, signatures
-from lint.report import droplist, sarif
-from lint.settings import SettingsError
-from rules import registry
-from rules.duplicates import TOKENS, NearDuplicate, SignatureSpill, content_hashes
 from tests.shards import SARIF_SCHEMA, findings, write
 
 RULES = ("near-duplicate", "exact-duplicate")
@@ -364,7 +367,7 @@ def test_content_hashes_agree_between_equal_and_mixed_lengths():
 
 
 def test_long_windows_hash_piece_by_piece_to_the_same_value(monkeypatch):
-    import rules.duplicates as duplicates
+    import corpuscle.kernels.hashing as hashing
 
     rng = np.random.default_rng(6)
     lengths = [3, 300, 40, 250, 7]
@@ -372,14 +375,14 @@ def test_long_windows_hash_piece_by_piece_to_the_same_value(monkeypatch):
     offsets = np.concatenate(([0], np.cumsum(lengths)))
     whole = content_hashes(values, offsets[:-1], offsets[1:], 1)
     # Windows over 64 words are "long" now: keys made per piece of at most 100 words, beyond the key table.
-    monkeypatch.setattr(duplicates, "_KEY_TABLE", 64)
-    monkeypatch.setattr(duplicates, "_HASH_CHUNK", 100)
+    monkeypatch.setattr(hashing, "_KEY_TABLE", 64)
+    monkeypatch.setattr(hashing, "_HASH_CHUNK", 100)
     np.testing.assert_array_equal(content_hashes(values, offsets[:-1], offsets[1:], 1), whole)
     assert len({tuple(h) for h in whole.tolist()}) == 5
 
 
 def test_content_hash_follows_its_documented_definition():
-    from rules.duplicates import _CONSTANT_KEYS, _position_keys
+    from corpuscle.kernels.hashing import _CONSTANT_KEYS, _position_keys
 
     window = [5, 0, 2**32 - 1, 77, 3]
     mask = (1 << 64) - 1
@@ -515,7 +518,7 @@ def test_signatures_are_spilled_to_an_npy_file_and_removed_by_corpus(tmp_path, m
     rng = np.random.default_rng(4)
     write("a.parquet", {"input_ids": [rng.integers(0, VOCAB, 64).tolist() for _ in range(30)] + [[]]},
           row_group_size=7)
-    from lint.sources import discover, open_shard
+    from corpuscle.io.sources import discover, open_shard
 
     rule = NearDuplicate()
     shard = discover(["a.parquet"])[0]

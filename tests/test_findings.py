@@ -7,12 +7,11 @@ import pickle
 
 import numpy as np
 import pytest
-
-from lint.batch import Shard
-from lint.findings import Finding, Hits, Level
-from lint.report import write_atomic
-from lint.rule import ShardState
-from lint.settings import Settings
+from corpuscle.findings import Finding, Hits, Level
+from corpuscle.io.batch import Shard
+from corpuscle.report import write_atomic
+from corpuscle.rules.api import ShardState
+from corpuscle.settings import Settings
 
 # -- Hits ---------------------------------------------------------------------------------------------------
 

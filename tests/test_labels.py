@@ -10,11 +10,11 @@ import random
 import numpy as np
 import pyarrow as pa
 import pytest
+from corpuscle import Level
+from corpuscle.io.batch import Flat
+from corpuscle.kernels.shift import best_shift, first_mismatch, shift_agreement, shift_matches
+from corpuscle.rules.labels import LabelAlignment
 
-from lint import Level
-from lint.batch import Flat
-from lint.shift import best_shift, first_mismatch, shift_agreement, shift_matches
-from rules.labels import LabelAlignment
 from tests.shards import findings, locations, pack, run, write
 
 RULE = "label-alignment"

@@ -1,4 +1,4 @@
-"""Tests for the length rules (overlong-document, truncation-waste) and lint.documents.
+"""Tests for the length rules (overlong-document, truncation-waste) and corpuscle.kernels.documents.
 
 Every expected figure is computed here, independently of the code under test, with plain Python over the same
 lists of invented documents: document lengths and where each starts, real/padding/cut counts of a padded shard,
@@ -15,12 +15,12 @@ import pickle
 
 import numpy as np
 import pytest
+from corpuscle.kernels.documents import LengthHistogram, percentile
+from corpuscle.kernels.packing import compare_layouts
+from corpuscle.report import json as json_report
+from corpuscle.report import sarif, text
+from corpuscle.settings import Settings, SettingsError
 
-from lint.documents import LengthHistogram, percentile
-from lint.packing import compare_layouts
-from lint.report import json as json_report
-from lint.report import sarif, text
-from lint.settings import Settings, SettingsError
 from tests.shards import SARIF_SCHEMA, findings, locations, pack, run, write
 
 RULES = ("overlong-document", "truncation-waste")
@@ -207,9 +207,9 @@ def test_packed_documents_joined_across_rows_and_batches(tmp_path, positions, ro
 
 def test_batches_fed_by_hand_give_the_same_documents(tmp_path):
     """The rule's state carries the open document from batch to batch (tiny batches from the reader)."""
-    from lint.settings import infer_from_batch
-    from lint.sources import discover, open_shard
-    from rules.lengths import OverlongDocument, TruncationWaste
+    from corpuscle.engine.infer import infer_from_batch
+    from corpuscle.io.sources import discover, open_shard
+    from corpuscle.rules.lengths import OverlongDocument, TruncationWaste
 
     seq_len = 12
     docs = invented_documents(seed=17, count=30, longest=40)

@@ -1,4 +1,4 @@
-"""Tests of lint.lsh: band parameters, band keys, candidate pairs, clusters.
+"""Tests of corpuscle.kernels.lsh: band parameters, band keys, candidate pairs, clusters.
 
 References: datasketch 2.0.0 (``MinHashLSH`` parameter choice and queries,
 ``MinHash.jaccard``); the banding probability ``1 - (1 - s**r)**b`` (Leskovec,
@@ -13,10 +13,7 @@ import math
 
 import numpy as np
 import pytest
-from datasketch import MinHash, MinHashLSH
-from datasketch.lsh import _optimal_param
-
-from lint.lsh import (
+from corpuscle.kernels.lsh import (
     band_keys,
     candidate_pairs,
     clusters,
@@ -24,7 +21,9 @@ from lint.lsh import (
     optimal_bands,
     signature_digests,
 )
-from lint.minhash import shingle_hashes, signatures
+from corpuscle.kernels.minhash import shingle_hashes, signatures
+from datasketch import MinHash, MinHashLSH
+from datasketch.lsh import _optimal_param
 
 # Two-sided tail of a normal distribution beyond 4 standard deviations.
 FOUR_SIGMA_TAIL = 6.334e-5

@@ -1,4 +1,4 @@
-"""Tests of lint.minhash: shingle hashing and MinHash signatures.
+"""Tests of corpuscle.kernels.minhash: shingle hashing and MinHash signatures.
 
 Reference library: datasketch 2.0.0 (``datasketch.MinHash`` with the
 ``affine32`` scheme), fed the same shingles one tuple at a time with
@@ -10,15 +10,13 @@ from __future__ import annotations
 
 import unicodedata
 
+import corpuscle.kernels.minhash as minhash
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 import pytest
 import regex
-from datasketch import MinHash
-
-import lint.minhash as minhash
-from lint.minhash import (
+from corpuscle.kernels.minhash import (
     EMPTY_VALUE,
     WORD_CLASS,
     MinHashSettings,
@@ -29,6 +27,7 @@ from lint.minhash import (
     word_id,
     word_shingle_hashes,
 )
+from datasketch import MinHash
 
 MASK64 = (1 << 64) - 1
 
@@ -63,7 +62,7 @@ def varied_lengths(rng, n: int, count: int) -> np.ndarray:
 
 
 def documented_shingle_hash(ids) -> int:
-    """The shingle hash exactly as written in the lint.minhash module notes."""
+    """The shingle hash exactly as written in the corpuscle.kernels.minhash module notes."""
 
     def mix64(z):
         z = (z + 0x9E3779B97F4A7C15) & MASK64

@@ -6,11 +6,11 @@ import os
 
 import numpy as np
 import pytest
+from corpuscle.engine.scan import scan_shard
+from corpuscle.io.sources import discover
+from corpuscle.rules.duplicates import NearDuplicate
+from corpuscle.settings import Settings
 
-from lint.engine import scan_shard
-from lint.settings import Settings
-from lint.sources import discover
-from rules.duplicates import NearDuplicate
 from tests.shards import run, write
 
 WINDOW = 64

@@ -1,4 +1,4 @@
-"""Tests for lint.packing: three window layouts of a set of document lengths.
+"""Tests for corpuscle.kernels.packing: three window layouts of a set of document lengths.
 
 The layouts are checked against plain Python loops written here, batched best-fit
 decreasing against a one-piece-at-a-time best-fit decreasing, and the packings
@@ -14,7 +14,7 @@ import pytest
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
-from lint.packing import (  # noqa: E402
+from corpuscle.kernels.packing import (  # noqa: E402
     AsBuilt,
     best_fit_decreasing,
     best_fit_decreasing_fills,

@@ -7,9 +7,9 @@ code. The ignore index -100 is common practice (PyTorch's cross-entropy default)
 import random
 
 import pytest
+from corpuscle import Level
+from corpuscle.rules.padding import PaddingLoss
 
-from lint import Level
-from rules.padding import PaddingLoss
 from tests.shards import findings, locations, pack, run, write
 
 RULE = "padding-loss"

@@ -8,8 +8,8 @@ import re
 
 import pytest
 from click.testing import CliRunner
+from corpuscle.cli import main
 
-from lint.cli import main
 from tests.shards import pack, write
 
 DOCS = [[10 + (i * 7) % 50, 11 + (i * 3) % 40, 12 + i % 30, 13 + i % 11] for i in range(120)]
@@ -58,8 +58,7 @@ def test_jobs_is_the_number_of_cores_arrow_may_decode_with():
     """--jobs 1 scans in this process with one Arrow thread (not Arrow's pool on every core), and gives the pool
     back as it was; a pool process decodes with one thread too."""
     import pyarrow
-
-    from lint.executors import LocalExecutor
+    from corpuscle.engine.executors import LocalExecutor
 
     before = pyarrow.cpu_count()
     pyarrow.set_cpu_count(2)
@@ -94,7 +93,7 @@ def test_two_jobs_are_this_process_and_one_pool_process_sharing_the_items():
     the results come back in item order, and an error in either place reaches the caller."""
     import os
 
-    from lint.executors import LocalExecutor
+    from corpuscle.engine.executors import LocalExecutor
 
     out = list(LocalExecutor(2).map(_where, range(6)))
     assert [item for item, _ in out] == list(range(6))
@@ -112,12 +111,12 @@ def test_items_a_broken_pool_cannot_take_are_done_here(monkeypatch):
     from concurrent.futures import ProcessPoolExecutor
     from concurrent.futures.process import BrokenProcessPool
 
-    import lint.executors
+    import corpuscle.engine.executors as executors
 
     class Broken(ProcessPoolExecutor):
         def submit(self, *args, **kwargs):
             raise BrokenProcessPool("a process of the pool died")
 
-    monkeypatch.setattr(lint.executors, "ProcessPoolExecutor", Broken)
-    out = list(lint.executors.LocalExecutor(2).map(_where, range(4)))
+    monkeypatch.setattr(executors, "ProcessPoolExecutor", Broken)
+    out = list(executors.LocalExecutor(2).map(_where, range(4)))
     assert out == [(i, os.getpid()) for i in range(4)]

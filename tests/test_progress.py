@@ -15,12 +15,12 @@ import sys
 
 import pyarrow.parquet as pq
 import pytest
+from corpuscle.engine.progress import Progress, TerminalProgress, _short
+from corpuscle.engine.registry import registry
+from corpuscle.engine.scan import run
+from corpuscle.io.sources import discover
+from corpuscle.settings import Settings
 
-from lint.engine import run
-from lint.progress import Progress, TerminalProgress, _short
-from lint.settings import Settings
-from lint.sources import discover
-from rules import registry
 from tests.shards import REPO, pack, write
 
 DOCS = [[10 + (i * 7) % 50, 11 + (i * 3) % 40, 12 + i % 30] for i in range(400)]

@@ -3,12 +3,12 @@ from __future__ import annotations
 
 from importlib.metadata import EntryPoint
 
+import corpuscle.engine.registry as rules
 import numpy as np
 import pytest
+from corpuscle.findings import Level
+from corpuscle.rules.api import Rule, absolute_rows
 
-import rules
-from lint.findings import Level
-from lint.rule import Rule, absolute_rows
 from tests.shards import findings, locations, run, write
 
 

@@ -16,14 +16,14 @@ from statistics import NormalDist
 
 import pytest
 from click.testing import CliRunner
+from corpuscle.cli import main
+from corpuscle.engine.sampling import Sample, wilson_interval
+from corpuscle.engine.scan import run
+from corpuscle.findings import Level
+from corpuscle.io.sources import LINE_BLOCK, discover
+from corpuscle.rules.api import Rule
+from corpuscle.settings import Settings
 
-from lint.cli import main
-from lint.engine import run
-from lint.findings import Level
-from lint.rule import Rule
-from lint.sampling import LINE_BLOCK, Sample, wilson_interval
-from lint.settings import Settings
-from lint.sources import discover
 from tests.shards import SARIF_SCHEMA, write
 from tests.test_sarif import load_schema
 
@@ -161,7 +161,7 @@ def test_a_json_lines_shard_whose_blocks_are_all_skipped_is_not_called_empty(tmp
     seed = next(s for s in range(100) if drawn(s, path, 0) >= 0.5)  # a seed that skips it
     report = scan_with([path], [RowsRead()], Sample(0.5, seed))
     assert report.metrics["rows"] == 0 and rows_read(report) == {}
-    from rules import registry
+    from corpuscle.engine.registry import registry
 
     integrity = scan_with([path], [registry()["unreadable-shard"]()], Sample(0.5, seed))
     assert integrity.findings == []  # not "the file holds no JSON records"

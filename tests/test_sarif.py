@@ -11,11 +11,11 @@ import os
 import jsonschema
 import pytest
 from click.testing import CliRunner
+from corpuscle import Settings, __version__, scan
+from corpuscle.cli import main
+from corpuscle.engine.registry import registry
+from corpuscle.report import sarif
 
-from lint import Settings, __version__, scan
-from lint.cli import main
-from lint.report import sarif
-from rules import registry
 from tests.shards import SARIF_SCHEMA, pack, run, write
 
 

@@ -6,9 +6,9 @@ restarts, adjacent ids, last real tokens), independently of the rule's numpy cod
 import random
 
 import pytest
+from corpuscle import Level
+from corpuscle.rules.separators import MissingSeparator
 
-from lint import Level
-from rules.separators import MissingSeparator
 from tests.shards import findings, locations, pack, run, write
 
 RULE = "missing-separator"

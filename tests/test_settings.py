@@ -10,12 +10,13 @@ from __future__ import annotations
 import numpy as np
 import pyarrow as pa
 import pytest
+from corpuscle.engine.infer import infer_from_batch
+from corpuscle.engine.registry import registry
+from corpuscle.engine.scan import scan_shard
+from corpuscle.io.batch import Batch, Shard
+from corpuscle.io.sources import discover
+from corpuscle.settings import FACTS, OPTIONS, Settings, SettingsError, build, load_config
 
-from lint.batch import Batch, Shard
-from lint.engine import scan_shard
-from lint.sources import discover
-from lint.settings import FACTS, OPTIONS, Settings, SettingsError, build, infer_from_batch, load_config
-from rules import registry
 from tests.shards import pack, run, write
 
 

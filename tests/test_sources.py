@@ -15,9 +15,11 @@ import pyarrow as pa
 import pyarrow.json as pa_json
 import pyarrow.parquet as pq
 import pytest
-from hypothesis import HealthCheck, given, settings as hsettings, strategies as st
+from corpuscle.io.sources import EXPECTED, NoShardsFound, Problem, discover, open_shard
+from hypothesis import HealthCheck, given
+from hypothesis import settings as hsettings
+from hypothesis import strategies as st
 
-from lint.sources import EXPECTED, NoShardsFound, Problem, discover, open_shard
 from tests.shards import findings, locations, run, write
 
 # -- helpers ------------------------------------------------------------------------------------------------

@@ -11,19 +11,19 @@ import logging
 import random
 import re
 
+import corpuscle.engine.split as split
+import corpuscle.io.sources as sources
 import numpy as np
 import pyarrow.parquet as pq
 import pytest
+from corpuscle import Settings
+from corpuscle.engine.executors import LocalExecutor
+from corpuscle.engine.registry import registry
+from corpuscle.engine.scan import run, select_rules
+from corpuscle.io.sources import discover
+from corpuscle.report.json import to_dict
+from corpuscle.rules.api import Rule
 
-import lint.sources
-import lint.split as split
-from lint import Settings
-from lint.engine import run, select_rules
-from lint.executors import LocalExecutor
-from lint.report.json import to_dict
-from lint.rule import Rule
-from lint.sources import discover
-from rules import registry
 from tests.shards import write
 
 VOCAB = 500
@@ -49,8 +49,8 @@ class SerialPair:
 def cut(monkeypatch):
     """Split every shard (threshold 0), read small batches and blocks, and record the parts of each split."""
     monkeypatch.setattr(split, "SPLIT_BYTES", 0)
-    monkeypatch.setattr(lint.sources, "DEFAULT_BATCH_TOKENS", 300)
-    monkeypatch.setattr(lint.sources, "DEFAULT_BATCH_BYTES", 700)
+    monkeypatch.setattr(sources, "DEFAULT_BATCH_TOKENS", 300)
+    monkeypatch.setattr(sources, "DEFAULT_BATCH_BYTES", 700)
     planned = []
     plan = split.plan
 
@@ -216,7 +216,7 @@ def test_split_on_a_process_pool_matches_whole_scan(tmp_path, monkeypatch, caplo
     plant(rng, cols, [99, 100, 199, 200, 300])
     path = write(tmp_path / "big.parquet", cols, row_group_size=50)
     whole = report([path], vocab_size=VOCAB)
-    with caplog.at_level(logging.DEBUG, logger="lint.engine"):
+    with caplog.at_level(logging.DEBUG, logger="corpuscle.engine.scan"):
         parted = report([path], LocalExecutor(2), vocab_size=VOCAB)
     assert parted == whole
     said = [re.search(r"in 2 parts starting at rows 0, (\d+)$", r.getMessage()) for r in caplog.records]
@@ -237,7 +237,7 @@ class RowCount(Rule):
 def test_not_split_when_a_rule_cannot_join_parts(tmp_path, cut, caplog):
     path = write(tmp_path / "a.parquet", windows(random.Random(1), 60), row_group_size=10)
     s = Settings(vocab_size=VOCAB, only=("token-range",))
-    with caplog.at_level(logging.DEBUG, logger="lint.engine"):
+    with caplog.at_level(logging.DEBUG, logger="corpuscle.engine.scan"):
         result = run(discover([path]), s, select_rules(s, registry()) + [RowCount()], executor=SerialPair())
     assert cut == []  # never planned
     assert any("row-count" in r.getMessage() and "whole" in r.getMessage() for r in caplog.records)
@@ -252,7 +252,7 @@ def test_parts_that_cannot_be_joined_exactly_are_scanned_whole(tmp_path, cut, ca
         cols["labels"][row][3] = -1 - (row % 3) if row < 20 else -10 - row
     path = write(tmp_path / "a.parquet", cols, row_group_size=10)
     whole = report([path], vocab_size=VOCAB)
-    with caplog.at_level(logging.DEBUG, logger="lint.engine"):
+    with caplog.at_level(logging.DEBUG, logger="corpuscle.engine.scan"):
         parted = report([path], SerialPair(), vocab_size=VOCAB)
     assert parted == whole
     assert len(cut[0]) == 2
@@ -280,7 +280,7 @@ def test_small_shards_are_not_split(tmp_path, monkeypatch):
 
 
 def test_hits_extend_keeps_the_first_locations_and_the_true_count():
-    from lint.findings import Hits
+    from corpuscle.findings import Hits
 
     whole, first, second = Hits(4), Hits(4), Hits(4)
     for hits, rows in ((first, [1, 2, 3]), (second, [7, 8]), (second, [9])):
@@ -394,7 +394,7 @@ def test_near_duplicates_across_cuts_match_whole_scan(tmp_path, cut):
 def test_a_part_that_stopped_ends_the_shard_but_keyed_rules_keep_every_part(tmp_path, cut):
     """A part whose reader stopped at a failure ends the shard, as a whole scan would (later parts are left out);
     but near-duplicate gave the later parts' band keys to the shuffle already, so its state joins every part."""
-    from lint.engine import merge_parts, scan_shard
+    from corpuscle.engine.scan import merge_parts, scan_shard
 
     path = write(tmp_path / "a.parquet", {"input_ids": [[i % 7 + 3] * 30 for i in range(40)]}, row_group_size=10)
     shard = discover([path])[0]
@@ -449,7 +449,7 @@ def test_every_part_reads_documents_as_the_shards_first_records_say(tmp_path, cu
     settings = dict(vocab_size=VOCAB, eos_id=EOS, seq_len=16, only=("overlong-document", "truncation-waste"),
                     rule={"truncation-waste": {"max_waste": 0.0}})
     whole = report([path], **settings)
-    with caplog.at_level(logging.DEBUG, logger="lint.engine"):
+    with caplog.at_level(logging.DEBUG, logger="corpuscle.engine.scan"):
         parted = report([path], SerialParts(2), **settings)
     assert parted == whole
     start = cut[0][1].first_row

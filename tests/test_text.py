@@ -12,10 +12,10 @@ import unicodedata
 
 import pyarrow as pa
 import pytest
+from corpuscle import Level
+from corpuscle.report import sarif
+from corpuscle.rules.text import C0, C1, COMMON_SPECIAL_STRINGS, DEL, EmptyDocument, EncodingError, SpecialTokenText
 
-from lint import Level
-from lint.report import sarif
-from rules.text import C0, C1, COMMON_SPECIAL_STRINGS, DEL, EmptyDocument, EncodingError, SpecialTokenText
 from tests.shards import SARIF_SCHEMA, findings, locations, pack, run, write
 
 TEXT_RULES = ("special-token-text", "encoding-error", "empty-document")
@@ -358,7 +358,7 @@ def test_special_tokens_from_a_tokenizer_file(tmp_path):
 
 def scan_directly(rule, path, settings):
     """Run one rule over one shard by the rule contract (begin, feed, end, report, corpus), settings as given."""
-    from lint.sources import discover, open_shard
+    from corpuscle.io.sources import discover, open_shard
 
     (shard,) = discover([str(path)])
     state = rule.begin(shard, settings)
@@ -374,7 +374,7 @@ def scan_directly(rule, path, settings):
 def test_unusable_tokenizer_file_is_a_finding_and_the_option_strings_still_run(tmp_path):
     """Settings reject a missing tokenizer file up front (a usage error); should one still reach the rule (a file
     removed or replaced mid-run), the rule says so once and searches the option strings."""
-    from lint import Settings
+    from corpuscle import Settings
 
     path = write(tmp_path / "t.jsonl", {"text": ["Salt the broth </s> lightly.", "Nothing here."]})
     (tmp_path / "vocab.json").write_text('{"version": "1.0", "vocab": {"salt": 0}}')  # JSON, not a tokenizer
@@ -523,8 +523,8 @@ def test_zero_length_document_under_other_separator_conventions(tmp_path, separa
 
 def test_empty_document_needs_either_column():
     rule = EmptyDocument()
-    from lint import Settings
-    from lint.batch import Batch, Shard
+    from corpuscle import Settings
+    from corpuscle.io.batch import Batch, Shard
 
     shard = Shard("x.parquet", "x.parquet", "parquet")
     settings = Settings()

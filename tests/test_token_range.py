@@ -11,9 +11,9 @@ import random
 import numpy as np
 import pyarrow as pa
 import pytest
+from corpuscle import Level
+from corpuscle.report.sarif import to_sarif
 
-from lint import Level
-from lint.report.sarif import to_sarif
 from tests.shards import SARIF_SCHEMA, findings, locations, run, write
 
 RULE = "token-range"
@@ -234,7 +234,7 @@ def test_int32_holds_a_large_vocabulary(tmp_path):
 
 
 def test_null_inside_a_token_list_is_reported_as_id_minus_one(tmp_path):
-    # lint.batch reads a null inside a token list as -1, outside every vocabulary
+    # corpuscle.io.batch reads a null inside a token list as -1, outside every vocabulary
     path = write(tmp_path / "shard.parquet", {"input_ids": pa.array([[4, None, 6], [7, 8]], type=pa.list_(pa.int32()))})
     [neg] = findings(run(path, vocab_size=100), RULE, "negative")
     assert locations(neg) == [(0, 1)] and neg.evidence["minId"] == -1

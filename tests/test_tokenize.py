@@ -1,4 +1,4 @@
-"""Tests for lint.tokenize: token counts of raw text, checked against the tokenizers library's own encoder.
+"""Tests for corpuscle.kernels.tokenize: token counts of raw text, checked against the tokenizers library's own encoder.
 
 Every tokenizer here is built in memory from invented sentences (WordLevel from a word list, BPE trained on the
 sentences) and saved as JSON in the test's folder; nothing is downloaded. The reference for every count is the
@@ -16,9 +16,9 @@ from click.testing import CliRunner
 
 tokenizers = pytest.importorskip("tokenizers")
 
-from lint import tokenize  # noqa: E402
-from lint.settings import Settings, SettingsError  # noqa: E402
-from lint.tokenize import TokenizerError, count_tokens, load_tokenizer, text_lengths  # noqa: E402
+from corpuscle.kernels import tokenize  # noqa: E402
+from corpuscle.kernels.tokenize import TokenizerError, count_tokens, load_tokenizer, text_lengths  # noqa: E402
+from corpuscle.settings import Settings, SettingsError  # noqa: E402
 
 SENTENCES = [
     "the lighthouse keeper counted seven gulls before breakfast",
@@ -152,7 +152,8 @@ def test_missing_library_is_a_usage_error_with_install_hint(tmp_path, monkeypatc
 
 
 def test_missing_library_exits_2_from_the_command_line(tmp_path, monkeypatch):
-    from lint.cli import main
+    from corpuscle.cli import main
+
     from tests.shards import write
 
     path = word_level(tmp_path / "tok.json")
@@ -166,7 +167,8 @@ def test_missing_library_exits_2_from_the_command_line(tmp_path, monkeypatch):
 
 @pytest.mark.parametrize("content, problem", [(None, "does not exist"), ("{not json", "cannot load tokenizer")])
 def test_unusable_tokenizer_file_is_a_usage_error(tmp_path, content, problem):
-    from lint.cli import main
+    from corpuscle.cli import main
+
     from tests.shards import write
 
     path = tmp_path / "tok.json"

@@ -1,4 +1,4 @@
-"""Reporters: one module per output format.  They read a :class:`lint.engine.Report` and know nothing of readers."""
+"""Reporters: one module per output format.  They read a :class:`corpuscle.engine.scan.Report` and know nothing of readers."""
 from __future__ import annotations
 
 import os

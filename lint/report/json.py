@@ -2,8 +2,7 @@
 from __future__ import annotations
 
 import orjson
-
-from .. import __version__
+from corpuscle.version import __version__
 
 
 def to_dict(report) -> dict:

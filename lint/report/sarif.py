@@ -5,9 +5,8 @@ from __future__ import annotations
 from urllib.parse import quote
 
 import orjson
-
-from .. import __version__
-from ..findings import Finding
+from corpuscle.findings import Finding
+from corpuscle.version import __version__
 
 SCHEMA_URI = "https://docs.oasis-open.org/sarif/sarif/v2.1.0/errata01/os/schemas/sarif-schema-2.1.0.json"
 INFORMATION_URI = "https://pypi.org/project/corpuscle/"

@@ -5,8 +5,8 @@ from __future__ import annotations
 import re
 import textwrap
 
-from .. import __version__
-from ..findings import Level
+from corpuscle.findings import Level
+from corpuscle.version import __version__
 
 WIDTH = 100
 SHOW_LOCATIONS = 6

@@ -75,11 +75,11 @@ def main() -> None:
     parser.add_argument("--keep", help="folder to write the shards into (kept); default: a temporary folder")
     args = parser.parse_args()
     sys.path.insert(0, ROOT)
-    from lint import Settings
-    from lint.engine import run, select_rules
-    from lint.executors import DaskExecutor, LocalExecutor
-    from lint.sources import discover
-    from rules import registry
+    from corpuscle import Settings
+    from corpuscle.engine.executors import DaskExecutor, LocalExecutor
+    from corpuscle.engine.registry import registry
+    from corpuscle.engine.scan import run, select_rules
+    from corpuscle.io.sources import discover
 
     folder = args.keep or tempfile.mkdtemp(prefix="corpuscle-bench-")
     os.makedirs(folder, exist_ok=True)

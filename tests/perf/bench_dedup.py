@@ -87,7 +87,7 @@ def main() -> None:
     rows, exact, near = write_shard(path, args.tokens, args.seq_len, args.duplicates)
     tokens = rows * args.seq_len
     sys.path.insert(0, ROOT)
-    from lint.sources import DEFAULT_BATCH_TOKENS
+    from corpuscle.io.sources import DEFAULT_BATCH_TOKENS
 
     batch_rows = max(1, DEFAULT_BATCH_TOKENS // args.seq_len)
     time_read(path, batch_rows)  # warm the page cache

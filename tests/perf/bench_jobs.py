@@ -31,7 +31,6 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 from bench_scan import REPO, VOCAB, run_cli, write_shard  # noqa: E402
 
 
-
 def timed_scan(folder: str, jobs: int, only: str | None) -> tuple[float, int]:
     """Wall-clock seconds of ``python -m lint scan folder --jobs N`` and the tokens it scanned."""
     out = os.path.join(folder, f"report-{jobs}.json")
@@ -48,7 +47,7 @@ def timed_scan(folder: str, jobs: int, only: str | None) -> tuple[float, int]:
 
 #: A CPU-bound numpy kernel (MinHash signatures of random shingles, the heaviest step of a scan), run by one
 #: process and then by two at once: how much a second process can add on this machine right now.
-KERNEL = ("import time, numpy as np; from lint.minhash import signatures; "
+KERNEL = ("import time, numpy as np; from corpuscle.kernels.minhash import signatures; "
           "h = np.random.default_rng(1).integers(0, 2**32, 4_000_000, dtype=np.uint32); "
           "o = np.arange(0, 4_000_001, 2000); t = time.perf_counter(); signatures(h, o); signatures(h, o); "
           "print(time.perf_counter() - t)")

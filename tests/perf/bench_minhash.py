@@ -29,7 +29,7 @@ from datasketch import MinHash
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
-from lint.minhash import shingle_hash, shingle_hashes, signatures  # noqa: E402
+from corpuscle.kernels.minhash import shingle_hash, shingle_hashes, signatures  # noqa: E402
 
 WINDOW = 2048
 N = 5

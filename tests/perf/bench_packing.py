@@ -1,4 +1,4 @@
-"""Timing of lint.packing on a large invented corpus (run by hand, not collected by pytest).
+"""Timing of corpuscle.kernels.packing on a large invented corpus (run by hand, not collected by pytest).
 
     python tests/perf/bench_packing.py [--docs N] [--seq-len S] [--reference-docs M]
 
@@ -19,7 +19,7 @@ import numpy as np
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))))
 
-from lint.packing import (  # noqa: E402
+from corpuscle.kernels.packing import (  # noqa: E402
     best_fit_decreasing,
     best_fit_decreasing_fills,
     compare_layouts,

@@ -103,7 +103,7 @@ def main() -> None:
     else:
         rows = pq.ParquetFile(path).metadata.num_rows
     tokens = rows * args.seq_len
-    from lint.sources import DEFAULT_BATCH_TOKENS
+    from corpuscle.io.sources import DEFAULT_BATCH_TOKENS
 
     batch_rows = max(1, DEFAULT_BATCH_TOKENS // args.seq_len)
     time_read(path, batch_rows)  # warm the page cache

@@ -20,14 +20,13 @@ import time
 REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 sys.path.insert(0, REPO)
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+import corpuscle.engine.split as split  # noqa: E402
 from bench_scan import VOCAB, write_shard  # noqa: E402
-
-import lint.split as split  # noqa: E402
-from lint import Settings  # noqa: E402
-from lint.engine import run, select_rules  # noqa: E402
-from lint.report.json import to_dict  # noqa: E402
-from lint.sources import discover  # noqa: E402
-from rules import registry  # noqa: E402
+from corpuscle import Settings  # noqa: E402
+from corpuscle.engine.registry import registry  # noqa: E402
+from corpuscle.engine.scan import run, select_rules  # noqa: E402
+from corpuscle.io.sources import discover  # noqa: E402
+from corpuscle.report.json import to_dict  # noqa: E402
 
 
 def timed(path: str, jobs: int) -> tuple[float, dict]:

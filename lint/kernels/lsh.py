@@ -28,8 +28,7 @@ from functools import lru_cache
 from typing import NamedTuple
 
 import numpy as np
-
-from .minhash import POLY, _check_int, mix64
+from corpuscle.kernels.minhash import POLY, _check_int, mix64
 
 DEFAULT_MAX_BUCKET = 1024
 """Distinct signatures per bucket above which only a linear set of pairs is made."""
@@ -105,7 +104,7 @@ def band_keys(signatures, b: int, r: int) -> np.ndarray:
     (columns past ``b * r`` are not banded, as in datasketch). Its key is
     ``mix64(h)`` with ``h = mix64(k)`` followed, for each of the ``r``
     values ``v``, by ``h = h * POLY + mix64(v)`` (mod 2**64; ``mix64`` and
-    ``POLY`` from :mod:`lint.minhash`). Equal bands give equal keys; starting
+    ``POLY`` from :mod:`corpuscle.kernels.minhash`). Equal bands give equal keys; starting
     from the band index keeps equal values in different bands apart. Two
     different bands share a key with probability about 2**-64.
     """
@@ -356,7 +355,7 @@ def _as_signatures(signatures) -> np.ndarray:
     signatures = np.asarray(signatures)
     if signatures.ndim != 2 or signatures.dtype != np.uint32:
         raise TypeError(
-            "signatures must be a (windows, num_perm) uint32 array; hint: pass the result of lint.minhash.signatures"
+            "signatures must be a (windows, num_perm) uint32 array; hint: pass the result of corpuscle.kernels.minhash.signatures"
         )
     return signatures
 

@@ -315,7 +315,7 @@ class Batch:
         self.shard = shard
         self.table = _decode_dictionaries(table)
         self.rows = np.asarray(rows, dtype=np.int64)
-        self.problems: list = []  # lint.sources.Problem objects met while reading these records
+        self.problems: list = []  # corpuscle.io.sources.Problem objects met while reading these records
         self._flat: dict[str, Flat] = {}
         self._memo: dict = {}
 

@@ -5,7 +5,7 @@ in each:
 
 ``text``
     Raw text, one document per row.  Its length is counted in tokens with a tokenizer file (``tokenizer``
-    setting, :mod:`lint.tokenize`), otherwise in UTF-8 bytes; the unit travels with every figure.
+    setting, :mod:`corpuscle.kernels.tokenize`), otherwise in UTF-8 bytes; the unit travels with every figure.
 ``position-restarts``
     Token rows with ``position_ids``: a document starts wherever the position restarts at 0.  A row whose first
     position is not 0 continues the previous row's last document, so a document can run over several rows (and
@@ -41,8 +41,7 @@ from dataclasses import dataclass
 from typing import Callable
 
 import numpy as np
-
-from .batch import Batch, Flat, is_integer_list
+from corpuscle.io.batch import Batch, Flat, is_integer_list
 
 POSITIONS = "position-restarts"
 SEPARATORS = "separators"
@@ -62,7 +61,7 @@ class LengthHistogram:
     Lengths below :attr:`DENSE` are counted in a dense array while a shard streams; longer ones are kept as
     values (there are at most ``tokens / DENSE`` of them).  :meth:`compact` turns both into sorted
     ``sizes``/``counts`` (one entry per distinct length), the form that travels between processes and that
-    :mod:`lint.packing` takes (``counts=``).
+    :mod:`corpuscle.kernels.packing` takes (``counts=``).
     """
 
     DENSE = 1 << 15
@@ -284,10 +283,7 @@ def infer_arrangement(batch: Batch, settings) -> tuple[str, str]:
     on the batch)."""
     key = ("arrangement", settings.tokens_column, settings.mask_column, settings.positions_column,
            settings.separator, settings.eos_id, settings.bos_id, settings.pad_id)
-    cache = batch.__dict__.setdefault("_documents", {})
-    if key not in cache:
-        cache[key] = _infer_arrangement(batch, settings)
-    return cache[key]
+    return batch.memo(key, lambda: _infer_arrangement(batch, settings))
 
 
 def _infer_arrangement(batch: Batch, settings) -> tuple[str, str]:
@@ -359,15 +355,12 @@ def documents_of(batch: Batch, settings, arrangement: str) -> BatchDocuments:
     key = (arrangement, settings.tokens_column, settings.text_column, settings.mask_column,
            settings.positions_column, settings.eos_id, settings.bos_id, settings.pad_id, settings.seq_len,
            settings.separator, settings.tokenizer)
-    cache = batch.__dict__.setdefault("_documents", {})
-    if key not in cache:
-        cache[key] = _text_documents(batch, settings) if arrangement == TEXT else \
-            _token_documents(batch, settings, arrangement)
-    return cache[key]
+    return batch.memo(("documents",) + key, lambda: _text_documents(batch, settings) if arrangement == TEXT else
+                      _token_documents(batch, settings, arrangement))
 
 
 def _text_documents(batch: Batch, settings) -> BatchDocuments:
-    from .tokenize import text_lengths
+    from corpuscle.kernels.tokenize import text_lengths
 
     column = batch.column(settings.text_column)
     lengths, present, unit = text_lengths(column, settings.tokenizer)
@@ -470,7 +463,7 @@ class DocumentTally:
     is complete then, but never counted as cut: it may continue in the next shard).  ``on_overlong`` and
     ``on_cut`` receive ``(rows, offsets)`` of the start of each such document, in shard order.
 
-    A tally of one part of a split shard (see :mod:`lint.split`) is open at both ends.  When parts come before it
+    A tally of one part of a split shard (see :mod:`corpuscle.engine.split`) is open at both ends.  When parts come before it
     (:meth:`expect_lead`), the real tokens before its first document start are the *lead*: they belong to the
     document the previous part left open, so they are held aside, not counted as a document.  When parts follow,
     it ends with :meth:`pause` instead of :meth:`close`, keeping its open document in ``carry``.  :meth:`joined`

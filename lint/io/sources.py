@@ -1,4 +1,4 @@
-"""Finding shards and reading them as streams of :class:`~lint.batch.Batch` with bounded memory.
+"""Finding shards and reading them as streams of :class:`~corpuscle.io.batch.Batch` with bounded memory.
 
 Readers are context managers that yield batches; they never raise for bad data.  What they cannot read becomes a
 :class:`Problem` attached to the batch it was met in (a bad JSON line, a cut-off last line, invalid UTF-8, a value
@@ -19,9 +19,10 @@ import orjson
 import pyarrow as pa
 import pyarrow.fs as pafs
 import pyarrow.parquet as pq
+from corpuscle.io.batch import Batch, Shard
 
-from .batch import Batch, Shard
-from .sampling import LINE_BLOCK
+#: Lines per sampling unit of a JSON Lines shard (see :mod:`corpuscle.engine.sampling`).
+LINE_BLOCK = 1024
 
 #: File endings we read, and the format/compression each one means.
 SUFFIXES = {
@@ -189,8 +190,8 @@ def open_shard(shard: Shard, batch_tokens: int | None = None, tokens_column: str
                batch_bytes: int | None = None, sample=None, part=None) -> "ShardReader":
     """The reader for a shard's format, as a context manager yielding batches.
 
-    ``sample`` (a :class:`lint.sampling.ShardSample`) makes the reader skip the storage units it does not keep;
-    ``part`` (a :class:`lint.split.Part`) makes it read only that part of the shard.  Row indices stay those of
+    ``sample`` (a :class:`corpuscle.engine.sampling.ShardSample`) makes the reader skip the storage units it does not keep;
+    ``part`` (a :class:`corpuscle.engine.split.Part`) makes it read only that part of the shard.  Row indices stay those of
     the whole shard.  The read sizes default to :data:`DEFAULT_BATCH_TOKENS` and :data:`DEFAULT_BATCH_BYTES`.
     """
     batch_tokens = DEFAULT_BATCH_TOKENS if batch_tokens is None else batch_tokens
@@ -468,7 +469,7 @@ class JsonLinesReader(ShardReader):
 
     def _blocks(self, lines: list[bytes], first_line: int, last_cut_off: bool) -> Iterator[Batch]:
         """Parse ``lines`` (the first is line ``first_line``): all of them, or in a sampled scan only the runs of
-        lines that lie in kept blocks of :data:`lint.sampling.LINE_BLOCK` lines (one batch per run)."""
+        lines that lie in kept blocks of :data:`LINE_BLOCK` lines (one batch per run)."""
         if self.sample is None:
             yield self._parse(lines, first_line, last_cut_off)
             return

@@ -10,7 +10,7 @@ process.  ``partitions`` says how many partitions the executor wants.
 
 An executor may also give a ``relay(progress)`` context manager: it yields the stand-in for ``progress`` that
 travels with the work and reaches ``progress`` in this process from where the work runs, so a display moves after
-every batch (see :mod:`lint.progress`).
+every batch (see :mod:`corpuscle.engine.progress`).
 """
 from __future__ import annotations
 
@@ -25,7 +25,8 @@ import uuid
 from concurrent.futures import ProcessPoolExecutor
 from typing import Callable, Iterable, Iterator
 
-from .progress import Progress
+from corpuscle.engine.progress import Progress
+from corpuscle.engine.registry import FAMILIES
 
 #: How to install what ``--cluster`` needs.
 CLUSTER_INSTALL = "pip install 'corpuscle[cluster]'"
@@ -59,8 +60,8 @@ def shuffle_here(results: Iterable, split: Callable, reduce: Callable, parts: in
 #: (a 0.5 GB shard: 296 and 298 MiB).
 LOCAL_PARTITIONS = 16
 
-#: Modules the local pool's fork server loads before it forks workers.
-PRELOAD = ["lint.engine", "rules"]
+#: Modules the local pool's fork server loads before it forks workers: the engine and the built-in rules.
+PRELOAD = ["corpuscle.engine.scan", *(f"corpuscle.rules.{family}" for family in FAMILIES)]
 
 
 def _one_arrow_thread() -> None:
@@ -189,10 +190,10 @@ class LocalExecutor:
     def relay(self, progress):
         """A context manager giving the progress object to pass to the work: ``progress`` itself in this process
         (``jobs=1``), else a stand-in whose events reach ``progress`` from the pool's processes through a manager
-        queue (see :func:`lint.progress.relay`)."""
+        queue (see :func:`corpuscle.engine.progress.relay`)."""
         if self.jobs == 1:
             return contextlib.nullcontext(progress)
-        from .progress import relay
+        from corpuscle.engine.progress import relay
 
         return relay(progress, self._context())
 
@@ -223,7 +224,7 @@ RELAY_FLUSH_SECONDS = 10.0
 
 
 class TopicProgress(Progress):
-    """The stand-in for a :class:`~lint.progress.Progress` on a Dask cluster (see :meth:`DaskExecutor.relay`).
+    """The stand-in for a :class:`~corpuscle.engine.progress.Progress` on a Dask cluster (see :meth:`DaskExecutor.relay`).
 
     In a task on a worker, each event is logged under ``topic`` with the worker's ``log_event``: it travels on the
     worker's stream to the scheduler, which forwards it to the client subscribed to the topic.  Called anywhere

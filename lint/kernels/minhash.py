@@ -382,7 +382,7 @@ def mix64(z: np.ndarray) -> np.ndarray:
     """Apply mix64 (see the module notes) to a uint64 array in place and return it.
 
     A fixed bijection of 64-bit values that spreads every input bit over
-    every output bit; shared with the band keys of :mod:`lint.lsh`.
+    every output bit; shared with the band keys of :mod:`corpuscle.kernels.lsh`.
     """
     z += np.uint64(_GAMMA)
     z ^= z >> np.uint64(30)

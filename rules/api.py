@@ -3,7 +3,7 @@
 A rule keeps a small, mergeable state per shard.  The engine calls, per shard, ``begin`` once, ``feed`` for every
 batch that has the columns the rule ``needs``, and ``end`` once; then, over the states of all shards, ``report``
 (findings of one shard) and ``corpus`` (findings that span shards, figures for the whole corpus).  States travel
-between processes, so they must pickle; keep them small (counters, capped :class:`~lint.findings.Hits`).
+between processes, so they must pickle; keep them small (counters, capped :class:`~corpuscle.findings.Hits`).
 
 A rule whose cross-shard step groups entries by a key (the band keys of near-duplicate search) sets ``keyed`` and
 runs that step as a partitioned shuffle, so that no single process holds the entries of the whole corpus:
@@ -24,9 +24,8 @@ import copy
 from collections import defaultdict
 
 import numpy as np
-
-from .batch import Batch, Shard, is_integer_list, is_text
-from .findings import Finding, Hits, Level
+from corpuscle.findings import Finding, Hits, Level
+from corpuscle.io.batch import Batch, Shard, is_integer_list, is_text
 
 #: Column kinds a rule can ask for; each is checked against the Arrow type before a batch is fed.
 COLUMN_KINDS = {

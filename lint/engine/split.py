@@ -21,11 +21,11 @@ from dataclasses import dataclass, field
 
 import pyarrow as pa
 import pyarrow.parquet as pq
-
-from .batch import Shard, enough_first_records, first_records
-from .rule import inferred_by
-from .settings import Settings, infer_from_batch
-from .sources import _open_input, is_uri, open_shard
+from corpuscle.engine.infer import infer_from_batch
+from corpuscle.io.batch import Shard, enough_first_records, first_records
+from corpuscle.io.sources import _open_input, is_uri, open_shard
+from corpuscle.rules.api import inferred_by
+from corpuscle.settings import Settings
 
 log = logging.getLogger(__name__)
 
@@ -85,7 +85,7 @@ def plan(shard: Shard, settings: Settings, parts: int, threshold: int | None = N
 
 def first_facts(shard: Shard, settings: Settings, rules: tuple = ()) -> tuple[Settings, dict] | None:
     """The shard's settings with the unset facts inferred from its first records, and what each of ``rules``
-    infers from them (:func:`lint.rule.inferred_by`), as a whole-shard scan infers them; None when the shard holds
+    infers from them (:func:`corpuscle.rules.api.inferred_by`), as a whole-shard scan infers them; None when the shard holds
     no records."""
     facts = settings.for_path(shard.path)
     batches = []

@@ -17,16 +17,18 @@ import time
 from dataclasses import dataclass, field
 from typing import Iterable
 
-from .batch import Shard, enough_first_records, first_records, is_integer_list
-from .executors import LocalExecutor, shuffle_here
-from .progress import Progress
-from .sampling import Sample, corpus_figures, finding_estimate
-from .findings import Finding, Level
-from .rule import Rule, ShardState, Unmergeable, inferred_by
-from .settings import Settings, SettingsError, infer_from_batch
-from .sources import absolute, discover, open_shard
-from . import split
-from .split import Part, workers as split_workers
+from corpuscle.engine import split
+from corpuscle.engine.executors import LocalExecutor, shuffle_here
+from corpuscle.engine.infer import infer_from_batch
+from corpuscle.engine.progress import Progress
+from corpuscle.engine.sampling import Sample, corpus_figures, finding_estimate
+from corpuscle.engine.split import Part
+from corpuscle.engine.split import workers as split_workers
+from corpuscle.findings import Finding, Level
+from corpuscle.io.batch import Shard, enough_first_records, first_records, is_integer_list
+from corpuscle.io.sources import absolute, discover, open_shard
+from corpuscle.rules.api import Rule, ShardState, Unmergeable, inferred_by
+from corpuscle.settings import Settings, SettingsError
 
 log = logging.getLogger(__name__)
 
@@ -51,7 +53,7 @@ class ShardResult:
     rows: int = 0
     tokens: int = 0
     seconds: float = 0.0
-    #: How the shard was sampled (:meth:`lint.sampling.ShardSample.summary`), or None for a full scan.
+    #: How the shard was sampled (:meth:`corpuscle.engine.sampling.ShardSample.summary`), or None for a full scan.
     sample: dict | None = None
     #: For one part of a split shard, what joining the parts needs (see :func:`merge_parts`); None otherwise.
     part: dict | None = None
@@ -102,9 +104,9 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=Non
                part: Part | None = None) -> ShardResult:
     """Read one shard and feed its batches to the rules; never raises for bad data.
 
-    ``progress`` (a :class:`lint.progress.Progress`, or None) hears of every batch and of the end of the shard;
-    ``sample`` (a :class:`lint.sampling.Sample`, or None) makes the reader scan only the units it keeps; ``part``
-    (a :class:`lint.split.Part`) scans only that part of the shard, with the facts the part carries.
+    ``progress`` (a :class:`corpuscle.engine.progress.Progress`, or None) hears of every batch and of the end of the shard;
+    ``sample`` (a :class:`corpuscle.engine.sampling.Sample`, or None) makes the reader scan only the units it keeps; ``part``
+    (a :class:`corpuscle.engine.split.Part`) scans only that part of the shard, with the facts the part carries.
     """
     started = time.perf_counter()
     facts = settings.for_path(shard.path) if part is None else part.facts
@@ -289,7 +291,7 @@ def run(shards: list[Shard], settings: Settings, rules: list[Rule], jobs: int = 
     that reaches it from where the work runs (the scans there report each batch and each whole shard; the end of a
     shard scanned in parts is reported here, through the stand-in); with any other executor it hears only of
     finished shards, here.
-    ``sample`` scans a reproducible random subset of every shard (see :mod:`lint.sampling`).
+    ``sample`` scans a reproducible random subset of every shard (see :mod:`corpuscle.engine.sampling`).
     """
     started = time.perf_counter()
     executor = executor or LocalExecutor(jobs)
@@ -329,7 +331,7 @@ def run(shards: list[Shard], settings: Settings, rules: list[Rule], jobs: int = 
 
 
 def _parts(shard: Shard, settings: Settings, rules: list[Rule], executor, sample) -> list[Part] | None:
-    """The parts to scan a large shard in with the executor's processes (see :mod:`lint.split`), or None."""
+    """The parts to scan a large shard in with the executor's processes (see :mod:`corpuscle.engine.split`), or None."""
     processes = split_workers(executor)
     if processes < 2 or (sample is not None and not sample.full) or shard.length <= split.SPLIT_BYTES:
         return None
@@ -359,7 +361,7 @@ def _elsewhere(shard: Shard, settings: Settings) -> tuple[Shard, Settings]:
 def _map(executor, items: list, keyed: list[Rule]):
     """Scan the items with ``executor``: ``(results in item order, a function giving, after the last result, the
     partials of the keyed rules by rule id)``.  With keyed rules the scan is a keyed shuffle (see
-    :mod:`lint.executors`): on the executor when it can run one, else in this process."""
+    :mod:`corpuscle.engine.executors`): on the executor when it can run one, else in this process."""
     if not keyed:
         return executor.map(_scan_args, items), dict
     split, reduce = functools.partial(_split, keyed), functools.partial(_reduce, keyed)
@@ -520,9 +522,9 @@ def scan(paths: Iterable[str] | str, settings: Settings | None = None, jobs: int
          progress=None, sample: Sample | None = None) -> Report:
     """Public entry point for a data-prep job: find shards under ``paths``, run all selected rules, return the report.
 
-    Raises :class:`lint.sources.NoShardsFound` or :class:`lint.settings.SettingsError` for usage problems.
+    Raises :class:`corpuscle.io.sources.NoShardsFound` or :class:`corpuscle.settings.SettingsError` for usage problems.
     """
-    from rules import registry
+    from corpuscle.engine.registry import registry
 
     if isinstance(paths, (str, os.PathLike)):
         paths = [os.fspath(paths)]

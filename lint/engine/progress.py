@@ -4,7 +4,7 @@ The engine knows only the :class:`Progress` interface: ``start`` with the shards
 fed to the rules, ``shard_done`` when a shard is finished, ``close`` at the end. Where shards are scanned in other
 processes, an executor gives the engine a stand-in (:class:`QueueProgress`) whose events travel back through a
 queue and are replayed into the real object by one thread of this process (:func:`relay`).  On a Dask cluster the
-stand-in (:class:`lint.executors.TopicProgress`) sends them as Dask events to the client, so a cluster scan also
+stand-in (:class:`corpuscle.engine.executors.TopicProgress`) sends them as Dask events to the client, so a cluster scan also
 reports every batch.
 
 Bytes consumed per batch (what the bar advances by) are what the reader reports: for Parquet the compressed size

@@ -37,9 +37,6 @@ from statistics import NormalDist
 
 import numpy as np
 
-#: Lines per sampling unit of a JSON Lines shard.
-LINE_BLOCK = 1024
-
 #: The standard normal quantile for a two-sided 95% interval, z = 1.959964 (stdlib ``statistics.NormalDist``).
 Z95 = NormalDist().inv_cdf(0.975)
 

@@ -26,8 +26,7 @@ from functools import lru_cache
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
-
-from .settings import SettingsError
+from corpuscle.settings import SettingsError
 
 #: What to install when the ``tokenizers`` library is missing.
 INSTALL_HINT = "pip install 'corpuscle[tokenizers]'"
@@ -79,7 +78,7 @@ def _load(real: str, size: int, mtime_ns: int):
 def load_tokenizer(path: str):
     """The tokenizer saved at ``path`` (a ``tokenizers.Tokenizer``), truncation and padding off; cached per process.
 
-    Raises :class:`TokenizerError` (a :class:`~lint.settings.SettingsError`) when the library is not installed or
+    Raises :class:`TokenizerError` (a :class:`~corpuscle.settings.SettingsError`) when the library is not installed or
     the file cannot be read as a tokenizer.
     """
     return _load(*_file_key(path))

@@ -11,8 +11,7 @@ when some label disagrees, so no per-position row index is built.
 from __future__ import annotations
 
 import numpy as np
-
-from .batch import Flat
+from corpuscle.io.batch import Flat
 
 #: Shifts the label rule measures.
 SHIFTS = (-1, 0, 1, 2, 3)

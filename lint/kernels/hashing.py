@@ -1,0 +1,113 @@
+"""128-bit content hashes of windows and documents: equal content, equal hash; stable across runs.
+
+    A window is a vector of 32-bit words: its token ids modulo 2**32 (so the same ids stored as int32 or int64
+hash the same; ids that differ by a multiple of 2**32 -- never valid ids -- alias), or the bytes of its
+UTF-8 text exactly as stored (no normalization: text that differs only in Unicode normalization or
+whitespace is not an exact copy; the near-duplicate rule, which lowercases and splits into words, sees it).
+Each of four lanes hashes the words ``s_0 .. s_{L-1}`` of a window with the multilinear family::
+
+    lane = (k_c + k_len * (2 * L + domain) + sum_j k_j * s_j)  mod 2**64,   keep lane >> 32
+
+with ``domain`` 0 for token windows and 1 for text documents (a token window never equals a document), and
+64-bit keys ``k`` from :func:`lint.minhash.mix64` of fixed inputs, independent per lane. For keys drawn at
+random this family is strongly universal on its top 32 bits (multilinear hashing of 32-bit words, from
+memory: Lemire and Kaser, "Strongly universal string hashing is fast", 2014), so two different windows agree
+in one lane with probability 2**-32 and in all four -- the 128-bit content hash -- with probability 2**-128;
+among ``n`` windows some pair collides with probability below ``n**2 / 2**129`` (about 1e-21 for a billion
+windows). Our keys are fixed pseudo-random numbers, so the figure holds for data not built against them.
+Whole batches are hashed at once: a reshape and ``np.einsum`` for windows of one length, ``np.add.reduceat``
+over the words otherwise; no Python loop per window.
+"""
+from __future__ import annotations
+
+import numpy as np
+from corpuscle.kernels.minhash import mix64
+
+# Words hashed per step of content_hashes (bounds its scratch memory to about 32 MiB).
+_HASH_CHUNK = 1 << 20
+# Word positions whose keys are kept in a table (2 MiB); longer windows get their keys made piece by piece.
+_KEY_TABLE = 1 << 16
+# Lanes of the content hash; each keeps 32 bits.
+_LANES = 4
+_KEY_SEED = 0x5EED_C0DE_D0C5_F00D
+
+
+def _key_block(first: int, count: int) -> np.ndarray:
+    """Keys ``first .. first + count - 1`` of every lane, shape ``(lanes, count)``."""
+    index = np.arange(first, first + count, dtype=np.uint64)[None, :] * np.uint64(_LANES)
+    index = index + np.arange(_LANES, dtype=np.uint64)[:, None]
+    return mix64(index ^ np.uint64(_KEY_SEED))
+
+
+_CONSTANT_KEYS = _key_block(0, 2)  # column 0: k_c, column 1: k_len
+_POSITION_KEYS = _key_block(2, _KEY_TABLE)  # column j: k_j of word position j
+
+
+def _position_keys(first: int, count: int) -> np.ndarray:
+    """Per-lane keys of word positions ``first .. first + count - 1``, shape ``(lanes, count)``."""
+    if first + count <= _KEY_TABLE:
+        return _POSITION_KEYS[:, first:first + count]
+    return _key_block(2 + first, count)
+
+
+def _words(values: np.ndarray) -> np.ndarray:
+    """Values as 32-bit words (modulo 2**32) in uint64, ready for the 64-bit multiply-add."""
+    if values.dtype == np.uint8:
+        return values.astype(np.uint64)
+    if values.dtype.itemsize == 4:
+        return values.view(np.uint32).astype(np.uint64)
+    return values.astype(np.uint32).astype(np.uint64)
+
+
+def content_hashes(values: np.ndarray, starts: np.ndarray, ends: np.ndarray, domain: int) -> np.ndarray:
+    """128-bit content hash of each window ``values[starts[i]:ends[i]]``, shape ``(windows, 2)``, uint64.
+
+    ``values`` is a flat integer array (token ids, or the uint8 bytes of text); the windows must be non-empty.
+    They usually lie back to back (``starts[i + 1] == ends[i]``), as the non-empty rows of an Arrow list or
+    string array do; when they do not, their values are gathered first. Equal windows of the same ``domain``
+    give equal hashes; see the module notes for the family and its collision probability.
+    """
+    starts = np.asarray(starts, dtype=np.int64)
+    ends = np.asarray(ends, dtype=np.int64)
+    lengths = ends - starts
+    if len(starts) > 1 and not np.array_equal(starts[1:], ends[:-1]):
+        packed = np.zeros(len(starts) + 1, dtype=np.int64)
+        np.cumsum(lengths, out=packed[1:])
+        values = values[np.arange(packed[-1]) + np.repeat(starts - packed[:-1], lengths)]
+        starts, ends = packed[:-1], packed[1:]
+    lanes = np.empty((len(starts), _LANES), dtype=np.uint64)
+    long = np.flatnonzero(lengths > _KEY_TABLE)
+    w0 = 0
+    while w0 < len(starts):
+        if lengths[w0] > _KEY_TABLE:  # one long window, a piece at a time
+            lanes[w0] = 0
+            for p0 in range(0, int(lengths[w0]), _HASH_CHUNK):
+                piece = _words(values[starts[w0] + p0:min(ends[w0], starts[w0] + p0 + _HASH_CHUNK)])
+                lanes[w0] += _position_keys(p0, len(piece)) @ piece
+            w0 += 1
+            continue
+        # Windows w0 .. w1 - 1: at most _HASH_CHUNK words (at least one window), none of them long.
+        w1 = int(np.searchsorted(ends, starts[w0] + _HASH_CHUNK, side="right"))
+        after = int(np.searchsorted(long, w0))
+        w1 = max(w0 + 1, min(w1, int(long[after]) if after < len(long) else len(starts)))
+        lo, hi = int(starts[w0]), int(ends[w1 - 1])
+        size = lengths[w0:w1]
+        words = _words(values[lo:hi])
+        longest = int(size.max())
+        keys = _position_keys(0, longest)
+        if np.all(size == longest):
+            lanes[w0:w1] = np.einsum("wl,kl->wk", words.reshape(w1 - w0, longest), keys)
+        else:
+            position = np.arange(hi - lo, dtype=np.int64) - np.repeat(starts[w0:w1] - lo, size)
+            for lane in range(_LANES):
+                lanes[w0:w1, lane] = np.add.reduceat(words * keys[lane][position], starts[w0:w1] - lo)
+        w0 = w1
+    lanes += _CONSTANT_KEYS[:, 0]
+    lanes += _CONSTANT_KEYS[:, 1] * (lengths.astype(np.uint64)[:, None] * np.uint64(2) + np.uint64(domain))
+    top = lanes >> np.uint64(32)
+    return np.column_stack((top[:, 0] << np.uint64(32) | top[:, 1], top[:, 2] << np.uint64(32) | top[:, 3]))
+
+
+def hex_digest(content: np.ndarray) -> str:
+    """A content hash as 32 hex digits (stable across runs: fingerprints of findings use it)."""
+    return f"{int(content[0]):016x}{int(content[1]):016x}"

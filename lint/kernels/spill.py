@@ -1,0 +1,128 @@
+"""Spill files: arrays of one shard appended batch by batch to an ordinary NumPy ``.npy`` file, and read back a
+block of rows at a time, so that what a scan holds in memory does not grow with the shard."""
+from __future__ import annotations
+
+import os
+import struct
+import tempfile
+
+import numpy as np
+
+# Rows of a signature or band file read back at once (8 MiB of signatures at num_perm 128): a block is one memory
+# map in read_rows (the file's pages that a read touches count as the process's memory while they are mapped) and
+# one buffer in npy_blocks.
+_VERIFY_BLOCK_ROWS = 1 << 14
+
+
+class SignatureSpill:
+    """The MinHash signatures of one shard, appended batch by batch to a NumPy ``.npy`` file.
+
+    A ``.npy`` file states its shape in a header before the data, but the number of windows of a shard is known
+    only at its end. So the header is reserved as a fixed :attr:`HEADER_BYTES` bytes when the file is opened,
+    each batch's signatures are appended as little-endian uint32 rows, and :meth:`close` writes the header (NPY
+    format version 1.0: magic, version, header length, the dictionary padded with spaces and ended by a newline,
+    128 bytes in all, a multiple of 64 as the format asks). The result is an ordinary ``.npy`` file, read back
+    with ``np.load(path, mmap_mode="r")``. Only the path travels in the rule's state.
+    """
+
+    HEADER_BYTES = 128
+    DTYPE = "<u4"
+    PREFIX = "signatures-"
+    WHAT = "MinHash signatures"
+
+    def __init__(self, folder: str, num_perm: int):
+        try:
+            os.makedirs(folder, mode=0o700, exist_ok=True)
+            fd, self.path = tempfile.mkstemp(prefix=self.PREFIX, suffix=".npy", dir=folder)
+        except OSError as exc:
+            raise OSError(f"cannot write {self.WHAT} under {folder} ({exc.strerror or exc}); set TMPDIR to a "
+                          f"writable folder with room for {np.dtype(self.DTYPE).itemsize * num_perm} bytes per "
+                          "window") from None
+        self.num_perm = num_perm
+        self.windows = 0
+        self._file = os.fdopen(fd, "wb")
+        self._file.write(bytes(self.HEADER_BYTES))
+
+    def append(self, rows: np.ndarray) -> None:
+        rows = np.ascontiguousarray(rows, dtype=self.DTYPE)
+        if rows.ndim != 2 or rows.shape[1] != self.num_perm:
+            raise ValueError(f"{self.WHAT} must have shape (windows, {self.num_perm}), got {rows.shape}")
+        self._file.write(rows.data)
+        self.windows += len(rows)
+
+    def close(self) -> str:
+        """Write the header and close the file; returns its path."""
+        header = {"descr": self.DTYPE, "fortran_order": False, "shape": (self.windows, self.num_perm)}
+        text = repr(header).encode("latin1")
+        text = text.ljust(self.HEADER_BYTES - 10 - 1) + b"\n"
+        self._file.seek(0)
+        self._file.write(b"\x93NUMPY\x01\x00" + struct.pack("<H", len(text)) + text)
+        self._file.close()
+        return self.path
+
+
+class BandSpill(SignatureSpill):
+    """The band keys and the signature digest of every window of one shard, in a ``.npy`` file of the same make:
+    uint64 rows of ``bands + 1`` values, the digest last (see :meth:`NearDuplicate.end`)."""
+
+    DTYPE = "<u8"
+    PREFIX = "bands-"
+    WHAT = "LSH band keys"
+
+
+def npy_layout(path: str) -> tuple[tuple, np.dtype, int]:
+    """``(shape, dtype, offset of the data)`` of the 2-D C-order array in the ``.npy`` file ``path`` (NPY format
+    1.0 or 2.0, read with NumPy's own header parser)."""
+    with open(path, "rb") as fh:
+        version = np.lib.format.read_magic(fh)
+        if version == (1, 0):
+            shape, fortran, dtype = np.lib.format.read_array_header_1_0(fh)
+        elif version == (2, 0):
+            shape, fortran, dtype = np.lib.format.read_array_header_2_0(fh)
+        else:
+            raise ValueError(f"{path}: .npy format version {version} is not supported; expected 1.0 or 2.0")
+        start = fh.tell()
+    if len(shape) != 2 or fortran:
+        raise ValueError(f"{path}: expected a 2-D array in C order, got shape {shape}")
+    return shape, dtype, start
+
+
+def read_rows(path: str, rows: np.ndarray) -> np.ndarray:
+    """Rows ``rows`` (sorted, distinct) of the 2-D array in the ``.npy`` file ``path``, as :func:`np.load` gives
+    them.
+
+    The file is memory-mapped one block of :data:`_VERIFY_BLOCK_ROWS` rows at a time, and only where rows are asked
+    for: pages of a file that a process has mapped count in its resident memory while the map lasts, so one map of
+    the whole file would make the scan's peak memory grow with the shard (up to the size of its signature file);
+    block by block it grows by one block at most. The loop runs once per block that holds asked-for rows."""
+    shape, dtype, start = npy_layout(path)
+    rows = np.asarray(rows, dtype=np.int64)
+    out = np.empty((len(rows), shape[1]), dtype=dtype)
+    if len(rows) == 0 or shape[1] == 0:
+        return out
+    if rows[0] < 0 or rows[-1] >= shape[0]:
+        raise IndexError(f"{path}: rows {int(rows[0])} to {int(rows[-1])} asked for, the file has {shape[0]}")
+    blocks = rows // _VERIFY_BLOCK_ROWS
+    cuts = np.flatnonzero(blocks[1:] != blocks[:-1]) + 1
+    row_bytes = shape[1] * dtype.itemsize
+    for a, b in zip([0, *cuts.tolist()], [*cuts.tolist(), len(rows)]):
+        first, last = int(rows[a]), int(rows[b - 1])
+        mapped = np.memmap(path, dtype=dtype, mode="r", offset=start + first * row_bytes,
+                           shape=(last - first + 1, shape[1]))
+        out[a:b] = mapped[rows[a:b] - first]
+        del mapped
+    return out
+
+
+def npy_blocks(path: str):
+    """The rows of the 2-D array in the ``.npy`` file ``path`` in order, :data:`_VERIFY_BLOCK_ROWS` at a time:
+    ``(index of the first row, block)``, read into one buffer that the next block overwrites."""
+    shape, dtype, start = npy_layout(path)
+    buffer = np.empty((min(shape[0], _VERIFY_BLOCK_ROWS), shape[1]), dtype=dtype)
+    with open(path, "rb") as fh:
+        fh.seek(start)
+        for lo in range(0, shape[0], _VERIFY_BLOCK_ROWS):
+            block = buffer[:min(_VERIFY_BLOCK_ROWS, shape[0] - lo)]
+            if fh.readinto(block.data) != block.nbytes:
+                raise OSError(f"{path} ends before its {shape[0]} rows; it was cut or changed during the scan")
+            yield lo, block
