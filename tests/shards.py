@@ -15,7 +15,25 @@ import pyarrow.parquet as pq
 from corpuscle import Settings, scan
 
 REPO = pathlib.Path(__file__).resolve().parent.parent
-SARIF_SCHEMA = REPO.parent / "shared" / "standards" / "sarif-schema-2.1.0.json"
+#: The OASIS SARIF 2.1.0 JSON schema (draft-04), kept in the repository (see tests/data/README.md).
+SARIF_SCHEMA = REPO / "tests" / "data" / "sarif-schema-2.1.0.json"
+
+
+def sarif_validator():
+    """A validator for the OASIS SARIF 2.1.0 schema, with format checks (the schema declares draft-04)."""
+    import jsonschema
+
+    schema = json.loads(SARIF_SCHEMA.read_text())
+    cls = jsonschema.validators.validator_for(schema)
+    assert cls is jsonschema.Draft4Validator
+    return cls(schema, format_checker=cls.FORMAT_CHECKER)
+
+
+def validate_sarif(log: dict) -> dict:
+    """``log`` after checking it against the OASIS SARIF 2.1.0 schema; fails with the first few errors."""
+    errors = sorted(sarif_validator().iter_errors(log), key=lambda e: list(e.absolute_path))
+    assert not errors, "\n".join(f"{list(e.absolute_path)}: {e.message}" for e in errors[:5])
+    return log
 
 
 def write(path, columns: dict, fmt: str | None = None, row_group_size: int | None = None) -> str:

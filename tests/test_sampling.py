@@ -24,16 +24,7 @@ from corpuscle.io.sources import LINE_BLOCK, discover
 from corpuscle.rules.api import Rule
 from corpuscle.settings import Settings
 
-from tests.shards import SARIF_SCHEMA, write
-from tests.test_sarif import load_schema
-
-
-def sarif_validator():
-    import jsonschema
-
-    schema = load_schema(SARIF_SCHEMA)
-    cls = jsonschema.validators.validator_for(schema)
-    return cls(schema, format_checker=cls.FORMAT_CHECKER)
+from tests.shards import sarif_validator, write
 
 # -- a rule that shows which rows were read -----------------------------------------------------------------------
 

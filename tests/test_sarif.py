@@ -1,6 +1,6 @@
 """SARIF output: every log produced here is validated against the OASIS SARIF 2.1.0 JSON schema
 (source: OASIS Static Analysis Results Interchange Format Version 2.1.0, errata01, sarif-schema-2.1.0.json, kept at
-../shared/standards/ relative to the repository) with jsonschema, and checked for the shape corpuscle promises.
+tests/data/ in the repository) with jsonschema, and checked for the shape corpuscle promises.
 """
 from __future__ import annotations
 
@@ -8,7 +8,6 @@ import gzip
 import json
 import os
 
-import jsonschema
 import pytest
 from click.testing import CliRunner
 from corpuscle import Settings, __version__, scan
@@ -16,26 +15,14 @@ from corpuscle.cli import main
 from corpuscle.engine.registry import registry
 from corpuscle.report import sarif
 
-from tests.shards import SARIF_SCHEMA, pack, run, write
-
-
-def load_schema(path) -> dict:
-    """The schema at ``path``; when it is missing, a failure in CI (env CI=true) and a skip elsewhere."""
-    if not path.exists():
-        reason = f"the SARIF 2.1.0 schema is missing (expected {path.name} in ../shared/standards/)"
-        if os.environ.get("CI") == "true":
-            pytest.fail(reason)  # in CI a missing schema fails the run instead of hiding it
-        pytest.skip(reason)
-    return json.loads(path.read_text())
+from tests.shards import pack, run, sarif_validator, write
 
 
 @pytest.fixture(scope="module")
 def validator():
-    schema = load_schema(SARIF_SCHEMA)
-    cls = jsonschema.validators.validator_for(schema)
-    assert cls is jsonschema.Draft4Validator  # the OASIS schema declares draft-04
-    cls.check_schema(schema)
-    return cls(schema, format_checker=cls.FORMAT_CHECKER)
+    validator = sarif_validator()
+    type(validator).check_schema(validator.schema)
+    return validator
 
 
 def valid(validator, log: dict) -> dict:
@@ -239,16 +226,6 @@ def test_the_api_report_and_the_cli_file_agree(validator, shards):
     from_api = valid(validator, json.loads(sarif.render(report)))
     assert from_cli["runs"][0]["results"] == from_api["runs"][0]["results"]
     assert from_cli["runs"][0]["artifacts"] == from_api["runs"][0]["artifacts"]
-
-
-def test_a_missing_schema_fails_in_ci_and_skips_elsewhere(tmp_path, monkeypatch):
-    missing = tmp_path / "sarif-schema-2.1.0.json"
-    monkeypatch.setenv("CI", "true")
-    with pytest.raises(pytest.fail.Exception, match="the SARIF 2.1.0 schema is missing"):
-        load_schema(missing)
-    monkeypatch.delenv("CI")
-    with pytest.raises(pytest.skip.Exception, match="the SARIF 2.1.0 schema is missing"):
-        load_schema(missing)
 
 
 def test_a_uri_with_a_space_is_percent_encoded(validator, tmp_path):
