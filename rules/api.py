@@ -1,12 +1,33 @@
-"""The contract between the engine and a rule.
+"""The rule API: what a rule declares and the calls the engine makes.
 
-A rule keeps a small, mergeable state per shard.  The engine calls, per shard, ``begin`` once, ``feed`` for every
-batch that has the columns the rule ``needs``, and ``end`` once; then, over the states of all shards, ``report``
-(findings of one shard) and ``corpus`` (findings that span shards, figures for the whole corpus).  States travel
-between processes, so they must pickle; keep them small (counters, capped :class:`~corpuscle.findings.Hits`).
+**The minimum** (all a rule needs; see the plugin example in the README):
 
-A rule whose cross-shard step groups entries by a key (the band keys of near-duplicate search) sets ``keyed`` and
-runs that step as a partitioned shuffle, so that no single process holds the entries of the whole corpus:
+* class attributes: ``id``, ``level``, ``summary`` (one line), ``help`` (how to fix), the class docstring (what is
+  checked and why it matters for training), ``needs`` (the columns it reads, by settings key and kind),
+  ``options`` (defaults of its ``[rule.<id>]`` options) and ``kinds`` (every kind of finding it reports, with what
+  it means: kinds are part of the SARIF fingerprints, so renaming one is a visible change);
+* ``feed(state, batch)`` for every batch that has the columns: numpy over ``batch.flat(name).values`` /
+  ``.offsets``; record locations with ``state.hit(kind, batch, rows, offsets)`` (rows local to ``batch``, made
+  shard rows by the state) and figures with ``state.count(name=amount)``;
+* ``report(state)`` once per shard: findings from the hits (``self.finding(state, kind, message)``).
+
+States travel between processes, so they must pickle; keep them small (counters, capped
+:class:`~corpuscle.findings.Hits`).  A rule that keeps fields of its own names a :class:`ShardState` subclass as
+``State`` (typed fields, set in its ``__init__``) instead of setting attributes on the state in ``begin``.
+
+**Extensions**, each opt-in:
+
+* ``begin(shard, settings)`` / ``end(state)``: set up a state, shrink it before it travels;
+* ``corpus(states)``: findings that span shards and corpus figures, as a :class:`CorpusResult`;
+* ``requires``, ``needs_any``, ``outputs``, ``infer``: settings that must be known, any-one-column rules, extra
+  outputs (the drop list), what a rule infers once per shard;
+* ``splittable`` and ``merge(first, second)``: join the states of the parts of a large shard split between
+  processes (``state.continued`` / ``state.continues`` say whether parts come before or after); raise
+  :class:`Unmergeable` when two parts cannot be joined exactly.
+
+**The keyed shuffle** (rules whose cross-shard step groups entries by a key, like the band keys of near-duplicate
+search) sets ``keyed`` and runs that step as a partitioned shuffle, so that no single process holds the entries of
+the whole corpus:
 
 * ``partition(state, parts)`` -- map side, run where the shard's state is: split the keyed entries into ``parts``
   pieces by a hash of the key and return ``(state without them, pieces)``;
@@ -22,6 +43,8 @@ from __future__ import annotations
 
 import copy
 from collections import defaultdict
+from fnmatch import fnmatchcase
+from typing import NamedTuple
 
 import numpy as np
 from corpuscle.findings import Finding, Hits, Level
@@ -39,6 +62,21 @@ class Unmergeable(Exception):
     gathered (e.g. a bounded list that filled up differently); the engine then scans the shard whole."""
 
 
+def check_kind(kind: str, declared) -> None:
+    """Raise when ``kind`` matches none of a rule's declared kinds (``*`` in a declared kind matches any text)."""
+    if declared and not any(fnmatchcase(kind, pattern) for pattern in declared):
+        raise ValueError(f"finding kind {kind!r} is not declared in the rule's kinds ({', '.join(declared)})")
+
+
+class CorpusResult(NamedTuple):
+    """What ``Rule.corpus`` returns: findings that span shards, corpus figures (merged into the report's
+    metrics), and named extra outputs, each a list (e.g. ``{"drop-list": [...]}``, names listed in ``outputs``)."""
+
+    findings: list
+    metrics: dict
+    outputs: dict = {}
+
+
 class ShardState:
     """What a rule has gathered about one shard: counters, capped hit lists, and any extra fields it sets.
 
@@ -54,10 +92,11 @@ class ShardState:
     #: shard; None otherwise (the rule then infers from the first batch it is fed).
     inferred = None
 
-    def __init__(self, shard: Shard, settings, cap: int):
+    def __init__(self, shard: Shard, settings, cap: int, kinds=()):
         self.shard = shard
         self.settings = settings
         self.cap = cap
+        self.kinds = tuple(kinds)  # the rule's declared kinds (patterns); empty: not checked
         self.stats: dict[str, float] = defaultdict(int)
         self.hits: dict[str, Hits] = {}
 
@@ -65,13 +104,21 @@ class ShardState:
     def uri(self) -> str:
         return self.shard.uri
 
-    def hit(self, kind: str, rows, offsets=None) -> Hits:
-        """Record locations of one kind of defect (batch-absolute rows; offsets or None).
+    def hit(self, kind: str, batch: Batch, rows, offsets=None) -> Hits:
+        """Record locations of one kind of defect: ``rows`` are local to ``batch`` (0 .. len(batch) - 1, the batch
+        the rule computed them on, e.g. the one :func:`consistent` returned), ``offsets`` token (or character)
+        offsets within those rows, or None when the rule cannot say."""
+        return self.hit_at(kind, batch.rows[np.asarray(rows, dtype=np.int64)], offsets)
+
+    def hit_at(self, kind: str, rows, offsets=None) -> Hits:
+        """Record locations given as shard rows (0-based record indices in file order), for locations found
+        outside ``feed`` (at the end of a shard, when joining parts) or carried by the reader.
 
         A kind appears in ``hits`` only once it has at least one location, so a rule that reports every kind in
         ``hits`` never reports a defect found zero times."""
         hits = self.hits.get(kind)
         if hits is None:
+            check_kind(kind, self.kinds)
             hits = Hits(self.cap)
             hits.add(rows, offsets)
             if hits:
@@ -112,6 +159,11 @@ class Rule:
     level: Level = Level.warning
     summary: str = ""
     help: str = ""
+    #: Every kind of finding the rule reports: kind -> what it means (``*`` matches any text, for kinds that carry
+    #: a column name or a token name).  Part of the fingerprints; the state refuses an undeclared kind.
+    kinds: dict[str, str] = {}
+    #: The class of the rule's per-shard state (a :class:`ShardState` subclass with typed fields of its own).
+    State: type = None
     needs: dict[str, str] = {}
     needs_any: bool = False  # True: one of the ``needs`` columns suffices (the rule's own ``missing`` decides)
     requires: tuple[str, ...] = ()
@@ -162,7 +214,7 @@ class Rule:
         return None
 
     def begin(self, shard: Shard, settings) -> ShardState:
-        return ShardState(shard, settings, settings.instance_cap)
+        return (self.State or ShardState)(shard, settings, settings.instance_cap, tuple(self.kinds))
 
     def feed(self, state: ShardState, batch: Batch) -> None:
         raise NotImplementedError
@@ -175,14 +227,12 @@ class Rule:
         """Findings of one shard."""
         return []
 
-    def corpus(self, states: list[ShardState]) -> tuple[list[Finding], dict] | tuple[list[Finding], dict, dict]:
-        """Findings that span shards and figures for the whole corpus (default: none).
-
-        May return a third element: named outputs, each a list (e.g. ``{"drop-list": [{"uri": ..., "row": ...}]}``,
-        names listed in ``outputs``); the engine collects them into ``Report.outputs``.  A ``keyed`` rule's
+    def corpus(self, states: list[ShardState]) -> CorpusResult:
+        """Findings that span shards, figures for the whole corpus and named outputs (default: none), as a
+        :class:`CorpusResult`; the engine collects the outputs into ``Report.outputs``.  A ``keyed`` rule's
         ``corpus`` also takes ``partials`` (one per partition), and computes them in this process with
         :meth:`keyed_reduce` when called without them."""
-        return [], {}
+        return CorpusResult([], {})
 
     def merge(self, first: ShardState, second: ShardState) -> ShardState:
         """The state of one shard from the states of two consecutive parts of it (``second``'s rows follow
@@ -225,6 +275,7 @@ class Rule:
     def finding(self, state: ShardState, kind: str, message: str, level: Level | None = None,
                 **evidence) -> Finding:
         """A finding of this rule from the hits of ``kind`` recorded in ``state``."""
+        check_kind(kind, tuple(self.kinds))
         return Finding.from_hits(self.id, level or self.level, message, state.uri, state.hits[kind], kind=kind,
                                  **evidence)
 
@@ -243,11 +294,6 @@ def pct(part, whole) -> str:
     if value == 100 or value >= 99.95 and part == whole:
         return "100%"
     return f"{value:.1f}%".replace(".0%", "%")
-
-
-def absolute_rows(batch: Batch, local_rows: np.ndarray) -> np.ndarray:
-    """Batch-local row numbers to shard row indices."""
-    return batch.rows[np.asarray(local_rows, dtype=np.int64)]
 
 
 def consistent(batch: Batch, names: list[str]) -> Batch:

@@ -13,7 +13,7 @@ from corpuscle.kernels.tokens import (
     real_token_positions,
     token_positions,
 )
-from corpuscle.rules.api import Rule, absolute_rows, consistent, pct, share
+from corpuscle.rules.api import Rule, consistent, pct, share
 
 
 class DocumentAttention(Rule):
@@ -39,6 +39,9 @@ class DocumentAttention(Rule):
     id = "document-attention"
     level = Level.warning
     summary = "Packed rows holding several documents with nothing that stops attention crossing them."
+    kinds = {
+        "crossing": "packed rows that hold several documents with no per-document position restarts",
+    }
     help = ("Emit position_ids that restart at 0 at every document start and train with a document-aware "
             "attention mask built from them (or from the separators), so that no token attends to another "
             "document; or, if cross-document attention is what you want, accept it knowingly and skip this rule "
@@ -92,7 +95,7 @@ class DocumentAttention(Rule):
         first_separator = tokens.first_of(separator, rows) - tokens.offsets[rows]
         state.count(rows=tokens.lengths.size, packed_rows=int(packed.sum()), affected_rows=rows.size,
                     affected_documents=int(documents[rows].sum()))
-        state.hit("crossing", absolute_rows(batch, rows), first_separator)
+        state.hit("crossing", batch, rows, first_separator)
 
     def report(self, state):
         st = state.stats

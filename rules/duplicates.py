@@ -112,7 +112,7 @@ from corpuscle.kernels.minhash import MinHashSettings, shingle_hashes, signature
 from corpuscle.kernels.spill import BandSpill, SignatureSpill, npy_blocks, npy_layout, read_rows
 from corpuscle.kernels.text import document_text
 from corpuscle.kernels.windows import TOKENS, Windows, batch_windows, window_domain
-from corpuscle.rules.api import Rule, ShardState, share
+from corpuscle.rules.api import CorpusResult, Rule, ShardState, share
 
 DROP_LIST = "drop-list"
 """Name of the extra output both rules give: ``[{"uri": ..., "row": ...}, ...]``, the windows to drop."""
@@ -515,6 +515,10 @@ class ExactDuplicate(_DuplicateRule):
     id = "exact-duplicate"
     level = Level.warning
     summary = "Identical windows (the same token ids) or byte-identical documents, within a shard or across shards."
+    kinds = {
+        "copies-*": "one group of identical windows or documents (its content hash after the dash)",
+        "more-groups": "the groups beyond the listed maximum",
+    }
     help = ("Keep the first copy of each group (scan order: shard order, then row) and drop the others: "
             "`corpuscle scan ... --drop-list FILE` writes one JSON line {\"uri\", \"row\"} per window to drop. "
             "Deduplicate before packing and tokenizing, and across every shard that goes into one run.")
@@ -544,7 +548,7 @@ class ExactDuplicate(_DuplicateRule):
             findings.append(self._rest(scan, repeated[len(listed):], cap))
         copies = np.flatnonzero(scan.first_copy != np.arange(scan.count, dtype=scan.first_copy.dtype))
         metrics = {"exactDuplicates": {"groups": int(len(repeated)), **_fractions(scan, copies)}}
-        return findings, metrics, {DROP_LIST: scan.drop_entries(copies)}
+        return CorpusResult(findings, metrics, {DROP_LIST: scan.drop_entries(copies)})
 
     def _group(self, scan: ScanWindows, members: np.ndarray, cap: int) -> Finding:
         head = int(members[0])
@@ -586,6 +590,10 @@ class NearDuplicate(_DuplicateRule):
     id = "near-duplicate"
     level = Level.warning
     summary = "Windows or documents whose estimated Jaccard similarity (MinHash LSH) is at or above the threshold."
+    kinds = {
+        "cluster-*": "one cluster of near-duplicate windows or documents (its representative's content hash after the dash)",
+        "more-clusters": "the clusters beyond the listed maximum",
+    }
     help = ("Keep the first window of each cluster (scan order: shard order, then row) and drop the others: "
             "`corpuscle scan ... --drop-list FILE` writes one JSON line {\"uri\", \"row\"} per window to drop. "
             "Near-deduplicate the documents before packing. If the listed windows are meant to be alike (shared "
@@ -827,7 +835,7 @@ class NearDuplicate(_DuplicateRule):
             "candidatePairs": int(len(found.pairs)), "verifiedPairs": int(len(pairs)),
             "cappedBuckets": found.capped_buckets, "largestBucket": found.largest_bucket,
         }}
-        return findings, metrics, {DROP_LIST: scan.drop_entries(drop)}
+        return CorpusResult(findings, metrics, {DROP_LIST: scan.drop_entries(drop)})
 
     @staticmethod
     def _candidates(partials: list, first: np.ndarray) -> tuple[Candidates, np.ndarray]:

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from corpuscle.findings import Level
 from corpuscle.io.batch import is_integer_list, is_text
-from corpuscle.rules.api import Rule, absolute_rows
+from corpuscle.rules.api import Rule
 
 RECORD_PROBLEMS = {
     "bad-json": "line(s) that are not valid JSON",
@@ -17,7 +17,7 @@ RECORD_PROBLEMS = {
 def _problems(state, batch, kinds) -> None:
     for problem in batch.problems:
         if problem.kind in kinds:
-            state.hit(problem.kind, [problem.row], [problem.offset])
+            state.hit_at(problem.kind, [problem.row], [problem.offset])
             state.details.setdefault(problem.kind, problem.detail)
 
 
@@ -68,6 +68,10 @@ class UnreadableShard(Rule):
     id = "unreadable-shard"
     level = Level.error
     summary = "Files that cannot be opened or read to the end, or that hold no records."
+    kinds = {
+        "unreadable": "a file that cannot be opened or read to its end",
+        "empty": "a file that holds no records",
+    }
     help = ("Re-copy or re-write the file (check its size and checksum against the source); an empty file "
             "usually means a writer that failed before writing anything: rerun it or remove the file.")
 
@@ -89,7 +93,7 @@ class UnreadableShard(Rule):
     def report(self, state):
         out = []
         for p in state.problems:
-            state.hit(p.kind, [p.row])
+            state.hit_at(p.kind, [p.row])
             if p.kind == "empty":
                 msg = f"{p.detail}: nothing to train on. Remove the file or rerun the writer that produced it."
                 out.append(self.finding(state, p.kind, msg, level=Level.warning))
@@ -109,6 +113,12 @@ class SchemaMismatch(Rule):
     id = "schema-mismatch"
     level = Level.error
     summary = "Missing or mistyped columns; parallel token columns of different lengths in a row."
+    kinds = {
+        "type:*": "a column (named after the colon) whose Arrow type is not what the rules read",
+        "length:*": "rows where a parallel column (named after the colon) differs in length from the tokens",
+        "mistyped": "records whose values do not fit the column's type",
+        "no-content": "a shard with none of the columns the rules read",
+    }
     help = ("Point corpuscle at the right columns (text_column, tokens_column, labels_column, mask_column, "
             "positions_column) or fix the writer so that token columns are lists of integers and every parallel "
             "column has one entry per token.")
@@ -142,11 +152,11 @@ class SchemaMismatch(Rule):
             name = getattr(s, key)
             if batch.has(name) and not is_integer_list(batch.type_of(name)) and str(batch.type_of(name)) != "null":
                 state.types.setdefault(name, str(batch.type_of(name)))
-                state.hit(f"type:{name}", batch.rows)
+                state.hit_at(f"type:{name}", batch.rows)
         if batch.has(s.text_column) and not is_text(batch.type_of(s.text_column)) \
                 and str(batch.type_of(s.text_column)) != "null":
             state.types.setdefault(s.text_column, str(batch.type_of(s.text_column)))
-            state.hit(f"type:{s.text_column}", batch.rows)
+            state.hit_at(f"type:{s.text_column}", batch.rows)
         if not (batch.has(tok) and is_integer_list(batch.type_of(tok))):
             return
         lengths = batch.flat(tok).lengths
@@ -155,13 +165,13 @@ class SchemaMismatch(Rule):
             if batch.has(name) and is_integer_list(batch.type_of(name)):
                 other = batch.flat(name).lengths
                 bad = np.flatnonzero(other != lengths)
-                state.hit(f"length:{name}", absolute_rows(batch, bad), np.minimum(other, lengths)[bad])
+                state.hit(f"length:{name}", batch, bad, np.minimum(other, lengths)[bad])
 
     def report(self, state):
         s = state.settings
         out = []
         if state.stats["rows"] and s.tokens_column not in state.columns and s.text_column not in state.columns:
-            state.hit("no-content", [0])
+            state.hit_at("no-content", [0])
             cols = ", ".join(sorted(state.columns)) or "none"
             out.append(self.finding(state, "no-content",
                                     f"neither a token column {s.tokens_column!r} nor a text column "

@@ -16,7 +16,7 @@ from corpuscle.findings import Finding, Level
 from corpuscle.io.batch import Batch, Flat
 from corpuscle.kernels.shift import PREFERENCE, SHIFTS, best_shift, first_mismatch, shift_matches
 from corpuscle.kernels.tokens import inner_starts, padding_free, padding_positions, position_restarts, token_positions
-from corpuscle.rules.api import Rule, Unmergeable, absolute_rows, consistent, pct, share
+from corpuscle.rules.api import CorpusResult, Rule, Unmergeable, consistent, pct, share
 
 #: Label shift each convention expects in the data.
 CONVENTION_SHIFT = {"shifted": 1, "aligned": 0}
@@ -146,6 +146,17 @@ class LabelAlignment(Rule):
     level = Level.error
     summary = ("Labels vs input_ids: label shift observed vs expected, mixed conventions, label values that are "
                "neither a token id nor the ignore index, rows with nothing to train on.")
+    kinds = {
+        "shift*": "rows whose labels follow input_ids shifted by the number after 'shift'",
+        "no-shift": "rows whose labels follow no single shift",
+        "last-label": "rows whose last label is trained on although nothing follows it",
+        "negative-label": "negative label values other than the ignore index",
+        "label-out-of-vocab": "label values at or above vocab_size",
+        "pad-label": "labels equal to the pad id at padded positions",
+        "nothing-trained": "rows with no position to train on",
+        "mixed-in-shard": "rows of one shard following different label conventions",
+        "mixed-across-shards": "shards following different label conventions",
+    }
     help = ("Shift labels exactly once: either write labels[t] = input_ids[t+1] with the last label set to "
             "ignore_index (labels = 'shifted') and let the model use them as they are, or write labels = input_ids "
             "(labels = 'aligned') and let the model shift — never both, never neither. Set `labels` in the config "
@@ -198,7 +209,7 @@ class LabelAlignment(Rule):
         if state.expected == 1:
             self._last_label(state, batch, tokens, labels, teaching, padding, follows)
         empty = np.flatnonzero((trained_rows == 0) & (tokens.lengths > 0))
-        state.hit("nothing-trained", absolute_rows(batch, empty))
+        state.hit("nothing-trained", batch, empty)
         starts, basis = document_starts(batch, tokens, s)
         state.basis = state.basis or basis
         state.count(document_starts=starts.size,
@@ -218,7 +229,7 @@ class LabelAlignment(Rule):
         if negatives:
             negative = trained & (labels < 0)
             rows, offsets, n = first_per_row(tokens, negative)
-            state.hit("negative-label", absolute_rows(batch, rows), offsets)
+            state.hit("negative-label", batch, rows, offsets)
             values, counts = np.unique(labels[negative], return_counts=True)
             for value, count in zip(values.tolist(), counts.tolist()):
                 if value in state.negative_values or len(state.negative_values) < VALUES_KEPT:
@@ -228,7 +239,7 @@ class LabelAlignment(Rule):
         if s.vocab_size is not None and high >= s.vocab_size:
             beyond = trained & (labels >= s.vocab_size)
             rows, offsets, n = first_per_row(tokens, beyond)
-            state.hit("label-out-of-vocab", absolute_rows(batch, rows), offsets)
+            state.hit("label-out-of-vocab", batch, rows, offsets)
             if n:
                 state.count(out_of_vocab_positions=n)
                 state.max_label = max(state.max_label or 0, int(labels[beyond].max()))
@@ -238,7 +249,7 @@ class LabelAlignment(Rule):
             if padding is not None:
                 pad_marked = trained & padding & (labels == s.pad_id)
                 rows, offsets, n = first_per_row(tokens, pad_marked)
-                state.hit("pad-label", absolute_rows(batch, rows), offsets)
+                state.hit("pad-label", batch, rows, offsets)
                 if n:
                     markers = pad_marked if markers is None else markers | pad_marked
             state.count(pad_label_positions=n)
@@ -254,7 +265,7 @@ class LabelAlignment(Rule):
         m0, c0 = shift_matches(tokens, labels, s.ignore_index, (expected,), trained, trained_rows)
         perfect = (c0[0] > 0) & (m0[0] == c0[0])
         settled = np.flatnonzero(perfect)
-        state.hit(shift_kind(expected), absolute_rows(batch, settled), self._other_break(state, tokens, labels, settled))
+        state.hit(shift_kind(expected), batch, settled, self._other_break(state, tokens, labels, settled))
         state.count(measured=int(settled.size), **{f"matched{expected:+d}": int(m0[0, settled].sum()),
                                                    f"compared{expected:+d}": int(c0[0, settled].sum())})
         follows = perfect.copy()
@@ -291,11 +302,11 @@ class LabelAlignment(Rule):
         for i, k in enumerate(SHIFTS):
             rows = np.flatnonzero(steady & (best == k))
             if rows.size:
-                state.hit(shift_kind(k), rows_in_shard[rows], offsets[rows])
+                state.hit_at(shift_kind(k), rows_in_shard[rows], offsets[rows])
                 state.count(**{f"matched{k:+d}": int(matches[i, rows].sum()),
                                f"compared{k:+d}": int(comparable[i, rows].sum())})
         loose = np.flatnonzero(measured & ~steady)
-        state.hit("no-shift", rows_in_shard[loose], breaks[expected][loose])
+        state.hit_at("no-shift", rows_in_shard[loose], breaks[expected][loose])
         state.count(loose_agreement=float(agreement[loose].sum()))
         return steady & (best == expected)
 
@@ -316,7 +327,7 @@ class LabelAlignment(Rule):
             if label == first_token[0]:
                 state.count(continued=1)
             else:
-                state.hit("last-label", [row], [offset])
+                state.hit_at("last-label", [row], [offset])
                 state.count(wraps=int(label == own_first))
             state.tail = None
         trained_last = teaching[last] & follows[rows]
@@ -331,7 +342,7 @@ class LabelAlignment(Rule):
         bad = trained_last & ~continued
         state.count(continued=int((trained_last & continued).sum()),
                     wraps=int((bad & (last_label == first_token)).sum()))
-        state.hit("last-label", absolute_rows(batch, rows[bad]), tokens.lengths[rows[bad]] - 1)
+        state.hit("last-label", batch, rows[bad], tokens.lengths[rows[bad]] - 1)
 
     @staticmethod
     def _settle(state) -> None:
@@ -341,7 +352,7 @@ class LabelAlignment(Rule):
             if state.stats["continued"]:
                 state.count(continued=1)  # the shard continues its stream: presumed to go on in the next shard
             else:
-                state.hit("last-label", [row], [offset])
+                state.hit_at("last-label", [row], [offset])
                 state.count(wraps=int(label == own_first))
             state.tail = None
 
@@ -361,7 +372,7 @@ class LabelAlignment(Rule):
             if label == second.head:
                 head.count(continued=1)
             else:
-                head.hit("last-label", [row], [offset])
+                head.hit_at("last-label", [row], [offset])
                 head.count(wraps=int(label == own_first))
             head.tail = None
         merged = super().merge(head, second)
@@ -546,7 +557,7 @@ class LabelAlignment(Rule):
         metrics = {"labelSupervision": figures} if states else {}
         if rows_by_shift:
             metrics["labelShiftRows"] = {f"{k:+d}": n for k, n in sorted(rows_by_shift.items())}
-        return findings, metrics
+        return CorpusResult(findings, metrics)
 
     def _mixed_across(self, states, dominant) -> Finding:
         rows_per = {}

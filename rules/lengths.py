@@ -21,7 +21,7 @@ from corpuscle.kernels.documents import (
     infer_arrangement,
 )
 from corpuscle.kernels.packing import AsBuilt, compare_layouts, savings
-from corpuscle.rules.api import Rule, Unmergeable, consistent, pct, share
+from corpuscle.rules.api import CorpusResult, Rule, Unmergeable, consistent, pct, share
 
 #: Names of the three layouts in reports (camelCase keys) and in messages.
 LAYOUT_KEYS = {"one_per_window": "oneDocumentPerWindow", "concat_chunk": "concatenateAndChunk",
@@ -135,6 +135,10 @@ class OverlongDocument(_DocumentRule):
     id = "overlong-document"
     level = Level.warning
     summary = "Documents longer than the context window (cut or split); rows cut at the window."
+    kinds = {
+        "longer-than-window": "documents longer than the context window",
+        "cut": "documents cut at the window and not continued",
+    }
     help = ("Split long documents at natural boundaries (sections, paragraphs) before tokenizing, so that each "
             "piece fits the window; or pack them into full windows plus a remainder (best-fit decreasing) instead "
             "of cutting them; or train with a longer seq_len if the model supports it. For cut rows, rebuild the "
@@ -153,8 +157,8 @@ class OverlongDocument(_DocumentRule):
         return None
 
     def _callbacks(self, state):
-        return {"on_overlong": lambda rows, offs: state.hit("longer-than-window", rows, offs),
-                "on_cut": lambda rows, offs: state.hit("cut", rows, offs)}
+        return {"on_overlong": lambda rows, offs: state.hit_at("longer-than-window", rows, offs),
+                "on_cut": lambda rows, offs: state.hit_at("cut", rows, offs)}
 
     def report(self, state):
         s, t, out = state.settings, state.tally, []
@@ -213,6 +217,9 @@ class TruncationWaste(_DocumentRule):
     id = "truncation-waste"
     level = Level.warning
     summary = "Share of the token budget lost to padding and truncation; what packing would save."
+    kinds = {
+        "budget": "the share of the token budget lost to padding and truncation",
+    }
     help = ("Pack documents instead of padding each to the window: best-fit decreasing keeps documents whole and "
             "wastes little; concatenate-and-chunk wastes least but splits documents at window edges (use "
             "position_ids that restart per document and a document-aware attention mask). Do not truncate "
@@ -278,7 +285,7 @@ class TruncationWaste(_DocumentRule):
         if token_states:
             metrics["tokenBudget"] = corpus_budget([st.tally for st in token_states],
                                                    [st.settings.seq_len for st in token_states])
-        return [], metrics
+        return CorpusResult([], metrics)
 
 
 # -- token budget figures ----------------------------------------------------------------------------------------

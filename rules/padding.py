@@ -19,7 +19,7 @@ import numpy as np
 from corpuscle.findings import Finding, Level
 from corpuscle.io.batch import Flat, MaskRanks, is_integer_list, spans
 from corpuscle.kernels.tokens import padding_positions, real_per_row, real_positions, real_ranks
-from corpuscle.rules.api import Rule, absolute_rows, consistent, pct, share
+from corpuscle.rules.api import CorpusResult, Rule, consistent, pct, share
 
 # -- per-row arithmetic over flat arrays --------------------------------------------------------------------------
 
@@ -114,6 +114,14 @@ class PaddingLoss(Rule):
     level = Level.error
     summary = ("Labels trained on padding; attention masks inconsistent with padding; real eos never trained on "
                "because the pad id equals the eos id.")
+    kinds = {
+        "attended-padding": "rows whose attention mask attends to padding",
+        "trained-padding": "labels trained on padding",
+        "masked-real-tokens": "real tokens under attention_mask 0",
+        "eos-never-trained": "real eos never trained on because pad id equals eos id",
+        "mask-shape": "attention masks whose ones and zeros do not form one block",
+        "mask-shape:*": "locations of mask-shape rows by padding side (after the colon)",
+    }
     help = ("Build labels from the attention mask, not from token ids: set labels to the ignore index (-100) "
             "wherever attention_mask is 0 and, with shifted labels, at the last real position of a padded row. "
             "Build the mask from each row's real length (ones for real tokens, zeros for padding, on one side). "
@@ -156,7 +164,7 @@ class PaddingLoss(Rule):
             if runs is not None:
                 count, first = runs.count_in_padding(real_ranks(batch, flat, s))
                 rows = np.flatnonzero(count)
-                state.hit("attended-padding", absolute_rows(batch, rows), first[rows] - flat.offsets[rows])
+                state.hit("attended-padding", batch, rows, first[rows] - flat.offsets[rows])
                 state.count(**{"attended-padding_positions": int(count.sum())})
                 self._hit_rows(state, batch, flat, np.greater(runs.non_pad, real), "masked-real-tokens")
         else:
@@ -197,7 +205,7 @@ class PaddingLoss(Rule):
             first = np.ones(rows.size, dtype=bool)
             first[1:] = rows[1:] != rows[:-1]
             keep = first & broken[rows]
-            state.hit(f"mask-shape:{side}", absolute_rows(batch, rows[keep]), offsets[keep])
+            state.hit(f"mask-shape:{side}", batch, rows[keep], offsets[keep])
         real_count = real_per_row(batch, flat, state.settings)
         padded = (real_count < flat.lengths) & (real_count > 0)
         starts_real = real[flat.offsets[:-1][padded]]
@@ -217,14 +225,14 @@ class PaddingLoss(Rule):
             label_ignored = ignored
         lost = np.flatnonzero(checked & label_ignored)
         rows, offsets = flat.locate(lost)
-        state.hit("eos-never-trained", absolute_rows(batch, rows), offsets)
+        state.hit("eos-never-trained", batch, rows, offsets)
         state.count(real_eos=int(np.count_nonzero(checked)))
 
     @staticmethod
     def _hit_rows(state, batch, flat, mask, kind):
         """Record one instance per affected row (offset of its first position) and count the positions."""
         rows, offsets = first_per_row(flat, mask)
-        state.hit(kind, absolute_rows(batch, rows), offsets)
+        state.hit(kind, batch, rows, offsets)
         state.count(**{f"{kind}_positions": int(np.count_nonzero(mask))})
 
     # -- findings -------------------------------------------------------------------------------------------------
@@ -302,9 +310,9 @@ class PaddingLoss(Rule):
     def corpus(self, states):
         slots = sum(int(st.stats["slots"]) for st in states)
         if not slots:
-            return [], {}
+            return CorpusResult([], {})
         pads = sum(int(st.stats["padding"]) for st in states)
-        return [], {"realTokenFraction": (slots - pads) / slots, "padTokenFraction": pads / slots}
+        return CorpusResult([], {"realTokenFraction": (slots - pads) / slots, "padTokenFraction": pads / slots})
 
 
 def _has(batch, name) -> bool:

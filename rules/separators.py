@@ -16,7 +16,7 @@ from corpuscle.kernels.tokens import (
     real_ranks,
     real_token_positions,
 )
-from corpuscle.rules.api import Rule, absolute_rows, consistent, pct, share
+from corpuscle.rules.api import Rule, consistent, pct, share
 
 #: The special-token settings each separator convention depends on.
 SEPARATOR_IDS = {"eos-after": ("eos_id",), "bos-before": ("bos_id",), "both": ("eos_id", "bos_id")}
@@ -61,6 +61,15 @@ class MissingSeparator(Rule):
     id = "missing-separator"
     level = Level.error
     summary = "Document boundaries without the separator; shards with no separators at all; doubled separators."
+    kinds = {
+        "boundary-no-eos": "document starts inside a row not preceded by eos",
+        "boundary-no-bos": "document starts inside a row that do not begin with bos",
+        "unterminated-row": "padded rows whose last real token is not eos",
+        "no-eos": "packed windows with no eos at all",
+        "no-bos": "packed windows with no bos at all",
+        "doubled-eos": "eos directly followed by another eos",
+        "doubled-bos": "bos directly followed by another bos",
+    }
     help = ("Append eos after every document (or prepend bos, per your convention) before packing, exactly once: "
             "check that the tokenizer's add_eos/add_bos setting and the packing step agree, so that neither both "
             "nor none of them add it. If the shard uses another convention, set separator = \"eos-after\", "
@@ -101,11 +110,11 @@ class MissingSeparator(Rule):
             if want_eos:
                 bad = starts[values[starts - 1] != s.eos_id]
                 rows, offsets = tokens.locate(bad)
-                state.hit("boundary-no-eos", absolute_rows(batch, rows), offsets)
+                state.hit("boundary-no-eos", batch, rows, offsets)
             if want_bos:
                 bad = starts[values[starts] != s.bos_id]
                 rows, offsets = tokens.locate(bad)
-                state.hit("boundary-no-bos", absolute_rows(batch, rows), offsets)
+                state.hit("boundary-no-bos", batch, rows, offsets)
 
         # padded rows: the last document ends before the row does, so it must end with eos
         padded = (real_count < tokens.lengths) & (real_count > 0)
@@ -117,7 +126,7 @@ class MissingSeparator(Rule):
                 last = ranks.select(ranks.rank(tokens.starts[rows]) + real_count[rows])
                 bad = values[last] != s.eos_id
                 rows, last = rows[bad], last[bad]
-                state.hit("unterminated-row", absolute_rows(batch, rows), last - tokens.offsets[rows])
+                state.hit("unterminated-row", batch, rows, last - tokens.offsets[rows])
 
         # packed windows (full rows of seq_len tokens): are there separators at all?
         if s.seq_len is not None:
@@ -128,7 +137,7 @@ class MissingSeparator(Rule):
                 if wanted:
                     per_row = tokens.count_positions(at)
                     state.count(**{f"window_{name}": int(per_row[window].sum())})
-                    state.hit(f"no-{name}", absolute_rows(batch, np.flatnonzero(window & (per_row == 0))))
+                    state.hit(f"no-{name}", batch, np.flatnonzero(window & (per_row == 0)))
 
         # doubled separators among real tokens (offset = the second of the pair, which starts no row)
         doubled_bos = s.bos_id is not None and s.bos_id != s.eos_id
@@ -137,7 +146,7 @@ class MissingSeparator(Rule):
                 second = at[1:][np.diff(at) == 1]
                 rows, offsets = tokens.locate(second)
                 inside = offsets > 0
-                state.hit(f"doubled-{name}", absolute_rows(batch, rows[inside]), offsets[inside])
+                state.hit(f"doubled-{name}", batch, rows[inside], offsets[inside])
 
     def report(self, state):
         s, st, out = state.settings, state.stats, []

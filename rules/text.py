@@ -30,7 +30,7 @@ import regex
 from corpuscle.findings import Finding, Level
 from corpuscle.io.batch import is_integer_list, is_text
 from corpuscle.kernels.text import DocumentText, document_text, has_text
-from corpuscle.rules.api import Rule, absolute_rows, consistent, pct, share
+from corpuscle.rules.api import CorpusResult, Rule, consistent, pct, share
 
 
 def _true_rows(mask: pa.Array) -> np.ndarray:
@@ -142,6 +142,10 @@ class SpecialTokenText(Rule):
     id = "special-token-text"
     level = Level.warning
     summary = "Special-token strings written inside document text."
+    kinds = {
+        "special-token-string": "special-token strings inside document text",
+        "tokenizer-unreadable": "a tokenizer file whose special tokens cannot be read",
+    }
     help = ("Remove these strings from the text in the data-prep step, or tokenize text with special-token parsing "
             "turned off so that they stay ordinary text. Option strings: the literal strings searched besides the "
             "tokenizer's special tokens (default: common generic spellings); '<s>' also matches the HTML "
@@ -200,7 +204,7 @@ class SpecialTokenText(Rule):
                 firsts.append(pattern.search(doc).start())
                 counts.append(len(found))
                 state.per_string.update(found)
-        state.hit(self.KIND, absolute_rows(batch, np.asarray(rows, dtype=np.int64)), firsts)
+        state.hit(self.KIND, batch, np.asarray(rows, dtype=np.int64), firsts)
         state.count(occurrences=sum(counts))
         _keep(state.per_instance, counts, state.cap)
 
@@ -230,10 +234,10 @@ class SpecialTokenText(Rule):
 
     def corpus(self, states):
         errors = dict.fromkeys(s.tokenizer_error for s in states if getattr(s, "tokenizer_error", None))
-        return [Finding(self.id, Level.warning, f"{error}: only the option strings were searched for special-token "
+        return CorpusResult([Finding(self.id, Level.warning, f"{error}: only the option strings were searched for special-token "
                         "text. Point tokenizer at a tokenizer JSON file (with an \"added_tokens\" list) or unset it.",
                         None, kind="tokenizer-unreadable", count=1, evidence={"error": error})
-                for error in errors], {}
+                for error in errors], {})
 
 
 # -- encoding-error -----------------------------------------------------------------------------------------------
@@ -344,6 +348,11 @@ class EncodingError(Rule):
     id = "encoding-error"
     level = Level.warning
     summary = "Invalid UTF-8, U+FFFD replacement characters and control characters in document text."
+    kinds = {
+        "invalid-utf8": "documents whose bytes are not valid UTF-8",
+        "replacement-character": "documents holding U+FFFD",
+        "control-character": "documents holding control characters",
+    }
     help = ("Find the step that decoded the source with the wrong encoding or with errors='replace' and decode "
             "it as what it is (check for Latin-1/Windows-1252 and for binary files in the crawl); drop documents "
             "that are mostly replacement or control characters; strip stray controls with a normalisation step. "
@@ -403,7 +412,7 @@ class EncodingError(Rule):
                 rows, first, counts = rows[keep], first[keep], counts[keep]
             if not rows.size:
                 continue
-            state.hit(kind, absolute_rows(batch, rows), _char_offsets(view, offsets, rows, first))
+            state.hit(kind, batch, rows, _char_offsets(view, offsets, rows, first))
             state.count(**{f"{kind}-occurrences": int(counts.sum())})
             _keep(state.per_instance[kind], counts.tolist(), state.cap)
         if controls.size:
@@ -437,7 +446,7 @@ class EncodingError(Rule):
             if read:
                 local.append(i)
         if rows:
-            state.hit("invalid-utf8", rows, offsets)
+            state.hit_at("invalid-utf8", rows, offsets)
             state.count(replaced=sum(replaced))
             _keep(state.per_instance["invalid-utf8"], replaced, state.cap)
         return np.asarray(local, dtype=np.int64)
@@ -536,6 +545,13 @@ class EmptyDocument(Rule):
     id = "empty-document"
     level = Level.warning
     summary = "Empty or whitespace-only documents; token rows with no real tokens; zero-length packed documents."
+    kinds = {
+        "empty-text": "empty or null text",
+        "whitespace-text": "text of whitespace only",
+        "empty-row": "token rows with no tokens",
+        "all-padding": "token rows with no real token",
+        "zero-length-document": "zero-length documents inside packed rows (two separators in a row)",
+    }
     help = ("Filter documents whose text is empty after stripping whitespace before tokenizing, and drop rows with "
             "no real tokens before packing; a zero-length packed document usually means empty strings reached the "
             "tokenizer (which then emits a bare separator): filter them upstream.")
@@ -574,20 +590,20 @@ class EmptyDocument(Rule):
         text = document_text(batch, state.settings)
         state.count(documents=text.rows)
         if text.array is None:
-            state.hit("empty-text", batch.rows)
+            state.hit_at("empty-text", batch.rows)
             state.count(null_text=text.rows)
             return
         array = text.array
         null = array.is_null().to_numpy(zero_copy_only=False)
         empty = null | (pc.binary_length(array).fill_null(0).to_numpy(zero_copy_only=False) == 0)
         state.count(null_text=int(null.sum()))
-        state.hit("empty-text", absolute_rows(batch, np.flatnonzero(empty)))
-        state.hit("whitespace-text", absolute_rows(batch, _true_rows(pc.utf8_is_space(array))))
+        state.hit("empty-text", batch, np.flatnonzero(empty))
+        state.hit("whitespace-text", batch, _true_rows(pc.utf8_is_space(array)))
 
     def _tokens(self, state, batch):
         s = state.settings
         state.count(rows=len(batch))
-        state.hit("empty-row", absolute_rows(batch, np.flatnonzero(batch.flat(s.tokens_column).lengths == 0)))
+        state.hit("empty-row", batch, np.flatnonzero(batch.flat(s.tokens_column).lengths == 0))
         batch = consistent(batch, [s.tokens_column, s.mask_column, s.positions_column])
         tokens = batch.flat(s.tokens_column)
         values = tokens.values
@@ -600,7 +616,7 @@ class EmptyDocument(Rule):
         if real is not None or s.pad_id is not None:
             counted = real if real is not None else values != s.pad_id
             all_padding = (tokens.row_counts(counted) == 0) & (tokens.lengths > 0)
-            state.hit("all-padding", absolute_rows(batch, np.flatnonzero(all_padding)))
+            state.hit("all-padding", batch, np.flatnonzero(all_padding))
         if batch.has(s.positions_column) and is_integer_list(batch.type_of(s.positions_column)):
             self._zero_length(state, batch, tokens, batch.flat(s.positions_column).values, real)
 
@@ -632,7 +648,7 @@ class EmptyDocument(Rule):
             not_pad = np.cumsum(np.concatenate(([0], v != s.pad_id)))
             at = at[not_pad[tokens.ends[rows]] - not_pad[at] > 0]
         rows, offsets = tokens.locate(at)
-        state.hit("zero-length-document", absolute_rows(batch, rows), offsets)
+        state.hit("zero-length-document", batch, rows, offsets)
 
     def report(self, state):
         out, st, s = [], state.stats, state.settings

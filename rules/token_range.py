@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 from corpuscle.findings import Finding, Level
-from corpuscle.rules.api import Rule, absolute_rows, pct
+from corpuscle.rules.api import CorpusResult, Rule, pct
 
 #: A largest observed id within this share of the storage type's range below its maximum is reported as what
 #: wrapped ids look like (a heuristic: wrapped ids spread over the whole range of the type).
@@ -30,6 +30,12 @@ class TokenRange(Rule):
     id = "token-range"
     level = Level.error
     summary = "Token ids outside [0, vocab_size); an integer storage type too narrow for the vocabulary."
+    kinds = {
+        "negative": "negative token ids",
+        "above-vocab": "token ids at or above vocab_size",
+        "narrow-storage": "an integer storage type too narrow for the vocabulary",
+        "vocab-unset": "shards whose vocab_size was not given (the upper bound is not checked)",
+    }
     help = ("Re-tokenize with the tokenizer that matches the model, or set vocab_size to the size of the model's "
             "embedding table. Write the pad id (not -1 or -100) into input_ids; -100 belongs in labels only. Store "
             "token ids in a type that holds vocab_size - 1 (int32 or uint32 for vocabularies over 65,536); wrapped "
@@ -84,7 +90,7 @@ class TokenRange(Rule):
     @staticmethod
     def _record(state, batch, flat, where, kind):
         rows, offsets = flat.locate(where)
-        state.hit(kind, absolute_rows(batch, rows), offsets)
+        state.hit(kind, batch, rows, offsets)
         state.count(**{f"{kind}_rows": int(np.count_nonzero(np.diff(rows)) + 1)})
 
     def report(self, state):
@@ -136,7 +142,7 @@ class TokenRange(Rule):
             if evidence["nearStorageMax"]:
                 near = (f" The largest id seen is {state.max_id:,}, {headroom:,} below the type's maximum, as "
                         "expected when ids wrapped (heuristic).")
-        state.hit("narrow-storage", [state.max_at[0]] if state.max_id is not None else [0],
+        state.hit_at("narrow-storage", [state.max_at[0]] if state.max_id is not None else [0],
                   [state.max_at[1]] if state.max_id is not None else None)
         return self.finding(
             state, "narrow-storage",
@@ -149,7 +155,7 @@ class TokenRange(Rule):
     def corpus(self, states):
         unset = [st for st in states if st.settings.vocab_size is None and st.max_id is not None]
         if not unset:
-            return [], {}
+            return CorpusResult([], {})
         cap = unset[0].cap
         widest = max(unset, key=lambda st: st.max_id)
         kept = unset[:cap]
@@ -166,7 +172,7 @@ class TokenRange(Rule):
                      "--vocab-size with the size of the model's embedding table to check the upper bound "
                      "(instances: the largest id of each shard)."),
             evidence={"maxId": widest.max_id, "shards": len(unset)})
-        return [note], {}
+        return CorpusResult([note], {})
 
 
 RULES = [TokenRange]

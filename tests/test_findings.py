@@ -58,10 +58,10 @@ def test_hits_do_not_hold_the_caller_arrays():
 
 def test_shard_state_records_a_kind_only_once_it_has_a_hit():
     state = ShardState(Shard("s.jsonl", "s.jsonl", "jsonl"), Settings(instance_cap=2), cap=2)
-    state.hit("gap", np.zeros(0, dtype=np.int64))
+    state.hit_at("gap", np.zeros(0, dtype=np.int64))
     assert "gap" not in state.hits  # a defect found zero times is not a finding
-    state.hit("gap", [5, 6, 7], [1, 2, 3])
-    state.hit("gap", [])
+    state.hit_at("gap", [5, 6, 7], [1, 2, 3])
+    state.hit_at("gap", [])
     assert (state.hits["gap"].count, state.hits["gap"].rows.tolist(), state.hits["gap"].truncated) == (3, [5, 6],
                                                                                                        True)
     state.count(rows=4)

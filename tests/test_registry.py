@@ -7,7 +7,7 @@ import corpuscle.engine.registry as rules
 import numpy as np
 import pytest
 from corpuscle.findings import Level
-from corpuscle.rules.api import Rule, absolute_rows
+from corpuscle.rules.api import Rule
 
 from tests.shards import findings, locations, run, write
 
@@ -25,7 +25,7 @@ class LongRows(Rule):
     def feed(self, state, batch):
         flat = batch.flat(state.settings.tokens_column)
         rows = np.flatnonzero(flat.lengths > self.opts["limit"])
-        state.hit("long", absolute_rows(batch, rows), np.full(rows.size, self.opts["limit"]))
+        state.hit("long", batch, rows, np.full(rows.size, self.opts["limit"]))
 
     def report(self, state):
         return [self.finding(state, "long", "long rows")] if state.hits else []

@@ -39,7 +39,7 @@ class RowsRead(Rule):
     needs = {"tokens_column": "int-list"}
 
     def feed(self, state, batch):
-        state.hit("read", batch.rows)
+        state.hit_at("read", batch.rows)
 
     def report(self, state):
         return [self.finding(state, "read", "rows read")] if "read" in state.hits else []
@@ -55,7 +55,7 @@ class EveryTenth(Rule):
     needs = {"tokens_column": "int-list"}
 
     def feed(self, state, batch):
-        state.hit("tenth", batch.rows[batch.rows % 10 == 0])
+        state.hit_at("tenth", batch.rows[batch.rows % 10 == 0])
 
     def report(self, state):
         return [self.finding(state, "tenth", "every tenth row")] if "tenth" in state.hits else []

@@ -361,7 +361,7 @@ def scan_directly(rule, path, settings):
             if rule.missing(batch, settings) is None:
                 rule.feed(state, batch)
     state = rule.end(state)
-    found, _ = rule.corpus([state])
+    found = rule.corpus([state]).findings
     return rule.report(state) + found
 
 

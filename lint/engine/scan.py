@@ -27,7 +27,7 @@ from corpuscle.engine.split import workers as split_workers
 from corpuscle.findings import Finding, Level
 from corpuscle.io.batch import Shard, enough_first_records, first_records, is_integer_list
 from corpuscle.io.sources import absolute, discover, open_shard
-from corpuscle.rules.api import Rule, ShardState, Unmergeable, inferred_by
+from corpuscle.rules.api import CorpusResult, Rule, ShardState, Unmergeable, check_kind, inferred_by
 from corpuscle.settings import Settings, SettingsError
 
 log = logging.getLogger(__name__)
@@ -444,7 +444,7 @@ def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], se
             state = result.states.get(rule.id)
             if state is None:
                 continue
-            found = _guard(rule, notes, result.shard.uri, lambda: rule.report(state)) or []
+            found = _guard(rule, notes, result.shard.uri, lambda: _declared(rule, rule.report(state))) or []
             for f in found:
                 if f.start_line is None and result.shard.line_based and f.uri == result.shard.uri and f.rows.size:
                     f.start_line = int(f.rows.min()) + 1
@@ -459,10 +459,11 @@ def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], se
             corpus = _guard(rule, notes, None,
                             lambda: rule.corpus(states) if parts is None else rule.corpus(states, parts))
         if corpus:
-            found, figures, *extra = corpus
-            findings += found
-            metrics.update(figures)
-            for name, items in (extra[0] if extra else {}).items():
+            corpus = CorpusResult(*corpus)
+            corpus = corpus._replace(findings=_guard(rule, notes, None, lambda: _declared(rule, corpus.findings)) or [])
+            findings += corpus.findings
+            metrics.update(corpus.metrics)
+            for name, items in corpus.outputs.items():
                 outputs.setdefault(name, []).extend(items)
     for result in results:
         for rule_id, why in result.crashed.items():
@@ -493,6 +494,13 @@ def _sample_note(sampled: dict) -> str:
             f"lines) scanned, {rows}, {tokens}. Counts of findings and the corpus figures are as observed in the "
             "sample; each finding's sample estimate gives the share of rows affected with a 95% Wilson score "
             "interval, which assumes independent rows (less certain when a defect clusters in some units).")
+
+
+def _declared(rule: Rule, findings: list[Finding]) -> list[Finding]:
+    """The findings, after checking that each one's kind is among the rule's declared ``kinds``."""
+    for finding in findings:
+        check_kind(finding.kind, tuple(rule.kinds))
+    return findings
 
 
 def _guard(rule: Rule, notes: list[Note], uri: str | None, call):
