@@ -33,11 +33,6 @@ from corpuscle.kernels.minhash import POLY, _check_int, mix64
 DEFAULT_MAX_BUCKET = 1024
 """Distinct signatures per bucket above which only a linear set of pairs is made."""
 
-# Upper bound on Gauss-Legendre nodes: exact integration of the candidate
-# curves holds for num_perm up to 2 * _MAX_NODES - 2.
-_MAX_NODES = 1024
-# (band, row) combinations times nodes evaluated per step of optimal_bands.
-_CURVE_CHUNK = 1 << 22
 
 
 class Candidates(NamedTuple):
@@ -57,19 +52,12 @@ class Candidates(NamedTuple):
 
 
 def optimal_bands(threshold: float, num_perm: int, weights: tuple[float, float] = (0.5, 0.5)) -> tuple[int, int]:
-    """The ``(b, r)`` that ``datasketch.MinHashLSH(threshold, num_perm, weights)`` chooses.
+    """The ``(b, r)`` that ``datasketch.MinHashLSH(threshold, num_perm, weights)`` chooses, from datasketch itself.
 
-    Among all ``b`` bands of ``r`` rows with ``b * r <= num_perm`` it picks
-    the pair minimising ``w_fp * FP + w_fn * FN``, where ``FP`` is the area
-    under the candidate curve ``1 - (1 - s**r)**b`` for ``s`` in
-    ``[0, threshold]`` and ``FN`` the area above it for ``s`` in
-    ``[threshold, 1]``; ties go to the smaller ``b``, then the smaller ``r``,
-    as in datasketch's search. The curves are polynomials of degree
-    ``b * r``, integrated exactly (up to rounding) by Gauss-Legendre
-    quadrature with ``num_perm // 2 + 1`` nodes, for ``num_perm`` up to 2046
-    (larger ``num_perm`` use 1024 nodes: very close, no longer exact).
-    Unlike datasketch this returns ``b == 1`` when that is optimal (only at
-    thresholds near 1) instead of refusing it.
+    Among all ``b`` bands of ``r`` rows with ``b * r <= num_perm`` datasketch picks the pair minimising
+    ``w_fp * FP + w_fn * FN``, where ``FP`` is the area under the candidate curve ``1 - (1 - s**r)**b`` for ``s``
+    in ``[0, threshold]`` and ``FN`` the area above it for ``s`` in ``[threshold, 1]``.  Its search function is
+    called directly, because ``MinHashLSH`` refuses the ``b == 1`` that the search returns at thresholds near 1.
     """
     threshold = float(threshold)
     if not 0.0 <= threshold <= 1.0:
@@ -77,24 +65,16 @@ def optimal_bands(threshold: float, num_perm: int, weights: tuple[float, float] 
     num_perm = _check_int("num_perm", num_perm, 1, "use the num_perm of the signatures")
     if len(weights) != 2 or min(weights) < 0 or not math.isclose(sum(weights), 1.0):
         raise ValueError(f"weights must be two non-negative numbers summing to 1, got {weights}; hint: (0.5, 0.5)")
-    false_positive_weight, false_negative_weight = (float(w) for w in weights)
+    return _datasketch_bands(threshold, num_perm, float(weights[0]), float(weights[1]))
 
-    bands = np.concatenate([np.full(num_perm // b, b) for b in range(1, num_perm + 1)])
-    rows = np.concatenate([np.arange(1, num_perm // b + 1) for b in range(1, num_perm + 1)])
-    nodes, node_weights = _gauss_legendre(min(num_perm // 2 + 1, _MAX_NODES))
-    # Map the nodes from [-1, 1] onto [0, threshold] and [threshold, 1].
-    below = threshold / 2 * (nodes + 1)
-    above = threshold + (1 - threshold) / 2 * (nodes + 1)
-    error = np.empty(len(bands))
-    step = max(1, _CURVE_CHUNK // len(nodes))
-    for lo in range(0, len(bands), step):
-        b = bands[lo : lo + step, None].astype(float)
-        r = rows[lo : lo + step, None].astype(float)
-        false_positive = threshold / 2 * ((1 - (1 - below**r) ** b) @ node_weights)
-        false_negative = (1 - threshold) / 2 * (((1 - above**r) ** b) @ node_weights)
-        error[lo : lo + step] = false_positive_weight * false_positive + false_negative_weight * false_negative
-    best = int(np.argmin(error))
-    return int(bands[best]), int(rows[best])
+
+@lru_cache(maxsize=32)
+def _datasketch_bands(threshold: float, num_perm: int, false_positive_weight: float,
+                      false_negative_weight: float) -> tuple[int, int]:
+    from datasketch.lsh import _optimal_param  # the search behind MinHashLSH(threshold, num_perm, weights)
+
+    b, r = _optimal_param(threshold, num_perm, false_positive_weight, false_negative_weight)
+    return int(b), int(r)
 
 
 def band_keys(signatures, b: int, r: int) -> np.ndarray:
@@ -376,7 +356,3 @@ def _ragged_arange(counts: np.ndarray) -> np.ndarray:
     total = int(counts.sum())
     return np.arange(total) - np.repeat(np.cumsum(counts) - counts, counts)
 
-
-@lru_cache(maxsize=8)
-def _gauss_legendre(count: int) -> tuple[np.ndarray, np.ndarray]:
-    return np.polynomial.legendre.leggauss(count)
