@@ -13,6 +13,7 @@ import os
 import tomllib
 from dataclasses import dataclass, field
 
+from corpuscle.errors import SettingsError
 from corpuscle.findings import DEFAULT_INSTANCE_CAP, Level
 
 LABEL_CONVENTIONS = ("shifted", "aligned")
@@ -26,8 +27,6 @@ FACTS = ("text_column", "tokens_column", "labels_column", "mask_column", "positi
 OPTIONS = ("only", "skip", "fail_at", "instance_cap", "rule")
 
 
-class SettingsError(Exception):
-    """A setting that cannot be used (bad config file, bad value): a usage error, exit status 2."""
 
 
 @dataclass

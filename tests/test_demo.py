@@ -5,6 +5,7 @@ plain Python over the shard contents as pyarrow reads them (pyarrow is the refer
 from __future__ import annotations
 
 import json
+import os
 
 import pyarrow.parquet as pq
 from click.testing import CliRunner
@@ -80,3 +81,34 @@ def test_the_demo_counts_match_the_shards(tmp_path):
     expected = [(r, t) for r, ids in enumerate(table["input_ids"]) for t, i in enumerate(ids) if i >= 512]
     f = by[("token-range", "pantry_out_of_range.parquet", "above-vocab")]
     assert [(i["row"], i["offset"]) for i in f["instances"]] == expected == [(3, 10), (7, 0)]
+
+
+# -- the demo's report does not change unless a change says so ---------------------------------------------------
+
+GOLDEN = REPO / "tests" / "data" / "demo-report.json"
+
+
+def stable(report: dict) -> dict:
+    """The JSON report without what differs between runs and machines (timings)."""
+    def strip(value):
+        if isinstance(value, dict):
+            return {k: strip(v) for k, v in value.items() if "second" not in k.lower()}
+        if isinstance(value, list):
+            return [strip(v) for v in value]
+        return value
+    return strip(report)
+
+
+def test_the_demo_report_is_the_recorded_one(tmp_path, monkeypatch):
+    """The whole JSON report of the demo (findings, locations, messages, figures) equals the one recorded in
+    tests/data/demo-report.json, apart from timings: a refactoring must leave it byte-identical, and a change of
+    behaviour shows in that file's diff. Record it again with CORPUSCLE_RECORD_DEMO=1 after such a change."""
+    monkeypatch.chdir(REPO)  # shard uris as the README's command gives them: fixtures/demo/...
+    out = tmp_path / "demo.json"
+    CliRunner().invoke(main, ["scan", "fixtures/demo", "--config", "fixtures/demo.toml", "--jobs", "1", "--json",
+                              str(out)])
+    report = json.loads(out.read_text())
+    now = json.dumps(stable(report), indent=1, sort_keys=True) + "\n"
+    if os.environ.get("CORPUSCLE_RECORD_DEMO") == "1":
+        GOLDEN.write_text(now)
+    assert now == GOLDEN.read_text()

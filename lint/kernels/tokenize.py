@@ -26,7 +26,7 @@ from functools import lru_cache
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
-from corpuscle.settings import SettingsError
+from corpuscle.errors import SettingsError
 
 #: What to install when the ``tokenizers`` library is missing.
 INSTALL_HINT = "pip install 'corpuscle[tokenizers]'"
