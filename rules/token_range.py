@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 from corpuscle.findings import Finding, Level
-from corpuscle.rules.api import CorpusResult, Rule, pct
+from corpuscle.rules.api import CorpusResult, Rule, ShardState, pct
 
 #: A largest observed id within this share of the storage type's range below its maximum is reported as what
 #: wrapped ids look like (a heuristic: wrapped ids spread over the whole range of the type).
@@ -14,6 +14,17 @@ NEAR_STORAGE_MAX = 0.01
 def storage_max(dtype: np.dtype) -> int:
     """The largest id an integer storage type can hold (numpy's ``iinfo``)."""
     return int(np.iinfo(dtype).max)
+
+
+class TokenRangeState(ShardState):
+    """What token-range keeps of a shard besides its hits: the storage type and the extreme ids."""
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.storage: tuple[str, str] | None = None  # (Arrow type, numpy dtype) of the tokens, from the first batch
+        self.min_id: int | None = None
+        self.max_id: int | None = None
+        self.max_at: tuple[int, int] = (-1, -1)  # (row, offset) of the first occurrence of the largest id
 
 
 class TokenRange(Rule):
@@ -41,14 +52,8 @@ class TokenRange(Rule):
             "token ids in a type that holds vocab_size - 1 (int32 or uint32 for vocabularies over 65,536); wrapped "
             "ids cannot be recovered, so re-tokenize the affected shards.")
     needs = {"tokens_column": "int-list"}
+    State = TokenRangeState
     splittable = True
-
-    def begin(self, shard, settings):
-        state = super().begin(shard, settings)
-        state.storage = None  # (Arrow type name, numpy dtype name) of the tokens column, from the first batch
-        state.min_id = state.max_id = None
-        state.max_at = (-1, -1)  # (row, offset) of the first occurrence of the largest id
-        return state
 
     def feed(self, state, batch):
         s = state.settings
