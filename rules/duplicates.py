@@ -505,7 +505,8 @@ class _DuplicateRule(Rule):
 
 
 def cluster_sizes(sizes) -> dict:
-    """Clusters by their size in windows (documents for text), on log-spaced bins from 2 (bin i holds
+    """Clusters by their size in windows (documents for text) as their findings count them (near-duplicate: the
+    distinct contents; their exact copies are exact-duplicate's), on log-spaced bins from 2 (bin i holds
     ``edges[i] <= size < edges[i + 1]``; one bin per size up to 8): what the HTML report plots, a few dozen
     numbers however many clusters there are."""
     sizes = np.sort(np.asarray(sizes, dtype=np.int64))
@@ -839,7 +840,7 @@ class NearDuplicate(_DuplicateRule):
             **_fractions(scan, near),
             "candidatePairs": int(len(found.pairs)), "verifiedPairs": int(len(pairs)),
             "cappedBuckets": found.capped_buckets, "largestBucket": found.largest_bucket,
-        }, "nearDuplicateClusterSizes": cluster_sizes(windows_per[heads])}
+        }, "nearDuplicateClusterSizes": cluster_sizes(members[heads])}
         return findings, metrics, {DROP_LIST: scan.drop_entries(drop)}
 
     @staticmethod

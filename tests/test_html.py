@@ -257,7 +257,10 @@ def test_the_demo_report_names_every_rule_with_a_result_and_draws_its_figures(tm
         sizes = m[f"{kind}DuplicateClusterSizes"]
         drawn = page.values("plot-clusters", kind)
         assert sum(drawn) == sizes["clusters"] == sum(sizes["counts"])
-        assert sizes["clusters"] == sum(1 for f in report["findings"] if f["rule"] == f"{kind}-duplicate")
+        counts = [f["count"] for f in report["findings"] if f["rule"] == f"{kind}-duplicate"]
+        assert sizes["clusters"] == len(counts) and sizes["largest"] == max(counts)
+        edges = sizes["edges"]
+        assert sizes["counts"] == [sum(1 for c in counts if a <= c < b) for a, b in zip(edges[:-1], edges[1:])]
     assert m["exactDuplicateClusterSizes"]["clusters"] == m["exactDuplicates"]["groups"]
     assert m["nearDuplicateClusterSizes"]["clusters"] == m["nearDuplicates"]["clusters"]
     # Every finding's first location is shown as in the text summary: row and @offset, 0-based.
@@ -290,6 +293,19 @@ def test_overlong_documents_are_counted_beyond_the_window(tmp_path):
     assert sum(page.values("plot-lengths-tokens")) == len(docs)
     over = [v for c, v, _, _ in page.plots["plot-lengths-tokens"]["bars"] if "over" in c.split()]
     assert sum(over) == 3  # drawn in the colour of "beyond the window"
+
+
+def test_exact_duplicate_cluster_sizes_count_the_planted_copies(tmp_path):
+    # Windows of 8 tokens: A three times, B twice, C four times, and six distinct windows.
+    a, b, c = [3, 4, 5, 6, 7, 8, 9, 2], [9, 8, 7, 6, 5, 4, 3, 2], [11, 12, 13, 14, 15, 16, 17, 2]
+    rows = [a, b, a, c, c, a, b, c, c] + [[20 + i, 30 + i, 40, 41, 42, 43, 44, 2] for i in range(6)]
+    shard = write(tmp_path / "dup.parquet", {"input_ids": rows})
+    report = run(shard, eos_id=EOS, only=("exact-duplicate",))
+    sizes = report.metrics["exactDuplicateClusterSizes"]
+    assert sizes["clusters"] == 3 and sizes["windows"] == 9 and sizes["largest"] == 4
+    assert sizes["edges"][:4] == [2, 3, 4, 5] and sizes["counts"][:3] == [1, 1, 1] and sum(sizes["counts"]) == 3
+    page = Page(html_report.render(report).decode())
+    assert page.values("plot-clusters", "exact")[:3] == [1, 1, 1]
 
 
 def test_html_in_the_config_file_writes_the_report(tmp_path, monkeypatch):

@@ -32,6 +32,9 @@ CLUSTERS_LISTED = 10
 #: The note the engine writes for an inferred fact (corpuscle.engine.scan._inferred_notes).
 INFERRED = " inferred (heuristic) in "
 
+#: Facts the engine infers from the data when they are not given (corpuscle.engine.infer).
+INFERABLE = ("eos_id", "bos_id", "pad_id", "seq_len", "labels")
+
 LEVEL_WORD = {Level.error: "error", Level.warning: "warning", Level.note: "note"}
 
 CSS = """
@@ -50,14 +53,15 @@ padding-bottom:4px}h3{font-size:15px;margin:12px 0 4px}
 table{border-collapse:collapse;width:100%;margin:6px 0 12px;font-size:13px}
 th,td{border-bottom:1px solid var(--line);padding:4px 6px;text-align:left;vertical-align:top}
 th{background:var(--panel);font-weight:600}
-td.num,th.num{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}
+td.num,th.num{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap;padding-right:12px}
 tr.rule td{background:var(--panel);border-top:2px solid var(--line)}
 .lvl{display:inline-block;padding:0 6px;border-radius:3px;color:#fff;font-size:12px;font-weight:600}
 .lvl.error{background:var(--error)}.lvl.warning{background:var(--warning)}.lvl.note{background:var(--note)}
 .fix{color:var(--muted)}
 code,.loc{font-family:ui-monospace,SFMono-Regular,Menlo,Consolas,monospace;font-size:12px}
 .loc{white-space:nowrap}td.loc{white-space:normal;overflow-wrap:anywhere}
-table.findings{table-layout:fixed}figure .loc{white-space:normal;overflow-wrap:anywhere}
+table.findings{table-layout:fixed}figure .loc,table.findings .loc{white-space:normal;overflow-wrap:anywhere}
+table.heat{width:auto;min-width:50%}
 .more{color:var(--muted);font-style:italic}
 .plots{display:grid;grid-template-columns:repeat(auto-fill,minmax(520px,1fr));gap:16px}
 figure{margin:0;padding:10px;border:1px solid var(--line);border-radius:6px;background:var(--bg)}
@@ -165,7 +169,7 @@ def _findings(report) -> str:
                         f'({sum(f.count for f in rest):,} instances) are not listed here: the SARIF and JSON '
                         'reports (--sarif, --json) list every one.</td></tr>')
         body.append("</tbody>")
-    cols = ('<colgroup><col style="width:72px"><col style="width:19%"><col style="width:72px"><col>'
+    cols = ('<colgroup><col style="width:72px"><col style="width:19%"><col style="width:88px"><col>'
             '<col style="width:25%"></colgroup>')
     head = cols + ('<thead><tr><th>level</th><th>shard</th><th class="num">instances</th><th>what is wrong</th>'
             '<th>first locations (row and @token offset, both 0-based)</th></tr></thead>')
@@ -190,17 +194,18 @@ def _length_plots(metrics: dict) -> list[str]:
     out = []
     for unit, h in histograms.items():
         windows = h.get("seqLen") or []
-        marks = {w: f"seq_len {w:,}" for w in windows}
+        marks = {w + 1: f"seq_len {w:,}" for w in windows}  # the edge between "fits" and "longer than the window"
         title = f"Document lengths ({unit})"
         chart = svg.log_histogram(title, f"document length ({unit}, log scale; bins [low, high))", "documents",
                                   f"plot-lengths-{unit}", h["edges"], h["counts"], unit, marks,
-                                  highlight_from=min(windows) + 1 if windows else None)
+                                  highlight_from=windows[0] + 1 if len(windows) == 1 else None)
         documents = h["documents"]
         if "longerThanWindow" in h:
             beyond = h["longerThanWindow"]
+            where = ("red, right of the dashed line at seq_len" if len(windows) == 1 else
+                     "each compared with its own shard's window; dashed lines at seq_len")
             reading = (f"{beyond:,} of {documents:,} documents ({_pct(beyond, documents)}) are longer than their "
-                       f"window (red, right of the dashed line at seq_len "
-                       f"{' / '.join(f'{w:,}' for w in windows)}): those are cut or split. ")
+                       f"window ({where} {' / '.join(f'{w:,}' for w in windows)}): those are cut or split. ")
         else:
             reading = (f"{documents:,} documents" + ("; raw text counted in UTF-8 bytes, which cannot be compared "
                                                       "with a window of tokens (give --tokenizer). " if unit == "bytes"
@@ -301,7 +306,7 @@ def _duplicate_plot(metrics: dict, report) -> str:
         for f in clusters[:CLUSTERS_LISTED])
     table = (f'<table class="clusters"><thead><tr><th>rule</th><th class="num">copies</th><th>where (first '
              f'{LOCATIONS_SHOWN}; rows 0-based)</th></tr></thead><tbody>{listed}</tbody></table>' if listed else "")
-    summary = "; ".join(f"{name}: {h['clusters']:,} clusters holding {h['windows']:,} windows, the largest "
+    summary = "; ".join(f"{name}: {h['clusters']:,} clusters of {h['windows']:,} windows, the largest "
                         f"{h['largest']:,}" for name, h in sizes.items())
     reading = (f"{summary}. Each cluster keeps one copy and the rest are trained on again every epoch; a few large "
                f"clusters usually mean boilerplate. The {min(len(clusters), CLUSTERS_LISTED)} largest are listed.")
@@ -411,7 +416,8 @@ def _settings(report) -> str:
     for key in FACTS + ("only", "skip", "fail_at", "instance_cap"):
         value = getattr(s, key)
         if value is None or value == ():
-            shown = '<span class="more">not set (inferred per shard where the data shows it)</span>'
+            why = " (inferred per shard where the data shows it)" if key in INFERABLE else ""
+            shown = f'<span class="more">not set{why}</span>'
         else:
             shown = f"<code>{escape(', '.join(value) if isinstance(value, tuple) else str(value))}</code>"
         rows.append(f"<tr><td><code>{key}</code></td><td>{shown}</td><td>{escape(s.source(key))}</td></tr>")
