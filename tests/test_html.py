@@ -295,6 +295,24 @@ def test_overlong_documents_are_counted_beyond_the_window(tmp_path):
     assert sum(over) == 3  # drawn in the colour of "beyond the window"
 
 
+@pytest.mark.parametrize("pad", [PAD, EOS])
+def test_padding_per_row_without_a_mask_is_read_from_the_pad_id(tmp_path, pad):
+    cols = padded_columns()
+    ids = [row[:n] + [pad] * (SEQ_LEN - n) for row, n in zip(cols["input_ids"], REAL)]
+    shard = write(tmp_path / "nomask.parquet", {"input_ids": ids, "labels": cols["labels"]})
+    report = run(shard, eos_id=EOS, pad_id=pad, only=("padding-loss",))
+    # Each row's padding is the pad-id run at its end; when the pad id is the eos id, the first of that run is
+    # the row's real eos (the rows here end in eos, then pad), so the run read as padding is the same length.
+    expected = {}
+    for n in REAL:
+        p = SEQ_LEN - n
+        expected[p.bit_length()] = expected.get(p.bit_length(), 0) + 1
+    h = report.metrics["paddingPerRow"]
+    assert h["rows"] == len(REAL)
+    assert {k: n for k, n in enumerate(h["counts"]) if n} == expected
+    assert report.metrics["padTokenFraction"] == pytest.approx(sum(SEQ_LEN - n for n in REAL) / (SEQ_LEN * len(REAL)))
+
+
 def test_exact_duplicate_cluster_sizes_count_the_planted_copies(tmp_path):
     # Windows of 8 tokens: A three times, B twice, C four times, and six distinct windows.
     a, b, c = [3, 4, 5, 6, 7, 8, 9, 2], [9, 8, 7, 6, 5, 4, 3, 2], [11, 12, 13, 14, 15, 16, 17, 2]
