@@ -14,6 +14,7 @@ from corpuscle.engine.scan import run, select_rules
 from corpuscle.io.sources import NoShardsFound, discover
 from corpuscle.report import droplist, sarif, text, write_atomic
 from corpuscle.report import json as json_report
+from corpuscle.report import html as html_report
 from corpuscle.settings import FAIL_AT, LABEL_CONVENTIONS, SettingsError, build, load_config
 from corpuscle.version import __version__
 
@@ -78,6 +79,8 @@ def main():
 @click.option("--skip", help="Do not run these rules (comma-separated ids).")
 @click.option("--sarif", "sarif_path", type=click.Path(dir_okay=False), help="Write a SARIF 2.1.0 report here.")
 @click.option("--json", "json_path", type=click.Path(dir_okay=False), help="Write a plain JSON report here.")
+@click.option("--html", "html_path", type=click.Path(dir_okay=False),
+              help="Write a self-contained HTML report with plots here (no network needed to open it).")
 @click.option("--drop-list", "drop_list_path", type=click.Path(dir_okay=False),
               help="Write the windows to drop here, one JSON line {\"uri\", \"row\"} each: every exact or near "
                    "duplicate but the first copy (scan order), from the rules exact-duplicate and near-duplicate.")
@@ -96,7 +99,7 @@ def main():
 @click.option("--seed", "sample_seed", type=click.IntRange(min=0), default=0, show_default=True,
               help="Seed of --sample (the same seed picks the same units in every run and for any --jobs).")
 @click.option("--quiet", "-q", is_flag=True, help="No progress on stderr.")
-def scan(paths, config_path, sarif_path, json_path, drop_list_path, jobs, sample_fraction, sample_seed, quiet,
+def scan(paths, config_path, sarif_path, json_path, html_path, drop_list_path, jobs, sample_fraction, sample_seed, quiet,
          **flags):
     """Scan shards (files, folders, globs) and report what would hurt training."""
     cluster = flags.pop("cluster")  # how to run, not a setting
@@ -111,7 +114,9 @@ def scan(paths, config_path, sarif_path, json_path, drop_list_path, jobs, sample
     with _executor(cluster, jobs) as executor:
         report = run(shards, settings, rules, jobs=jobs or os.cpu_count() or 1, progress=_progress(quiet),
                      sample=sample, executor=executor)
-    for path, module in ((sarif_path, sarif), (json_path, json_report), (drop_list_path, droplist)):
+    html_path = html_path or settings.html
+    for path, module in ((sarif_path, sarif), (json_path, json_report), (html_path, html_report),
+                         (drop_list_path, droplist)):
         if path:
             try:
                 write_atomic(path, module.render(report))

@@ -24,7 +24,7 @@ FAIL_AT = ("error", "warning", "note", "never")
 FACTS = ("text_column", "tokens_column", "labels_column", "mask_column", "positions_column", "eos_id", "bos_id",
          "pad_id", "vocab_size", "seq_len", "labels", "ignore_index", "separator", "tokenizer")
 #: Run options: one value for the whole scan.
-OPTIONS = ("only", "skip", "fail_at", "instance_cap", "rule")
+OPTIONS = ("only", "skip", "fail_at", "instance_cap", "rule", "html")
 
 
 
@@ -50,6 +50,7 @@ class Settings:
     fail_at: str = "error"
     instance_cap: int = DEFAULT_INSTANCE_CAP
     rule: dict = field(default_factory=dict)  # per-rule options: {"near-duplicate": {"threshold": 0.8}}
+    html: str | None = None  # write the HTML report here (as --html FILE)
     path_tables: dict = field(default_factory=dict, repr=False)
     origin: dict = field(default_factory=dict, repr=False)  # key -> "default" | "inferred" | "config" | "flag"
     evidence: dict = field(default_factory=dict, repr=False)  # key -> why an inferred value was chosen
@@ -90,6 +91,8 @@ class Settings:
             raise SettingsError(f"fail_at must be one of {', '.join(FAIL_AT)}, got {self.fail_at!r}")
         if not isinstance(self.instance_cap, int) or isinstance(self.instance_cap, bool) or self.instance_cap < 0:
             raise SettingsError(f"instance_cap must be a whole number >= 0, got {self.instance_cap!r}")
+        if self.html is not None and (not isinstance(self.html, str) or not self.html):
+            raise SettingsError(f"html must be the path of the HTML report to write, got {self.html!r}")
         if not isinstance(self.rule, dict) or not all(isinstance(v, dict) for v in self.rule.values()):
             raise SettingsError("rule options go in tables, e.g. [rule.near-duplicate] threshold = 0.8")
 

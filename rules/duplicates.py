@@ -98,6 +98,7 @@ import numpy as np
 import pyarrow.compute as pc
 from corpuscle.findings import Finding, Level
 from corpuscle.kernels.hashing import hex_digest
+from corpuscle.kernels.histogram import histogram, log_edges
 from corpuscle.kernels.lsh import (
     DEFAULT_MAX_BUCKET,
     Candidates,
@@ -503,6 +504,18 @@ class _DuplicateRule(Rule):
                           f"findings listed before one summary finding; the default is {DEFAULT_MAX_CLUSTERS}")
 
 
+def cluster_sizes(sizes) -> dict:
+    """Clusters by their size in windows (documents for text) as their findings count them (near-duplicate: the
+    distinct contents; their exact copies are exact-duplicate's), on log-spaced bins from 2 (bin i holds
+    ``edges[i] <= size < edges[i + 1]``; one bin per size up to 8): what the HTML report plots, a few dozen
+    numbers however many clusters there are."""
+    sizes = np.sort(np.asarray(sizes, dtype=np.int64))
+    edges = log_edges(int(sizes[-1]) if sizes.size else 2, per_octave=4, start=2)
+    distinct, counts = np.unique(sizes, return_counts=True)
+    return {"clusters": int(sizes.size), "windows": int(sizes.sum()), "largest": int(sizes[-1]) if sizes.size else 0,
+            "edges": edges.tolist(), "counts": histogram(distinct, counts, edges).tolist()}
+
+
 class ExactDuplicate(_DuplicateRule):
     """Windows (token rows) or documents (text) whose content is identical, within a shard or across shards.
     Every extra copy is trained on once more per epoch: it weights that content as several examples, makes
@@ -547,7 +560,8 @@ class ExactDuplicate(_DuplicateRule):
         if len(repeated) > len(listed):
             findings.append(self._rest(scan, repeated[len(listed):], cap))
         copies = np.flatnonzero(scan.first_copy != np.arange(scan.count, dtype=scan.first_copy.dtype))
-        metrics = {"exactDuplicates": {"groups": int(len(repeated)), **_fractions(scan, copies)}}
+        metrics = {"exactDuplicates": {"groups": int(len(repeated)), **_fractions(scan, copies)},
+                   "exactDuplicateClusterSizes": cluster_sizes(sizes[repeated])}
         return CorpusResult(findings, metrics, {DROP_LIST: scan.drop_entries(copies)})
 
     def _group(self, scan: ScanWindows, members: np.ndarray, cap: int) -> Finding:
@@ -834,7 +848,7 @@ class NearDuplicate(_DuplicateRule):
             **_fractions(scan, near),
             "candidatePairs": int(len(found.pairs)), "verifiedPairs": int(len(pairs)),
             "cappedBuckets": found.capped_buckets, "largestBucket": found.largest_bucket,
-        }}
+        }, "nearDuplicateClusterSizes": cluster_sizes(members[heads])}
         return CorpusResult(findings, metrics, {DROP_LIST: scan.drop_entries(drop)})
 
     @staticmethod

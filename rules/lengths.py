@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import copy
 
+import numpy as np
 from corpuscle.findings import Finding, Level
 from corpuscle.io.batch import is_integer_list, is_text
 from corpuscle.kernels.documents import (
@@ -20,6 +21,7 @@ from corpuscle.kernels.documents import (
     documents_of,
     infer_arrangement,
 )
+from corpuscle.kernels.histogram import histogram, log_edges
 from corpuscle.kernels.packing import AsBuilt, compare_layouts, savings
 from corpuscle.rules.api import CorpusResult, Rule, Unmergeable, consistent, pct, share
 
@@ -280,12 +282,37 @@ class TruncationWaste(_DocumentRule):
         for unit, key in (("tokens", "documentTokens"), ("bytes", "documentBytes")):
             if unit in by_unit:
                 metrics[key] = {"unit": unit, **length_summary(LengthHistogram.merged(by_unit[unit]))}
+        histograms = {unit: length_histogram([st for st in states if st.tally.unit == unit], unit)
+                      for unit in ("tokens", "bytes") if unit in by_unit}
+        if histograms:
+            metrics["documentLengthHistogram"] = histograms
         token_states = [st for st in states
                         if st.tally.unit == "tokens" and st.arrangement != TEXT and st.tally.slots]
         if token_states:
             metrics["tokenBudget"] = corpus_budget([st.tally for st in token_states],
                                                    [st.settings.seq_len for st in token_states])
         return CorpusResult([], metrics)
+
+
+def length_histogram(states, unit: str) -> dict:
+    """The document lengths of ``states`` (one unit) on log-spaced bins (:mod:`corpuscle.kernels.histogram`; bin i
+    holds ``edges[i] <= length < edges[i + 1]``), with ``seq_len + 1`` an edge for every window in force, and,
+    for tokens, how many documents are longer than their shard's window: what the report plots."""
+    windows = sorted({st.settings.seq_len for st in states if st.settings.seq_len is not None})
+    marks = [w + 1 for w in windows] if unit == "tokens" else []
+    edges = log_edges(max(st.tally.lengths.max for st in states), per_octave=2, marks=marks)
+    # Binned shard by shard and added up: no merge of the shards' histograms (slow for many shards).
+    counts = sum((histogram(st.tally.lengths.sizes, st.tally.lengths.counts, edges) for st in states),
+                 np.zeros(len(edges) - 1, dtype=np.int64))
+    documents = int(counts.sum())
+    out = {"unit": unit, "documents": documents, "edges": edges.tolist(), "counts": counts.tolist()}
+    if marks:
+        out["seqLen"] = windows
+        beyond = sum(int(st.tally.lengths.counts[st.tally.lengths.sizes > st.settings.seq_len].sum())
+                     for st in states if st.settings.seq_len is not None)
+        out["longerThanWindow"] = beyond
+        out["longerThanWindowFraction"] = share(beyond, documents)
+    return out
 
 
 # -- token budget figures ----------------------------------------------------------------------------------------

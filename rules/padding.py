@@ -18,6 +18,7 @@ from functools import cached_property
 import numpy as np
 from corpuscle.findings import Finding, Level
 from corpuscle.io.batch import Flat, MaskRanks, is_integer_list, spans
+from corpuscle.kernels.histogram import POW2_BINS, pow2_bin, pow2_edges
 from corpuscle.kernels.tokens import padding_positions, real_per_row, real_positions, real_ranks
 from corpuscle.rules.api import CorpusResult, Rule, consistent, pct, share
 
@@ -158,7 +159,8 @@ class PaddingLoss(Rule):
         if _has(batch, s.mask_column):  # the same columns, so the same reading as real_positions
             real = real_positions(batch, flat, s)
             padding = padding_positions(batch, flat, s)
-            pads = flat.values.size - int(real_per_row(batch, flat, s).sum())
+            per_row = flat.lengths - real_per_row(batch, flat, s)
+            pads = int(per_row.sum())
             state.sources.add("attention_mask")
             self._mask_shape(state, batch, flat, real)
             if runs is not None:
@@ -171,8 +173,10 @@ class PaddingLoss(Rule):
             real = None
             padding = runs.padding
             pads = int(np.count_nonzero(padding))
+            per_row = (runs.lead_end - flat.starts) + (flat.ends - runs.trail_start)
             state.sources.add("pad_id")
         state.count(slots=flat.values.size, padding=pads)
+        _count_padding_per_row(state, per_row)
         if not _has(batch, s.labels_column):
             return
         labels = batch.flat(s.labels_column).values
@@ -312,7 +316,30 @@ class PaddingLoss(Rule):
         if not slots:
             return CorpusResult([], {})
         pads = sum(int(st.stats["padding"]) for st in states)
-        return CorpusResult([], {"realTokenFraction": (slots - pads) / slots, "padTokenFraction": pads / slots})
+        return CorpusResult([], {"realTokenFraction": (slots - pads) / slots, "padTokenFraction": pads / slots,
+                                 "paddingPerRow": _padding_per_row(states)})
+
+
+#: Stats key of the rows whose padding falls in power-of-two bin k (:func:`corpuscle.kernels.histogram.pow2_bin`).
+PAD_ROWS = "rows_padding_bin_{}"
+
+
+def _count_padding_per_row(state, per_row) -> None:
+    """Count the batch's rows by their padding (tokens), in power-of-two bins: a few counters per shard."""
+    per_bin = np.bincount(pow2_bin(per_row), minlength=1)
+    state.count(**{PAD_ROWS.format(k): int(n) for k, n in enumerate(per_bin.tolist()) if n})
+
+
+def _padding_per_row(states) -> dict:
+    """Rows by padding tokens over all checked shards (bin i: ``edges[i] <= padding < edges[i + 1]``): the
+    histogram the HTML report plots; its counts add up to the rows checked."""
+    counts = np.zeros(POW2_BINS, dtype=np.int64)
+    for st in states:
+        for k in range(POW2_BINS):
+            counts[k] += int(st.stats.get(PAD_ROWS.format(k), 0))
+    used = int(np.flatnonzero(counts).max()) + 1 if counts.any() else 1
+    return {"unit": "tokens", "rows": int(counts.sum()), "edges": pow2_edges(used),
+            "counts": counts[:used].tolist()}
 
 
 def _has(batch, name) -> bool:

@@ -44,6 +44,8 @@ def _locations(finding) -> str:
 
 #: Corpus figures with a section of their own instead of a line among the others.
 SECTIONS = ("tokenBudget",)
+#: Distributions drawn by the HTML report (report/html.py): bins and counts, not figures for a line of text.
+PLOTTED = ("documentLengthHistogram", "paddingPerRow", "exactDuplicateClusterSizes", "nearDuplicateClusterSizes")
 
 
 def _words(key: str) -> str:
@@ -87,7 +89,7 @@ def _budget_lines(budget: dict) -> list[str]:
 def _metric_lines(metrics: dict) -> list[str]:
     lines = []
     for key, value in metrics.items():
-        if key in SECTIONS:
+        if key in SECTIONS or key in PLOTTED:
             continue
         if isinstance(value, dict):
             inner = ", ".join(f"{k} {_num(v)}" for k, v in value.items())
