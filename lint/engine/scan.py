@@ -14,7 +14,6 @@ import functools
 import logging
 import os
 import time
-import uuid
 from dataclasses import dataclass, field
 from typing import Iterable
 
@@ -78,8 +77,6 @@ class Report:
     suppressions: list[dict] = field(default_factory=list)
     #: The baseline compared with (``--baseline``): ``{"path", "guid"}``, or None.
     baseline: dict | None = None
-    #: This run's guid (SARIF ``automationDetails.guid``), which a later run's ``baselineGuid`` names.
-    guid: str = field(default_factory=lambda: str(uuid.uuid4()))
 
     def worst(self) -> Level | None:
         return max((f.level for f in self.findings if f.baseline_state != "absent"), default=None)

@@ -2,6 +2,8 @@
 result whose ``properties`` carry the count, the instances (row, offset) and the rule's evidence."""
 from __future__ import annotations
 
+import hashlib
+import uuid
 from urllib.parse import quote
 
 import orjson
@@ -102,6 +104,18 @@ def _notification(note) -> dict:
     return out
 
 
+def run_guid(report) -> str:
+    """The run's ``automationDetails.guid`` (which a later run's ``baselineGuid`` names): a name-based UUID of what
+    the run scanned and found, so that the same scan of the same data writes the same report byte for byte."""
+    digest = hashlib.sha256(__version__.encode())
+    for shard in report.shards:
+        digest.update(f"\x1e{shard.uri}\x1f{shard.length}".encode())
+    for f in report.findings:
+        digest.update(f"\x1e{f.fingerprint}\x1f{f.level.name}\x1f{f.count}\x1f{f.baseline_state}".encode())
+        digest.update(f.rows.tobytes() + f.offsets.tobytes())
+    return str(uuid.uuid5(uuid.NAMESPACE_URL, "corpuscle-run:" + digest.hexdigest()))
+
+
 def to_sarif(report) -> dict:
     rule_index = {rule.id: i for i, rule in enumerate(report.rules)}
     artifact_index = {shard.uri: i for i, shard in enumerate(report.shards)}
@@ -122,7 +136,7 @@ def to_sarif(report) -> dict:
         }},
         "artifacts": [{"location": {"uri": artifact_uri(s.uri)}, "length": s.length} for s in report.shards],
         "invocations": [invocation],
-        "automationDetails": {"guid": report.guid},
+        "automationDetails": {"guid": run_guid(report)},
         "results": [_result(f, rule_index, artifact_index) for f in report.findings],
         "properties": {"metrics": report.metrics},
     }

@@ -377,7 +377,7 @@ def _note_lines(report) -> list[str]:
             skipped.setdefault((n.message[len("skipped: "):], n.rule_id), []).append(n.uri)
             continue
         prefix = f"[{n.rule_id}] " if n.rule_id else ""
-        out.append(f"{MARK[n.level]} {prefix}{n.message}")
+        out.append(f"{n.level.name}: {prefix}{n.message}")
     by_reason: dict[tuple, list] = {}
     for (why, rule_id), uris in skipped.items():
         by_reason.setdefault((why, tuple(uris)), []).append(rule_id)
