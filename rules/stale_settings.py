@@ -28,9 +28,15 @@ AGREEMENT, MIN_PLACES = 0.9, 4
 KEEP_IDS = 256
 
 
+def _source(settings, key: str) -> str:
+    """Where a given value came from, in words: 'config', 'flag', or 'given' (set in Python)."""
+    source = settings.source(key)
+    return source if source in ("config", "flag") else "given"
+
+
 def _relevant(settings, key: str) -> bool:
-    """Whether a special id is given (config or flag) and used as a separator or for padding."""
-    if getattr(settings, key) is None or settings.source(key) not in ("config", "flag"):
+    """Whether a special id is given (not inferred) and used as a separator or for padding."""
+    if getattr(settings, key) is None or settings.source(key) == "inferred":
         return False
     if key == "eos_id":
         return settings.separator in ("eos-after", "both")
@@ -162,7 +168,7 @@ class StaleSetting(Rule):
                    "separate documents another way.")
         beyond = (f" It is also at or above vocab_size {s.vocab_size:,}, so it is {key} that is stale."
                   if s.vocab_size is not None and given >= s.vocab_size else "")
-        message = (f"{key} = {given:,} ({s.source(key)}) never occurs in this shard's {s.tokens_column}: {found}."
+        message = (f"{key} = {given:,} ({_source(s, key)}) never occurs in this shard's {s.tokens_column}: {found}."
                    f"{beyond} Findings that rest on {key} in this shard share this cause. {fix}")
         finding = self.finding(state, f"{key}-unseen", message,
                                level=Level.warning if key == "pad_id" else None, setting=key, givenValue=given,
@@ -183,7 +189,7 @@ class StaleSetting(Rule):
                 f"; {state.above_other:,} other ids at or above it are no special id (see token-range)")
         fix = (f"Set vocab_size to at least {largest + 1:,} (the model's embedding size, which must cover the "
                "special tokens); the special ids and the tokenizer are consistent with the data.")
-        message = (f"vocab_size = {s.vocab_size:,} ({s.source('vocab_size')}) is at or below special ids that occur "
+        message = (f"vocab_size = {s.vocab_size:,} ({_source(s, 'vocab_size')}) is at or below special ids that occur "
                    f"in this shard ({names}){only}: vocab_size is stale (special tokens added after it was fixed), "
                    f"not the tokenizer. Findings that rest on vocab_size in this shard share this cause. {fix}")
         rests = [list(p) for p in RESTS_ON["vocab_size"] if p[0] != "token-range" or not state.above_other]

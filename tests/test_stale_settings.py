@@ -1,0 +1,105 @@
+"""stale-setting: a given special id the shard never uses, a vocab_size below a special id in use, and the findings
+of other rules that rest on the stale value, linked to it and listed after it.
+
+Expected numbers are computed with plain Python over the columns the helper builds (tests/shards.py)."""
+from __future__ import annotations
+
+import json
+import random
+
+from click.testing import CliRunner
+from corpuscle.cli import main
+from corpuscle.report import text
+
+from tests.shards import findings, pack, run, validate_sarif, write
+
+random.seed(7)
+DOCS = [[random.randrange(10, 500) for _ in range(random.randrange(3, 20))] for _ in range(60)]
+SEQ = 32
+
+
+def restarts(cols):
+    """(row, offset) of every position_ids restart inside a row, in order."""
+    return [(r, t) for r, pos in enumerate(cols["position_ids"]) for t in range(1, len(pos)) if pos[t] == 0]
+
+
+def test_a_given_eos_that_never_occurs_names_the_id_before_every_restart(tmp_path):
+    cols = pack(DOCS, SEQ, eos=3)  # the data's separator is 3; the settings say 2
+    path = write(tmp_path / "a.parquet", cols)
+    report = run(path, eos_id=2, vocab_size=600)
+    expected = restarts(cols)
+    assert all(cols["input_ids"][r][t - 1] == 3 for r, t in expected)
+    [root] = findings(report, "stale-setting")
+    assert (root.kind, root.level.name) == ("eos_id-unseen", "error")
+    assert root.count == len(expected) == 56
+    assert list(zip(root.rows.tolist(), root.offsets.tolist())) == [(r, t - 1) for r, t in expected]
+    assert root.evidence["suggestedValue"] == 3 and root.evidence["occurrences"] == 0
+    assert "eos_id = 2 (given) never occurs" in root.message and "eos_id is probably 3" in root.message
+    assert root.fix.startswith("Set eos_id = 3 ")
+    # missing-separator fires on every boundary: it rests on eos_id, is linked to the cause, and comes after it
+    [boundaries] = findings(report, "missing-separator", "boundary-no-eos")
+    assert boundaries.count == 56
+    assert boundaries.caused_by == root.fingerprint and boundaries.fingerprint in root.explains
+    assert report.findings[0] is root and report.findings[1] is boundaries
+    summary = text.render(report).splitlines()
+    first = next(i for i, line in enumerate(summary) if line.startswith("ERROR"))
+    row, token = expected[0][0], expected[0][1] - 1  # the eos place before the first restart: row 0, token 13
+    assert summary[first].startswith(f"ERROR stale-setting  {path}: 56 document ends (first at row {row}, token "
+                                     f"{token}): eos_id = 2 never occurs")
+    assert summary[first + 1].startswith("      fix: Set eos_id = 3 ")
+    assert summary[first + 2].startswith("      cause of: ")
+    assert summary[first + 3].startswith("ERROR missing-separator ")
+    assert summary[first + 4] == "      fix: same cause as the stale-setting finding above: fix that first."
+
+
+def test_the_right_eos_or_no_given_eos_gives_no_finding(tmp_path):
+    cols = pack(DOCS, SEQ, eos=3)
+    path = write(tmp_path / "a.parquet", cols)
+    assert not findings(run(path, eos_id=3, vocab_size=600), "stale-setting")
+    assert not findings(run(path), "stale-setting")  # nothing given: nothing to contradict
+    text_path = write(tmp_path / "t.jsonl", {"text": ["an invented note about kettles", "one about gulls"]})
+    assert not findings(run(text_path, eos_id=2), "stale-setting")
+
+
+def test_no_suggestion_when_no_id_stands_at_the_document_ends(tmp_path):
+    cols = pack(DOCS, SEQ)  # no separator at all
+    path = write(tmp_path / "a.parquet", cols)
+    [root] = findings(run(path, eos_id=2), "stale-setting")
+    assert root.evidence["suggestedValue"] is None and root.count == len(restarts(cols))
+    assert "so no value is suggested" in root.message
+
+
+def test_a_vocab_size_below_a_special_id_in_use_is_the_stale_setting(tmp_path):
+    cols = pack(DOCS, SEQ, eos=512)  # the eos added after the vocabulary of 512 was fixed
+    path = write(tmp_path / "a.parquet", cols)
+    report = run(path, eos_id=512, vocab_size=512)
+    places = [(r, t) for r, ids in enumerate(cols["input_ids"]) for t, i in enumerate(ids) if i == 512]
+    [root] = findings(report, "stale-setting")
+    assert root.kind == "vocab_size-stale" and root.count == len(places) == 60
+    assert root.evidence["suggestedValue"] == 513 and root.evidence["otherIdsAbove"] == 0
+    assert "vocab_size is stale" in root.message and "not the tokenizer" in root.message
+    [above] = findings(report, "token-range", "above-vocab")
+    [labels] = findings(report, "label-alignment", "label-out-of-vocab")
+    assert above.caused_by == labels.caused_by == root.fingerprint
+    assert sorted(root.explains) == sorted([above.fingerprint, labels.fingerprint])
+    log = validate_sarif(_sarif(path))
+    by_rule = {r["ruleId"]: r for r in log["runs"][0]["results"] if r["properties"]["kind"] in
+               ("vocab_size-stale", "above-vocab")}
+    assert by_rule["token-range"]["properties"]["rootCause"] == by_rule["stale-setting"]["partialFingerprints"][
+        "corpuscleFinding/v1"]
+
+
+def _sarif(path) -> dict:
+    CliRunner().invoke(main, ["scan", path, "--eos-id", "512", "--vocab-size", "512", "--jobs", "1", "--sarif",
+                              "r.sarif"])
+    return json.loads(open("r.sarif").read())
+
+
+def test_a_given_pad_id_never_used_where_the_mask_marks_padding(tmp_path):
+    rows = [[5, 6, 7, 2, 9, 9, 9, 9], [8, 2, 9, 9, 9, 9, 9, 9], [5, 5, 5, 5, 5, 6, 7, 2]]  # pads are id 9
+    mask = [[int(i != 9) for i in row] for row in rows]
+    path = write(tmp_path / "p.parquet", {"input_ids": rows, "attention_mask": mask})
+    [root] = findings(run(path, eos_id=2, pad_id=0), "stale-setting")
+    masked = [(r, t) for r, m in enumerate(mask) for t, v in enumerate(m) if v == 0]
+    assert (root.kind, root.level.name, root.count) == ("pad_id-unseen", "warning", len(masked))
+    assert root.evidence["suggestedValue"] == 9
