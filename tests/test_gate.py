@@ -5,11 +5,13 @@ Outside sources:
   ``baselineState``): "new" -- the result was detected in the current run but not in the baseline run;
   "unchanged" -- detected in both runs and not changed in a way the tool considers significant; "updated" --
   detected in both runs and changed in a way the tool considers significant; "absent" -- detected in the baseline
-  run but not in the current run.  Section 3.14.6 (``run.baselineGuid``) names the baseline run by its
-  ``automationDetails.guid`` (section 3.17.4).  Section 3.35 (suppression objects): ``kind`` "external" for a
-  suppression kept outside the analysed files, and ``justification``.  Section 3.20.5
-  (``ruleConfigurationOverrides``).  (Paraphrased from the specification text.)
-* The OASIS SARIF 2.1.0 JSON schema in tests/data: every log written here is validated against it.
+  run but not in the current run (paraphrased from the specification text).
+* The OASIS SARIF 2.1.0 JSON schema in tests/data, which every log written here is validated against, and whose
+  descriptions say: ``run.baselineGuid`` is "the 'guid' property of a previous SARIF 'run' that comprises the
+  baseline" (a run's guid is ``run.automationDetails.guid``); a suppression's ``kind`` is "inSource" or "external"
+  ("where the suppression is persisted": ours live in the settings file); ``region.startLine`` has minimum 1.
+  ``invocation.ruleConfigurationOverrides`` carries the levels set for a run (section numbers other than 3.27.24
+  are not cited: from memory only).
 """
 from __future__ import annotations
 
@@ -316,3 +318,53 @@ def test_a_suppression_needs_a_justification(tmp_path):
                              "suppression says why it is accepted\n")
     config('[[suppress]]\nrule = "nope"\npath = "legacy/*"\njustification = "x"\n')
     assert scan("legacy").stderr.startswith("Error: unknown rule 'nope'")
+
+
+# -- the Python API reads what the command line reads --------------------------------------------------------------
+
+
+def test_the_python_api_reads_the_same_config_and_writes_the_same_reports(tmp_path):
+    from corpuscle import load_settings
+    from corpuscle import scan as api_scan
+
+    level_corpus()
+    config('only = ["unreadable-record"]\n[rule.unreadable-record]\nlevel = "warning"\n')
+    report = api_scan(["legacy", "fresh"])  # corpuscle.toml in the working directory, as the CLI reads it
+    assert [(f.uri, f.level.name) for f in report.findings] == [("fresh/bad.jsonl", "warning"),
+                                                                ("legacy/bad.jsonl", "warning")]
+    assert report.exit_code == 0
+    open("strict.toml", "w").write('only = ["unreadable-record"]\n[[suppress]]\nrule = "unreadable-record"\n'
+                                   'path = "legacy/*"\njustification = "known"\n')
+    report = api_scan(["legacy", "fresh"], config="strict.toml")
+    assert [(f.uri, f.level.name, f.suppression) for f in report.findings] == [
+        ("fresh/bad.jsonl", "error", None), ("legacy/bad.jsonl", "error", "known")]
+    assert report.exit_code == 1
+    settings = load_settings(config="strict.toml", eos_id=2)
+    assert (settings.eos_id, settings.only, len(settings.suppress)) == (2, ("unreadable-record",), 1)
+
+    report.write_sarif("api.sarif")
+    report.write_json("api.json")
+    shown = report.write_text("api.txt")
+    assert open("api.txt").read() == shown and shown.splitlines()[-1].startswith("1 error(s), 0 warning(s)")
+    assert "Corpus figures" in report.write_text(stats=True) and "Corpus figures" not in shown
+    validate_sarif(json.loads(open("api.sarif").read()))
+    scan("legacy", "fresh", "--config", "strict.toml", "--sarif", "cli.sarif", "--json", "cli.json")
+    api, cli = json.loads(open("api.sarif").read()), json.loads(open("cli.sarif").read())
+    assert api["runs"][0]["results"] == cli["runs"][0]["results"]
+    assert json.loads(open("api.json").read())["findings"] == json.loads(open("cli.json").read())["findings"]
+    again = api_scan(["legacy", "fresh"], config="strict.toml", baseline="cli.sarif")
+    assert [f.baseline_state for f in again.findings] == ["unchanged", "unchanged"] and again.exit_code == 0
+
+
+# -- one numbering -------------------------------------------------------------------------------------------------
+
+
+def test_rows_and_offsets_are_0_based_and_sarif_says_which_line_is_meant(tmp_path):
+    lines_file("n.jsonl", [GOOD, "", BAD])  # the bad record is line index 2 (blank lines count): line 3 of the file
+    result = scan("n.jsonl", "--only", "unreadable-record", "--sarif", "r.sarif")
+    [r] = sarif_of("r.sarif")["runs"][0]["results"]
+    assert r["properties"]["instances"] == [{"row": 2, "offset": 21}]
+    assert r["locations"][0]["physicalLocation"]["region"] == {"startLine": 3}  # 1-based (schema: minimum 1)
+    assert r["message"]["text"].endswith("First affected record: row 2 (0-based, as in properties.instances) = "
+                                         "line 3 of the file (1-based, region.startLine).")
+    assert "ERROR unreadable-record  n.jsonl: 1 line (first at row 2, char 21): " in result.stdout
