@@ -7,8 +7,15 @@ the report can show the cause once, first, with the value the data suggests.
 from __future__ import annotations
 
 import numpy as np
-from corpuscle.findings import Level
-from corpuscle.kernels.tokens import parallel_columns, position_restarts, real_positions
+from corpuscle.findings import Finding, Level
+from corpuscle.kernels.tokens import (
+    padding_free,
+    parallel_columns,
+    position_restarts,
+    real_per_row,
+    real_positions,
+    token_positions,
+)
 from corpuscle.rules.api import Rule, absolute_rows, consistent, pct
 
 #: Which findings of the same shard rest on each setting: (rule id, kind glob).
@@ -95,9 +102,10 @@ class StaleSetting(Rule):
         batch = consistent(batch, parallel_columns(s))
         tokens = batch.flat(s.tokens_column)
         values = tokens.values
+        state.count(tokens=int(values.size))
         specials = {key: getattr(s, key) for key in SPECIAL if getattr(s, key) is not None}
-        for key, token_id in specials.items():
-            state.occurs[key] += int(np.count_nonzero(values == token_id))
+        for key, token_id in specials.items():  # the positions other rules look up too (shared per batch)
+            state.occurs[key] += int(token_positions(batch, tokens, s, token_id).size)
         if s.vocab_size is not None:
             above = values >= s.vocab_size
             special_above = [i for i in set(specials.values()) if i >= s.vocab_size]
@@ -107,25 +115,31 @@ class StaleSetting(Rule):
                 state.hit("vocab_size-stale", absolute_rows(batch, rows), offsets)
                 above &= ~np.isin(values, special_above)
             state.above_other += int(np.count_nonzero(above))
-        if not any(_relevant(s, key) for key in SPECIAL):
+        # Where the separator (or padding) should stand matters only while the given id has not been seen.
+        unseen = [key for key in SPECIAL if _relevant(s, key) and not state.occurs[key]]
+        if not unseen:
             return
-        real = real_positions(batch, tokens, s)
+        free = padding_free(batch, tokens, s)
         restarts = position_restarts(batch, tokens, s)
-        last_real = tokens.last_where(real)
-        first_real = tokens.first_where(real)
-        padded = tokens.count_per_row(~real) > 0
-        for key in SPECIAL:
-            if not _relevant(s, key):
-                continue
+        nonempty = tokens.lengths > 0
+        for key in unseen:
             if key == "pad_id":
-                if not batch.has(s.mask_column):
-                    continue  # padding told by pad_id alone says nothing about pad_id
-                places = np.flatnonzero(~real)
+                if free or not batch.has(s.mask_column):
+                    continue  # no padding, or padding told by pad_id alone: says nothing about pad_id
+                places = np.flatnonzero(~real_positions(batch, tokens, s))
             elif key == "eos_id":
-                ends = last_real[(last_real >= 0) & (padded | (restarts is None))]
+                # the last real token of padded rows (of every row without position_ids), and before each restart
+                if free:
+                    ends = tokens.ends[nonempty] - 1 if restarts is None else np.zeros(0, dtype=np.int64)
+                else:
+                    last = tokens.last_where(real_positions(batch, tokens, s))
+                    padded = real_per_row(batch, tokens, s) < tokens.lengths
+                    ends = last[(last >= 0) & (padded | (restarts is None))]
                 places = np.union1d(restarts - 1, ends) if restarts is not None else ends
             else:
-                starts = first_real[first_real >= 0]
+                starts = (tokens.starts[nonempty] if free
+                          else tokens.first_where(real_positions(batch, tokens, s)))
+                starts = starts[starts >= 0]
                 places = np.union1d(restarts, starts) if restarts is not None else starts
             ids, counts = state.places[key]
             state.places[key] = _tally(ids, counts, values[places])
@@ -137,9 +151,12 @@ class StaleSetting(Rule):
         out = []
         for key in SPECIAL:
             hits = state.hits.get(f"{key}-unseen")
-            if not _relevant(s, key) or state.occurs[key] or not hits:
+            if not _relevant(s, key) or state.occurs[key] or not state.stats["tokens"]:
                 continue
-            out.append(self._unseen(state, key, hits))
+            if hits:
+                out.append(self._unseen(state, key, hits))
+            elif key != "pad_id":  # pad_id: no padding, nothing wrong with an unused pad id
+                out.append(self._unseen_nowhere(state, key))
         hits = state.hits.get("vocab_size-stale")
         if hits and s.vocab_size is not None:
             out.append(self._vocab(state, hits))
@@ -176,6 +193,24 @@ class StaleSetting(Rule):
                                mostCommonAtPlaces={str(int(i)): int(c) for i, c in zip(ids[:5], counts[:5])},
                                explains=[list(p) for p in RESTS_ON[key]])
         finding.fix = fix
+        return finding
+
+    def _unseen_nowhere(self, state, key):
+        """A given separator id that never occurs in a shard that shows no document boundary at all."""
+        s = state.settings
+        fix = (f"Set {key} to the id the model's tokenizer uses for it (the shard shows no place where documents "
+               "meet, so no value is suggested); if the rows really are windows cut from longer documents, each "
+               "without an end, this is expected.")
+        message = (f"{key} = {getattr(s, key):,} ({_source(s, key)}) never occurs in this shard's "
+                   f"{int(state.stats['tokens']):,} tokens of {s.tokens_column}, and no position_ids "
+                   f"restart or padded row shows where documents meet. Findings that rest on {key} in this shard share "
+                   f"this cause. {fix}")
+        finding = Finding(self.id, self.level, message, state.uri, kind=f"{key}-unseen", count=1,
+                          rows=np.zeros(1, dtype=np.int64),
+                          evidence=dict(setting=key, givenValue=getattr(s, key), occurrences=0, places=0,
+                                        suggestedValue=None, explains=[list(p) for p in RESTS_ON[key]]))
+        finding.offsets = np.full(1, -1, dtype=np.int64)
+        finding.fix, finding.unit = fix, "shard"
         return finding
 
     def _vocab(self, state, hits):

@@ -103,3 +103,13 @@ def test_a_given_pad_id_never_used_where_the_mask_marks_padding(tmp_path):
     masked = [(r, t) for r, m in enumerate(mask) for t, v in enumerate(m) if v == 0]
     assert (root.kind, root.level.name, root.count) == ("pad_id-unseen", "warning", len(masked))
     assert root.evidence["suggestedValue"] == 9
+
+
+def test_a_given_eos_never_used_in_a_shard_without_boundaries_is_named_without_a_suggestion(tmp_path):
+    rows = [[10 + (r * 7 + t) % 90 for t in range(16)] for r in range(6)]  # ids 10..99: no 2, no restart, no padding
+    path = write(tmp_path / "w.parquet", {"input_ids": rows, "position_ids": [list(range(16))] * 6})
+    report = run(path, eos_id=2)
+    [root] = findings(report, "stale-setting")
+    assert (root.kind, root.count, root.unit, root.evidence["suggestedValue"]) == ("eos_id-unseen", 1, "shard", None)
+    assert f"never occurs in this shard's {6 * 16} tokens" in root.message
+    assert [f.caused_by for f in findings(report, "missing-separator")] == [root.fingerprint]

@@ -289,13 +289,10 @@ def _finding_line(f, group: list, rules: dict, causes: dict) -> list[str]:
     else:
         where = f.uri or "across shards"
     first = f.instances()[:1]
-    at = f" (first at {units.where(f, first[0])})" if first and len(group) == 1 and f.uri is not None else ""
+    whole = units.unit(f) in ("shard", "shards", "file", "files")  # a finding about the whole shard: no location
+    at = f" (first at {units.where(f, first[0])})" if first and len(group) == 1 and f.uri and not whole else ""
     state = f" [{_state(f)}]" if _state(f) else ""
-    head = f"{MARK[f.level]} {f.rule_id}  {where}: {counted(count, units.unit(f))}{at}{state}: "
-    estimate = f.evidence.get("sampleEstimate")
-    if isinstance(estimate, dict) and "share" in estimate:
-        what += (f" (sample: {_pct(100 * estimate['share'])} of rows scanned, 95% CI {_pct(100 * estimate['ci95Low'])}"
-                 f" to {_pct(100 * estimate['ci95High'])})")
+    head = f"{MARK[f.level]} {f.rule_id}  {where}: {counted(count, units.unit(f))}{_estimate(f)}{at}{state}: "
     lines = [head + _clip(what, LINE - len(head))]
     if f.caused_by and f.caused_by in causes:
         lines.append(f"      fix: same cause as the {causes[f.caused_by]} finding above: fix that first.")
@@ -305,6 +302,20 @@ def _finding_line(f, group: list, rules: dict, causes: dict) -> list[str]:
         named = sorted({e.rule_id for e in rules.get("__findings__", []) if e.fingerprint in f.explains})
         lines.append(f"      cause of: {len(f.explains)} finding(s) below ({', '.join(named)})")
     return lines
+
+
+def _estimate(f) -> str:
+    """A sampled scan's estimate for the finding, short: the share of rows with its 95% interval, or the count in
+    all."""
+    estimate = f.evidence.get("sampleEstimate")
+    if not isinstance(estimate, dict):
+        return ""
+    if "share" in estimate:
+        return (f" in the sample ({_pct(100 * estimate['share'])} of rows scanned, 95% CI "
+                f"{_pct(100 * estimate['ci95Low'])} to {_pct(100 * estimate['ci95High'])})")
+    if "estimatedCount" in estimate:
+        return f" in the sample (about {_num(estimate['estimatedCount'])} in all, a ratio estimate)"
+    return " in the sample"
 
 
 def _table(findings: list) -> list[str]:
