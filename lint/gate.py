@@ -125,9 +125,11 @@ def link_causes(findings: list[Finding]) -> list[Finding]:
     roots = [f for f in findings if f.evidence.get("explains") and f.uri is not None]
     if not roots:
         return findings
+    # (identity, not ==: findings hold numpy arrays)
+    root_ids = {id(root) for root in roots}
     for root in roots:
         for other in findings:
-            if other is root or other.uri != root.uri or other.caused_by is not None or other in roots:
+            if id(other) in root_ids or other.uri != root.uri or other.caused_by is not None:
                 continue
             if any(other.rule_id == rule_id and fnmatch.fnmatchcase(other.kind, kind)
                    for rule_id, kind in root.evidence["explains"]):
@@ -138,7 +140,8 @@ def link_causes(findings: list[Finding]) -> list[Finding]:
     for root in roots:
         ordered.append(root)
         ordered += [f for f in findings if f.caused_by == root.fingerprint]
-    return ordered + [f for f in findings if f not in ordered and id(f) not in followers]
+    placed = {id(f) for f in ordered}
+    return ordered + [f for f in findings if id(f) not in placed and id(f) not in followers]
 
 
 # -- baselines -----------------------------------------------------------------------------------------------------

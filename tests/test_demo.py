@@ -115,7 +115,7 @@ def test_the_demo_summary_fits_80_lines_and_names_every_rule_with_a_result(tmp_p
     # truncation-waste in two shards is one line; the 4 + 3 duplicate clusters sit under one line per rule
     assert sum(1 for i in heads if lines[i].split()[1] == "truncation-waste") == 1
     assert [lines[i].split()[1] for i in heads].count("exact-duplicate") == 1
-    assert "WARN  exact-duplicate  across 2 shards: 4 clusters, 8 copies in all; the 4 largest:" in lines
+    assert "WARN  exact-duplicate  in 2 shards: 4 findings, 8 copies in all; the 4 largest:" in lines
     assert f"      2 copies: {DEMO}/notes_mirror.jsonl row 3 = {DEMO}/notes_text.jsonl row 3" in lines
     assert " @" not in "\n".join(lines)  # locations read "row 3, token 20"
     # the verdict is last; no corpus figures without --stats

@@ -368,3 +368,27 @@ def test_rows_and_offsets_are_0_based_and_sarif_says_which_line_is_meant(tmp_pat
     assert r["message"]["text"].endswith("First affected record: row 2 (0-based, as in properties.instances) = "
                                          "line 3 of the file (1-based, region.startLine).")
     assert "ERROR unreadable-record  n.jsonl: 1 line (first at row 2, char 21): " in result.stdout
+
+
+# -- many findings of one rule -----------------------------------------------------------------------------------
+
+
+def test_many_duplicate_clusters_in_one_shard_take_one_block_with_the_five_largest(tmp_path):
+    from tests.shards import write
+
+    words = ["kettle", "harbour", "lantern", "pebble", "orchard", "meadow", "thimble", "compass", "saddle",
+             "ribbon", "anchor", "teapot"]
+    notes = [f"an invented note about the {w} and the {w}'s long afternoon by the quay, number {i}"
+             for i, w in enumerate(words)]
+    texts = notes + notes + notes[:1]  # 12 pairs of copies, the first note three times
+    write("dups.jsonl", {"text": texts})
+    result = scan("dups.jsonl", "--only", "exact-duplicate", "--json", "r.json")
+    found = json.loads(open("r.json").read())["findings"]
+    assert sorted(f["count"] for f in found) == [2] * 11 + [3]
+    lines = result.stdout.splitlines()
+    start = lines.index("WARN  exact-duplicate  in dups.jsonl: 12 findings, 25 copies in all; the 5 largest:")
+    assert lines[start + 1] == "      3 copies: row 0 = row 12 = row 24"
+    assert all(line.startswith("      2 copies: row ") for line in lines[start + 2:start + 6])
+    assert lines[start + 6] == "      and 7 more findings (14 copies), listed in the SARIF/JSON report"
+    assert lines[start + 7].startswith("      fix: ")
+    assert sum(1 for line in lines if line.startswith("WARN")) == 1

@@ -357,24 +357,29 @@ def _groups(findings: list) -> list[list]:
 
 
 def _cluster_lines(rule_id: str, clusters: list, rules: dict) -> list[str]:
-    """A rule's findings across shards (duplicate clusters): a headline, the largest few, one fix line."""
+    """Many findings of one rule, each of its own kind (duplicate clusters, within or across shards): a headline,
+    the largest few, the count of the rest, one fix line."""
     clusters = sorted(clusters, key=lambda f: -f.count)
     first = clusters[0]
-    shards = {u for f in clusters for u in (f.instance_uris or [])}
+    shards = {u for f in clusters for u in ([f.uri] if f.uri else f.instance_uris or [])}
     total = sum(f.count for f in clusters)
     unit = units.unit(first)
+    level = max(f.level for f in clusters)
     state = f" [{_state(first)}]" if all(_state(f) == _state(first) for f in clusters) and _state(first) else ""
-    out = [f"{MARK[first.level]} {rule_id}  across {len(shards)} shards: {len(clusters):,} clusters, "
-           f"{counted(total, unit)} in all{state}; the {min(len(clusters), CLUSTERS)} largest:"]
+    where = f"in {len(shards)} shards" if len(shards) > 1 else f"in {next(iter(shards), 'no shard')}"
+    out = [f"{MARK[level]} {rule_id}  {where}: {len(clusters):,} findings, {counted(total, unit)} in all{state}; "
+           f"the {min(len(clusters), CLUSTERS)} largest:"]
     for f in clusters[:CLUSTERS]:
         places = " = ".join(units.where(f, inst) for inst in f.instances()[:3])
+        if f.uri and len(shards) > 1:
+            places = f"{f.uri} {places}"
         more = f" (+{f.count - 3:,} more)" if f.count > 3 else ""
         tag = f" [{_state(f)}]" if _state(f) and not state else ""
         out.append(f"      {counted(f.count, unit)}: {places}{more}{tag}")
     if len(clusters) > CLUSTERS:
         rest = clusters[CLUSTERS:]
-        out.append(f"      and {len(rest):,} more clusters ({sum(f.count for f in rest):,} {unit}), listed in the "
-                   "SARIF/JSON report")
+        out.append(f"      and {len(rest):,} more findings ({counted(sum(f.count for f in rest), unit)}), listed in "
+                   "the SARIF/JSON report")
     _, fix = split_message(first, rules.get(rule_id))
     out.append(f"      fix: {fix}")
     return out
@@ -444,14 +449,22 @@ def render(report, stats: bool = False, long: bool = False) -> str:
     else:
         out += ["", "No findings."]
     causes = {f.fingerprint: f.rule_id for f in standing if f.explains}
-    across: dict[str, list] = {}
-    for group in _groups(standing):
+    groups = _groups(standing)
+    # A rule with many findings of a kind each (duplicate clusters), or several across shards, gets one block.
+    singles: dict[str, list] = {}
+    for group in groups:
         f = group[0]
-        if f.uri is None and not f.explains and sum(1 for g in standing if g.rule_id == f.rule_id
-                                                    and g.uri is None) > 1:
-            if f.rule_id not in across:
-                across[f.rule_id] = [g for g in standing if g.rule_id == f.rule_id and g.uri is None]
-                out += _cluster_lines(f.rule_id, across[f.rule_id], rules)
+        if len(group) == 1 and not f.explains and not f.caused_by:
+            singles.setdefault(f.rule_id, []).append(f)
+    blocks = {rule_id for rule_id, found in singles.items()
+              if len(found) > CLUSTERS or sum(1 for f in found if f.uri is None) > 1}
+    shown = set()
+    for group in groups:
+        f = group[0]
+        if f.rule_id in blocks and len(group) == 1 and any(f is g for g in singles[f.rule_id]):
+            if f.rule_id not in shown:
+                shown.add(f.rule_id)
+                out += _cluster_lines(f.rule_id, singles[f.rule_id], rules)
             continue
         out += _finding_line(f, group, rules, causes)
     tail = _suppression_lines(report) + _baseline_line(report) + _note_lines(report)
