@@ -67,7 +67,7 @@ class StaleSetting(Rule):
     (separator eos-after or both) or bos_id (bos-before or both) that never occurs in the shard makes every document
     boundary look unseparated; the rule looks at what stands where the separator should -- before every position_ids
     restart, and at the last real token of padded rows (of every row when the shard has no position_ids) for eos; at
-    every restart and row start for bos -- and suggests the id found at nearly all of those places (at least 90% of
+    every restart, and at row starts whose position_ids say 0 (every row start without position_ids), for bos -- and suggests the id found at nearly all of those places (at least 90% of
     at least 4 places: a heuristic). A given pad_id that never occurs while the attention mask marks padding is
     reported the same way, with the id standing at the masked positions. A vocab_size at or below a special id that
     occurs in the data means vocab_size is stale (special tokens added after it was fixed); a special id at or above
@@ -140,6 +140,8 @@ class StaleSetting(Rule):
                 starts = (tokens.starts[nonempty] if free
                           else tokens.first_where(real_positions(batch, tokens, s)))
                 starts = starts[starts >= 0]
+                if restarts is not None:  # a row start begins a document where its position_ids say 0
+                    starts = starts[batch.flat(s.positions_column).values[starts] == 0]
                 places = np.union1d(restarts, starts) if restarts is not None else starts
             ids, counts = state.places[key]
             state.places[key] = _tally(ids, counts, values[places])
@@ -169,7 +171,8 @@ class StaleSetting(Rule):
         places = hits.count
         where = {"eos_id": "where documents end (before each position_ids restart, at the last real token of padded "
                            "rows, or of every row when there is no position_ids column)",
-                 "bos_id": "where documents start (at each position_ids restart and row start)",
+                 "bos_id": "where documents start (at each position_ids restart, and at row starts whose position_ids say 0 or "
+                           "when there is no position_ids column)",
                  "pad_id": f"at the {places:,} positions the attention mask marks as padding"}[key]
         top, top_count = (int(ids[0]), int(counts[0])) if ids.size else (None, 0)
         suggested = top if top is not None and places >= MIN_PLACES and top_count >= AGREEMENT * places else None
@@ -181,8 +184,8 @@ class StaleSetting(Rule):
         else:
             most = f"; the most common is id {top:,} at {pct(top_count, places)}" if top is not None else ""
             found = f"no single id stands {where} ({places:,} places{most}), so no value is suggested"
-            fix = (f"Set {key} to the id the model's tokenizer uses for it, or give --separator if the shards "
-                   "separate documents another way.")
+            fix = (f"Set {key} to the id the model's tokenizer uses for it, or set separator (eos-after, bos-before, "
+                   "both) in corpuscle.toml if the shards separate documents another way.")
         beyond = (f" It is also at or above vocab_size {s.vocab_size:,}, so it is {key} that is stale."
                   if s.vocab_size is not None and given >= s.vocab_size else "")
         message = (f"{key} = {given:,} ({_source(s, key)}) never occurs in this shard's {s.tokens_column}: {found}."

@@ -113,3 +113,19 @@ def test_a_given_eos_never_used_in_a_shard_without_boundaries_is_named_without_a
     assert (root.kind, root.count, root.unit, root.evidence["suggestedValue"]) == ("eos_id-unseen", 1, "shard", None)
     assert f"never occurs in this shard's {6 * 16} tokens" in root.message
     assert [f.caused_by for f in findings(report, "missing-separator")] == [root.fingerprint]
+
+
+def test_a_given_bos_that_never_occurs_names_the_id_at_every_document_start(tmp_path):
+    stream, pos = [], []
+    for doc in DOCS:
+        stream += [1] + doc
+        pos += list(range(len(doc) + 1))
+    cut = [(i, i + SEQ) for i in range(0, len(stream) - SEQ + 1, SEQ)]
+    cols = {"input_ids": [stream[a:b] for a, b in cut], "position_ids": [pos[a:b] for a, b in cut]}
+    path = write(tmp_path / "b.parquet", cols)
+    [root] = findings(run(path, separator="bos-before", bos_id=7), "stale-setting")
+    starts = [(r, t) for r, p in enumerate(cols["position_ids"]) for t in range(len(p)) if p[t] == 0]
+    assert all(cols["input_ids"][r][t] == 1 for r, t in starts)
+    assert root.kind == "bos_id-unseen" and root.count == len(starts)
+    assert list(zip(root.rows.tolist(), root.offsets.tolist())) == starts
+    assert root.evidence["suggestedValue"] == 1
