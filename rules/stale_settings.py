@@ -71,7 +71,8 @@ class StaleSetting(Rule):
     at least 4 places: a heuristic). A given pad_id that never occurs while the attention mask marks padding is
     reported the same way, with the id standing at the masked positions. A vocab_size at or below a special id that
     occurs in the data means vocab_size is stale (special tokens added after it was fixed); a special id at or above
-    vocab_size that does not occur is the stale one. Each finding lists the findings of other rules in the same
+    vocab_size that does not occur is itself stale (named in its unseen finding, or in a warning of its own that
+    names both settings when the shard has no use for it). Each finding lists the findings of other rules in the same
     shard that rest on the stale value, so one fix is shown once."""
 
     id = "stale-setting"
@@ -162,6 +163,12 @@ class StaleSetting(Rule):
         hits = state.hits.get("vocab_size-stale")
         if hits and s.vocab_size is not None:
             out.append(self._vocab(state, hits))
+        reported = {f.evidence["setting"] for f in out}
+        for key in SPECIAL:
+            given = getattr(s, key)
+            if (key not in reported and given is not None and s.source(key) != "inferred" and s.vocab_size is not None
+                    and given >= s.vocab_size and not state.occurs[key] and state.stats["tokens"]):
+                out.append(self._beyond_vocab(state, key))
         return out
 
     def _unseen(self, state, key, hits):
@@ -212,6 +219,22 @@ class StaleSetting(Rule):
                           rows=np.zeros(1, dtype=np.int64),
                           evidence=dict(setting=key, givenValue=getattr(s, key), occurrences=0, places=0,
                                         suggestedValue=None, explains=[list(p) for p in RESTS_ON[key]]))
+        finding.offsets = np.full(1, -1, dtype=np.int64)
+        finding.fix, finding.unit = fix, "shard"
+        return finding
+
+    def _beyond_vocab(self, state, key):
+        """A given special id at or above vocab_size that the shard does not use: one of the two settings is stale."""
+        s = state.settings
+        given = getattr(s, key)
+        fix = (f"Correct {key} to the tokenizer's id for it if that is below vocab_size; if the token was added to the "
+               f"vocabulary later, raise vocab_size to at least {given + 1:,} (the model's embedding size).")
+        message = (f"{key} = {given:,} ({_source(s, key)}) is at or above vocab_size = {s.vocab_size:,} "
+                   f"({_source(s, 'vocab_size')}) and never occurs in this shard: the model has no embedding for it, "
+                   f"so a trainer that pads or separates with it fails; {key} or vocab_size is stale. {fix}")
+        finding = Finding(self.id, Level.warning, message, state.uri, kind=f"{key}-beyond-vocab", count=1,
+                          rows=np.zeros(1, dtype=np.int64),
+                          evidence=dict(setting=key, givenValue=given, vocabSize=s.vocab_size, occurrences=0))
         finding.offsets = np.full(1, -1, dtype=np.int64)
         finding.fix, finding.unit = fix, "shard"
         return finding

@@ -129,3 +129,11 @@ def test_a_given_bos_that_never_occurs_names_the_id_at_every_document_start(tmp_
     assert root.kind == "bos_id-unseen" and root.count == len(starts)
     assert list(zip(root.rows.tolist(), root.offsets.tolist())) == starts
     assert root.evidence["suggestedValue"] == 1
+
+
+def test_a_given_pad_id_beyond_the_vocabulary_that_the_shard_never_uses_is_a_warning(tmp_path):
+    path = write(tmp_path / "a.parquet", pack(DOCS, SEQ, eos=2))  # packed: no padding, no pad id anywhere
+    [f] = findings(run(path, eos_id=2, pad_id=600, vocab_size=600), "stale-setting")
+    assert (f.kind, f.level.name, f.count, f.unit) == ("pad_id-beyond-vocab", "warning", 1, "shard")
+    assert "pad_id = 600 (given) is at or above vocab_size = 600 (given)" in f.message
+    assert not findings(run(path, eos_id=2, pad_id=599, vocab_size=600), "stale-setting")
