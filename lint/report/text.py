@@ -39,7 +39,7 @@ def _wrap(text: str, indent: str) -> list[str]:
 def _locations(finding) -> str:
     shown = [units.where(finding, inst) for inst in finding.instances()[:SHOW_LOCATIONS]]
     more = finding.count - len(shown)
-    return ", ".join(shown) + (f" (+{more:,} more)" if more > 0 else "")
+    return "; ".join(shown) + (f" (+{more:,} more)" if more > 0 else "")
 
 
 #: Corpus figures with a section of their own instead of a line among the others.
@@ -128,6 +128,10 @@ def render_long(report, stats: bool = False) -> str:
         state = f" ({_state(f)})" if _state(f) else ""
         out.append(f"{MARK[f.level]} {f.rule_id} [{where}] {counted(f.count, units.unit(f))}{state}")
         out += _wrap(f.message, "      ")
+        if f.explains:
+            out += _wrap(f"cause of the next {len(f.explains)} finding(s): fix this first.", "      ")
+        if f.caused_by:
+            out += _wrap("same cause as the root-cause finding above it.", "      ")
         if f.count and f.rows.size:
             out += _wrap("at: " + _locations(f), "      ")
         if isinstance(f.evidence.get("sampleEstimate"), dict):
