@@ -392,3 +392,33 @@ def test_many_duplicate_clusters_in_one_shard_take_one_block_with_the_five_large
     assert lines[start + 6] == "      and 7 more findings (14 copies), listed in the SARIF/JSON report"
     assert lines[start + 7].startswith("      fix: ")
     assert sum(1 for line in lines if line.startswith("WARN")) == 1
+
+
+def test_a_finding_across_shards_is_suppressed_when_every_shard_matches_and_takes_the_highest_level(tmp_path):
+    from tests.shards import write
+
+    notes = [f"an invented note on the {w} that the ferry carried across the bay at noon" for w in
+             ("lantern", "teapot", "anchor")]
+    write("mirror/m.jsonl", {"text": notes})
+    write("main/t.jsonl", {"text": notes})
+    args = ("mirror", "main", "--only", "exact-duplicate", "--fail-at", "warning", "--sarif", "r.sarif")
+    config('[[suppress]]\nrule = "exact-duplicate"\npath = "mirror/*"\njustification = "mirror only"\n')
+    result = scan(*args)
+    log = sarif_of("r.sarif")
+    assert len(log["runs"][0]["results"]) == 3 and not any("suppressions" in r for r in log["runs"][0]["results"])
+    assert result.exit_code == 1  # each cluster also lists main/t.jsonl, which the entry does not match
+    assert any(n["message"]["text"].startswith("stale suppression")
+               for n in log["runs"][0]["invocations"][0]["toolExecutionNotifications"])
+    config('[[suppress]]\nrule = "exact-duplicate"\npath = "m*"\njustification = "both folders are mirrors"\n')
+    result = scan(*args)
+    assert [len(r.get("suppressions", [])) for r in sarif_of("r.sarif")["runs"][0]["results"]] == [1, 1, 1]
+    assert result.exit_code == 0
+    # levels: off in one folder, warning in the other -> the clusters stay, at the highest level in force
+    config('[paths."mirror"]\nrule.exact-duplicate.level = "off"\n[paths."main"]\nrule.exact-duplicate.level = '
+           '"note"\n')
+    scan(*args)
+    assert {r["level"] for r in sarif_of("r.sarif")["runs"][0]["results"]} == {"note"}
+    config('[paths."mirror"]\nrule.exact-duplicate.level = "off"\n[paths."main"]\nrule.exact-duplicate.level = '
+           '"off"\n')
+    scan(*args)
+    assert sarif_of("r.sarif")["runs"][0]["results"] == []
