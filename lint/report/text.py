@@ -278,17 +278,18 @@ def _clip(text: str, room: int) -> str:
     return cut + " …"
 
 
-def _short(uri: str, n: int = 3, uris: list | None = None) -> str:
-    shown = ", ".join(uris[:n])
-    return shown + (f" +{len(uris) - n} more" if len(uris) > n else "")
+def _short(uris: list, n: int = 3) -> str:
+    """The first ``n`` shard names, and how many more."""
+    return ", ".join(uris[:n]) + (f" +{len(uris) - n} more" if len(uris) > n else "")
 
 
-def _finding_line(f, group: list, rules: dict, causes: dict) -> list[str]:
-    """The line of one finding (or of the same kind of finding in several shards) and its fix line."""
+def _finding_line(f, group: list, rules: dict, causes: dict[str, str], rule_of: dict[str, str]) -> list[str]:
+    """The line of one finding (or of the same kind of finding in several shards) and its fix line; ``causes``:
+    the rule id of each root-cause finding by fingerprint, ``rule_of``: the rule id of every finding shown."""
     what, fix = split_message(f, rules.get(f.rule_id))
     count = sum(g.count for g in group)
     if len(group) > 1:
-        where = f"in {len(group)} shards ({_short('', 3, [g.uri for g in group])})"
+        where = f"in {len(group)} shards ({_short([g.uri for g in group])})"
         what = f"in the first: {what}"
     else:
         where = f.uri or "across shards"
@@ -303,7 +304,7 @@ def _finding_line(f, group: list, rules: dict, causes: dict) -> list[str]:
     else:
         lines.append(f"      fix: {fix}")
     if f.explains:
-        named = sorted({e.rule_id for e in rules.get("__findings__", []) if e.fingerprint in f.explains})
+        named = sorted({rule_of[e] for e in f.explains if e in rule_of})
         lines.append(f"      cause of: {len(f.explains)} finding(s) below ({', '.join(named)})")
     return lines
 
@@ -447,7 +448,7 @@ def render(report, stats: bool = False, long: bool = False) -> str:
            f"{m.get('tokens', 0):,} tokens{scanned}, {m.get('seconds', 0):.2f} s", LEGEND]
     standing = _in_force(report)
     rules = {rule.id: rule for rule in report.rules}
-    rules["__findings__"] = standing
+    rule_of = {f.fingerprint: f.rule_id for f in standing}
     if standing:
         out += [""] + _table(standing) + [""]
     else:
@@ -470,7 +471,7 @@ def render(report, stats: bool = False, long: bool = False) -> str:
                 shown.add(f.rule_id)
                 out += _cluster_lines(f.rule_id, singles[f.rule_id], rules)
             continue
-        out += _finding_line(f, group, rules, causes)
+        out += _finding_line(f, group, rules, causes, rule_of)
     tail = _suppression_lines(report) + _baseline_line(report) + _note_lines(report)
     if tail:
         out += [""] + tail
