@@ -184,8 +184,9 @@ class StaleSetting(Rule):
         top, top_count = (int(ids[0]), int(counts[0])) if ids.size else (None, 0)
         suggested = top if top is not None and places >= MIN_PLACES and top_count >= AGREEMENT * places else None
         if suggested is not None:
-            found = (f"id {suggested:,} stands {where}: {top_count:,} of {places:,} places ({pct(top_count, places)}), "
-                     f"so {key} is probably {suggested:,} (a heuristic: the most common id at those places)")
+            found = (f"id {suggested:,} stands {where} at {top_count:,} of {places:,} places "
+                     f"({pct(top_count, places)}), so {key} is probably {suggested:,} (a heuristic: the most common id "
+                     "at those places)")
             fix = (f"Set {key} = {suggested} (corpuscle.toml, or --{key.replace('_', '-')} {suggested}) if that is the "
                    "model's token; the findings this one explains are then checked again.")
         else:
@@ -250,9 +251,10 @@ class StaleSetting(Rule):
                 f"; {state.above_other:,} other ids at or above it are no special id (see token-range)")
         fix = (f"Set vocab_size to at least {largest + 1:,} (the model's embedding size, which must cover the "
                "special tokens); the special ids and the tokenizer are consistent with the data.")
-        message = (f"vocab_size = {s.vocab_size:,} ({_source(s, 'vocab_size')}) is at or below special ids that occur "
-                   f"in this shard ({names}){only}: vocab_size is stale (special tokens added after it was fixed), "
-                   f"not the tokenizer. Findings that rest on vocab_size in this shard share this cause. {fix}")
+        message = (f"vocab_size = {s.vocab_size:,} ({_source(s, 'vocab_size')}) is stale: special ids at or above it "
+                   f"occur in this shard ({names}){only}, so the special tokens were added after vocab_size was "
+                   f"fixed; the tokenizer is not at fault. Findings that rest on vocab_size in this shard share this "
+                   f"cause. {fix}")
         rests = [list(p) for p in RESTS_ON["vocab_size"] if p[0] != "token-range" or not state.above_other]
         finding = self.finding(state, "vocab_size-stale", message, setting="vocab_size", givenValue=s.vocab_size,
                                specialIdsAbove=above, otherIdsAbove=int(state.above_other),

@@ -77,7 +77,10 @@ def test_a_vocab_size_below_a_special_id_in_use_is_the_stale_setting(tmp_path):
     [root] = findings(report, "stale-setting")
     assert root.kind == "vocab_size-stale" and root.count == len(places) == 60
     assert root.evidence["suggestedValue"] == 513 and root.evidence["otherIdsAbove"] == 0
-    assert "vocab_size is stale" in root.message and "not the tokenizer" in root.message
+    assert root.message.startswith("vocab_size = 512 (given) is stale: special ids at or above it occur in this "
+                                   "shard (eos_id = 512 (60 times)) and every id at or above it in the shard is one "
+                                   "of these special ids")
+    assert "the tokenizer is not at fault" in root.message
     [above] = findings(report, "token-range", "above-vocab")
     [labels] = findings(report, "label-alignment", "label-out-of-vocab")
     assert above.caused_by == labels.caused_by == root.fingerprint

@@ -173,7 +173,7 @@ LEGEND = ("Numbering: rows and offsets are 0-based — row = record index in its
           "line index, blank lines included), token = token index in the row, char = character index in the text "
           "(SARIF region.startLine alone is 1-based).")
 #: Widest a finding's line gets before its text is cut (the shard names are never cut; SARIF/JSON keep everything).
-LINE = 200
+LINE = 240
 #: Findings of one rule across shards (clusters) shown before the rest are summed up.
 CLUSTERS = 5
 #: Imperative first words that start the fix in a rule's message (when the finding has no ``fix`` of its own).
