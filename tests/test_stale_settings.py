@@ -12,6 +12,8 @@ from corpuscle.cli import main
 from corpuscle.report import text
 
 from tests.shards import findings, pack, run, validate_sarif, write
+from tests.test_split import SerialPair, cut  # noqa: F401 - cut: the fixture that splits every shard
+from tests.test_split import report as split_report
 
 random.seed(7)
 DOCS = [[random.randrange(10, 500) for _ in range(random.randrange(3, 20))] for _ in range(60)]
@@ -140,3 +142,18 @@ def test_a_given_pad_id_beyond_the_vocabulary_that_the_shard_never_uses_is_a_war
     assert (f.kind, f.level.name, f.count, f.unit) == ("pad_id-beyond-vocab", "warning", 1, "shard")
     assert "pad_id = 600 (given) is at or above vocab_size = 600 (given)" in f.message
     assert not findings(run(path, eos_id=2, pad_id=599, vocab_size=600), "stale-setting")
+
+
+def test_a_shard_scanned_in_parts_gives_the_findings_of_a_whole_scan(tmp_path, cut):
+    cols = pack(DOCS * 4, SEQ, eos=3)
+    path = write(tmp_path / "a.parquet", cols, row_group_size=10)
+    for given in ({"eos_id": 2}, {"eos_id": 3, "pad_id": 700, "vocab_size": 600}):
+        whole = split_report([path], only=("stale-setting",), **given)
+        parted = split_report([path], SerialPair(), only=("stale-setting",), **given)
+        assert parted == whole and len(cut[-1]) == 2
+        assert [f["kind"] for f in whole["findings"]] == (["eos_id-unseen"] if given["eos_id"] == 2 else
+                                                            ["pad_id-beyond-vocab"])
+    assert whole["findings"] and parted["findings"][0]["count"] == 1
+    counts = split_report([path], only=("stale-setting",), eos_id=2)["findings"][0]["count"]
+    assert counts == len(restarts(cols))
+
