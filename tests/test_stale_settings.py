@@ -125,8 +125,8 @@ def test_a_given_bos_that_never_occurs_names_the_id_at_every_document_start(tmp_
     for doc in DOCS:
         stream += [1] + doc
         pos += list(range(len(doc) + 1))
-    cut = [(i, i + SEQ) for i in range(0, len(stream) - SEQ + 1, SEQ)]
-    cols = {"input_ids": [stream[a:b] for a, b in cut], "position_ids": [pos[a:b] for a, b in cut]}
+    spans = [(i, i + SEQ) for i in range(0, len(stream) - SEQ + 1, SEQ)]
+    cols = {"input_ids": [stream[a:b] for a, b in spans], "position_ids": [pos[a:b] for a, b in spans]}
     path = write(tmp_path / "b.parquet", cols)
     [root] = findings(run(path, separator="bos-before", bos_id=7), "stale-setting")
     starts = [(r, t) for r, p in enumerate(cols["position_ids"]) for t in range(len(p)) if p[t] == 0]
