@@ -143,3 +143,14 @@ def test_the_long_format_keeps_every_message_in_full(tmp_path):
     long = " ".join(" ".join(summary("--format", "long")).split())
     for f in report["findings"]:
         assert " ".join(f["message"].split()) in long
+
+
+def test_the_demo_against_its_own_baseline_is_all_unchanged_and_exits_0(tmp_path):
+    from tests.shards import validate_sarif
+
+    args = ["scan", str(DEMO), "--config", str(CONFIG), "--jobs", "1"]
+    assert CliRunner().invoke(main, [*args, "--sarif", "base.sarif"]).exit_code == 1
+    again = CliRunner().invoke(main, [*args, "--baseline", "base.sarif", "--sarif", "now.sarif"])
+    assert again.exit_code == 0
+    results = validate_sarif(json.loads((tmp_path / "now.sarif").read_text()))["runs"][0]["results"]
+    assert [r["baselineState"] for r in results] == ["unchanged"] * 25
