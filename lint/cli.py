@@ -11,11 +11,12 @@ import click
 from corpuscle.engine.progress import TerminalProgress
 from corpuscle.engine.sampling import Sample
 from corpuscle.engine.scan import run, select_rules
+from corpuscle.gate import BaselineError, load_baseline
 from corpuscle.io.sources import NoShardsFound, discover
 from corpuscle.report import droplist, sarif, text, write_atomic
-from corpuscle.report import json as json_report
 from corpuscle.report import html as html_report
-from corpuscle.settings import FAIL_AT, LABEL_CONVENTIONS, SettingsError, build, load_config
+from corpuscle.report import json as json_report
+from corpuscle.settings import FAIL_AT, LABEL_CONVENTIONS, RULE_LEVELS, SettingsError, build, load_config
 from corpuscle.version import __version__
 
 
@@ -98,23 +99,37 @@ def main():
                    "estimates with 95% intervals.")
 @click.option("--seed", "sample_seed", type=click.IntRange(min=0), default=0, show_default=True,
               help="Seed of --sample (the same seed picks the same units in every run and for any --jobs).")
+@click.option("--level", "levels", multiple=True, metavar="RULE=LEVEL",
+              help=f"Set a rule's level for this run ({', '.join(RULE_LEVELS)}; off does not run it); repeatable. "
+                   "Over [rule.<id>] level and [paths.\"GLOB\".rule.<id>] level in the settings file.")
+@click.option("--baseline", "baseline_path", type=click.Path(dir_okay=False), metavar="OLD.sarif",
+              help="Compare with the SARIF report of an earlier scan: each result is marked new, unchanged, updated "
+                   "or absent, and only new and updated results count for the exit status.")
+@click.option("--stats", is_flag=True, help="Add the corpus figures and the token budget to the summary (always in "
+                                            "the SARIF and JSON reports).")
+@click.option("--format", "summary_format", type=click.Choice(["compact", "long"]), default="compact",
+              show_default=True, help="The summary: one line per finding and its fix, or every finding in full prose.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress on stderr.")
-def scan(paths, config_path, sarif_path, json_path, html_path, drop_list_path, jobs, sample_fraction, sample_seed, quiet,
-         **flags):
+def scan(paths, config_path, sarif_path, json_path, html_path, drop_list_path, jobs, sample_fraction, sample_seed,
+         quiet, levels, baseline_path, stats, summary_format, **flags):
     """Scan shards (files, folders, globs) and report what would hurt training."""
     cluster = flags.pop("cluster")  # how to run, not a setting
     try:
+        flags["levels"] = _levels(levels) or None
         config, _ = load_config(config_path)
         settings = build(config, flags)
         rules = select_rules(settings, _registry())
         shards = discover(list(paths))
-    except (SettingsError, NoShardsFound) as exc:
+        baseline = load_baseline(baseline_path) if baseline_path else None
+    except (SettingsError, NoShardsFound, BaselineError) as exc:
         raise UsageProblem(str(exc)) from None
     sample = Sample(sample_fraction, sample_seed) if sample_fraction is not None else None
     with _executor(cluster, jobs) as executor:
         report = run(shards, settings, rules, jobs=jobs or os.cpu_count() or 1, progress=_progress(quiet),
                      sample=sample, executor=executor)
     html_path = html_path or settings.html
+    if baseline is not None:
+        report.compare(baseline)
     for path, module in ((sarif_path, sarif), (json_path, json_report), (html_path, html_report),
                          (drop_list_path, droplist)):
         if path:
@@ -124,8 +139,20 @@ def scan(paths, config_path, sarif_path, json_path, html_path, drop_list_path, j
                 raise UsageProblem(f"cannot write {path}: {exc.strerror or exc}") from None
     if drop_list_path and droplist.NAME not in report.outputs:
         click.echo(f"note: the drop list {drop_list_path} is empty: {_why_no_output(droplist.NAME, rules)}", err=True)
-    click.echo(text.render(report), nl=False)
+    click.echo(text.render(report, stats=stats, long=summary_format == "long"), nl=False)
     sys.exit(report.exit_code)
+
+
+def _levels(pairs) -> dict:
+    """``--level RULE=LEVEL`` options as {rule id: level} (rule ids are checked with the rules)."""
+    out = {}
+    for pair in pairs:
+        rule_id, sep, level = pair.partition("=")
+        if not sep or not rule_id.strip() or level.strip() not in RULE_LEVELS:
+            raise SettingsError(f"--level takes RULE=LEVEL with LEVEL one of {', '.join(RULE_LEVELS)}, e.g. "
+                                f"--level exact-duplicate=error; got {pair!r}")
+        out[rule_id.strip()] = level.strip()
+    return out
 
 
 def _why_no_output(name: str, rules) -> str:

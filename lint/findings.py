@@ -116,6 +116,22 @@ class Finding:
     truncated: bool = False
     evidence: dict = field(default_factory=dict)
     start_line: int | None = None  # 1-based line of the first affected record, for line-based shards
+    # -- set after the rules have reported (corpuscle.gate): the CI gate's view of the finding ----------------
+    #: How to fix it in one line, when the rule says so apart from the message (else the summary finds it there).
+    fix: str = ""
+    #: What ``count`` counts ("rows", "document boundaries"), when the rule says so (else the summary's table).
+    unit: str = ""
+    #: The level the rule gave it before a configured level applied (None: no configured level changed it).
+    rule_level: Level | None = None
+    #: The justification of the ``[[suppress]]`` entry that matched it (None: not suppressed).
+    suppression: str | None = None
+    #: SARIF baselineState against ``--baseline`` (new, unchanged, updated, absent), or None without a baseline.
+    baseline_state: str | None = None
+    #: Fingerprint of the finding that names this one's root cause, and those of the findings a root cause explains.
+    caused_by: str | None = None
+    explains: list[str] = field(default_factory=list)
+    #: The fingerprint read from a baseline (an absent result keeps the one it was stored with).
+    pinned_fingerprint: str | None = None
 
     @classmethod
     def from_hits(cls, rule_id: str, level: Level, message: str, uri: str, hits: Hits, kind: str = "",
@@ -125,6 +141,8 @@ class Finding:
 
     @property
     def fingerprint(self) -> str:
+        if self.pinned_fingerprint:
+            return self.pinned_fingerprint
         key = "\x1f".join([self.rule_id, self.uri or "*", self.kind])
         return hashlib.sha256(key.encode()).hexdigest()[:32]
 
@@ -138,6 +156,12 @@ class Finding:
                 inst["uri"] = self.instance_uris[i]
             out.append(inst)
         return out
+
+    @property
+    def gating(self) -> bool:
+        """Whether the finding counts for the exit status: not suppressed, and with a baseline only when it is new
+        or updated (unchanged and absent results do not count)."""
+        return self.suppression is None and self.baseline_state in (None, "new", "updated")
 
     def sort_key(self):
         return (-int(self.level), self.rule_id, self.uri or "", self.kind)

@@ -19,12 +19,14 @@ from corpuscle.findings import DEFAULT_INSTANCE_CAP, Level
 LABEL_CONVENTIONS = ("shifted", "aligned")
 SEPARATORS = ("eos-after", "bos-before", "both")
 FAIL_AT = ("error", "warning", "note", "never")
+#: Levels a rule can be set to (``[rule.<id>] level``, ``[paths."GLOB".rule.<id>] level``, ``--level RULE=LEVEL``).
+RULE_LEVELS = ("error", "warning", "note", "off")
 
 #: Shard facts: may differ per path and may be inferred.
 FACTS = ("text_column", "tokens_column", "labels_column", "mask_column", "positions_column", "eos_id", "bos_id",
          "pad_id", "vocab_size", "seq_len", "labels", "ignore_index", "separator", "tokenizer")
 #: Run options: one value for the whole scan.
-OPTIONS = ("only", "skip", "fail_at", "instance_cap", "rule", "html")
+OPTIONS = ("only", "skip", "fail_at", "instance_cap", "rule", "html", "levels", "suppress")
 
 
 
@@ -51,6 +53,9 @@ class Settings:
     instance_cap: int = DEFAULT_INSTANCE_CAP
     rule: dict = field(default_factory=dict)  # per-rule options: {"near-duplicate": {"threshold": 0.8}}
     html: str | None = None  # write the HTML report here (as --html FILE)
+    levels: dict = field(default_factory=dict)  # rule id -> level from --level (over [rule.<id>] level)
+    suppress: tuple = ()  # [[suppress]] entries: {"rule", "path", "kind" (optional), "justification"}
+    path_levels: dict = field(default_factory=dict, repr=False)  # GLOB -> {rule id: level}, [paths."GLOB".rule.<id>]
     path_tables: dict = field(default_factory=dict, repr=False)
     origin: dict = field(default_factory=dict, repr=False)  # key -> "default" | "inferred" | "config" | "flag"
     evidence: dict = field(default_factory=dict, repr=False)  # key -> why an inferred value was chosen
@@ -95,6 +100,7 @@ class Settings:
             raise SettingsError(f"html must be the path of the HTML report to write, got {self.html!r}")
         if not isinstance(self.rule, dict) or not all(isinstance(v, dict) for v in self.rule.values()):
             raise SettingsError("rule options go in tables, e.g. [rule.near-duplicate] threshold = 0.8")
+        _validate_gate(self)
 
     def source(self, key: str) -> str:
         return self.origin.get(key, "default")
@@ -107,7 +113,8 @@ class Settings:
                                 f"{', '.join(FACTS + OPTIONS)}")
         values = dict(values)
         tables = dict(self.path_tables)
-        tables.update(_check_path_tables(values.pop("paths", {}) or {}))
+        paths, path_levels = split_path_levels(values.pop("paths", {}) or {}, self.path_levels)
+        tables.update(_check_path_tables(paths))
         for key in ("only", "skip"):
             if key in values and isinstance(values[key], str):
                 values[key] = tuple(v.strip() for v in values[key].split(",") if v.strip())
@@ -115,8 +122,8 @@ class Settings:
                 if not isinstance(values[key], (list, tuple)):
                     raise SettingsError(f"{key} takes rule ids, e.g. {key} = [\"label-alignment\"], got {values[key]!r}")
                 values[key] = tuple(values[key])
-        new = dataclasses.replace(self, **values, path_tables=tables, origin=dict(self.origin),
-                                  evidence=dict(self.evidence))
+        new = dataclasses.replace(self, **values, path_tables=tables, path_levels=path_levels,
+                                  origin=dict(self.origin), evidence=dict(self.evidence))
         for key in values:
             new.origin[key] = origin
             new.evidence.pop(key, None)
@@ -137,7 +144,7 @@ class Settings:
         return out
 
     def options_for(self, rule_id: str) -> dict:
-        return dict(self.rule.get(rule_id, {}))
+        return {k: v for k, v in self.rule.get(rule_id, {}).items() if k != "level"}  # level: see rule_level
 
     def infer(self, key: str, value, why: str) -> None:
         """Fill an unset fact from the data (never overrides a config or flag value)."""
@@ -206,3 +213,123 @@ def load_settings(config: str | None = None, cwd: str = ".", **facts) -> Setting
     flags), e.g. ``load_settings(eos_id=2, vocab_size=32000)``."""
     data, _ = load_config(config, cwd)
     return build(data, facts)
+
+
+# -- the CI gate: rule levels and suppressions ---------------------------------------------------------------
+
+
+def split_path_levels(tables, known: dict | None = None) -> tuple[dict, dict]:
+    """``[paths."GLOB"]`` tables without their ``rule`` sub-tables, and the levels those give:
+    ``(tables of facts, {GLOB: {rule id: level}})`` (``known``: levels of earlier sources, kept under new ones)."""
+    levels = {pattern: dict(by_rule) for pattern, by_rule in (known or {}).items()}
+    if not isinstance(tables, dict):
+        return tables, levels  # _check_path_tables says what is wrong
+    facts = {}
+    for pattern, values in tables.items():
+        if not isinstance(values, dict) or "rule" not in values:
+            facts[pattern] = values
+            continue
+        values = dict(values)
+        per_rule = values.pop("rule")
+        if not isinstance(per_rule, dict) or not all(isinstance(v, dict) for v in per_rule.values()):
+            raise SettingsError(f'per-path rule levels go in tables, e.g. [paths."{pattern}".rule.exact-duplicate] '
+                                'level = "off"')
+        for rule_id, options in per_rule.items():
+            if set(options) != {"level"}:
+                raise SettingsError(f'[paths."{pattern}".rule.{rule_id}] may only set level (error, warning, note '
+                                    f'or off), not {", ".join(sorted(set(options) - {"level"})) or "nothing"}')
+            _check_level(options["level"], f'[paths."{pattern}".rule.{rule_id}] level')
+            levels.setdefault(pattern, {})[rule_id] = options["level"]
+        facts[pattern] = values
+    return facts, levels
+
+
+def _check_level(value, where: str) -> None:
+    if value not in RULE_LEVELS:
+        raise SettingsError(f"{where} must be one of {', '.join(RULE_LEVELS)}, got {value!r}")
+
+
+SUPPRESS_KEYS = ("rule", "path", "kind", "justification")
+
+
+def _validate_gate(settings: Settings) -> None:
+    """Check rule levels and ``[[suppress]]`` entries (rule ids are checked against the registry when the rules
+    are selected); entries become a tuple of dicts."""
+    for rule_id, options in settings.rule.items():
+        if "level" in options:
+            _check_level(options["level"], f"[rule.{rule_id}] level")
+    if not isinstance(settings.levels, dict):
+        raise SettingsError("levels map rule ids to levels, e.g. --level exact-duplicate=error")
+    for rule_id, level in settings.levels.items():
+        _check_level(level, f"the level of {rule_id}")
+    entries = settings.suppress
+    if isinstance(entries, dict):
+        entries = [entries]
+    if not isinstance(entries, (list, tuple)) or not all(isinstance(e, dict) for e in entries):
+        raise SettingsError('suppressions go in [[suppress]] tables with rule, path and justification, e.g. '
+                            '[[suppress]] rule = "exact-duplicate" path = "mirror/*" justification = "..."')
+    for number, entry in enumerate(entries, 1):
+        where = f"[[suppress]] entry {number}"
+        unknown = set(entry) - set(SUPPRESS_KEYS)
+        if unknown:
+            raise SettingsError(f"{where}: unknown key(s) {', '.join(sorted(unknown))} (known: "
+                                f"{', '.join(SUPPRESS_KEYS)})")
+        for key in ("rule", "path", "justification"):
+            if not isinstance(entry.get(key), str) or not entry[key].strip():
+                what = "a reason, in words" if key == "justification" else "a string"
+                raise SettingsError(f"{where} needs {key} = {what}: every suppression says why it is accepted")
+        if "kind" in entry and (not isinstance(entry["kind"], str) or not entry["kind"]):
+            raise SettingsError(f"{where}: kind must be a finding kind (a string, globs allowed), got "
+                                f"{entry['kind']!r}")
+    settings.suppress = tuple(dict(e) for e in entries)
+
+
+def path_forms(path: str) -> set[str]:
+    """The forms a shard path is matched in (as ``Settings.for_path`` does): as found, normalised, relative to the
+    working directory and absolute, with '/' separators."""
+    forms = {path, os.path.normpath(path), os.path.relpath(path), os.path.abspath(path)} if "://" not in path \
+        else {path}
+    return {form.replace(os.sep, "/") for form in forms}
+
+
+def path_matches(pattern: str, path: str) -> bool:
+    """Whether a ``[paths]`` or ``[[suppress]]`` glob matches a shard path: the glob itself, or a folder and
+    everything under it."""
+    prefix = pattern.rstrip("/") + "/"
+    return any(fnmatch.fnmatch(norm, pattern) or fnmatch.fnmatch(norm, prefix + "*") or norm.startswith(prefix)
+               for norm in path_forms(path))
+
+
+def rule_level(settings: Settings, rule_id: str, path: str | None = None) -> tuple[str | None, str]:
+    """The level set for ``rule_id`` on the shard at ``path`` and where it was set:
+    ``(level or None when none is set, source)``.  Precedence, lowest to highest: ``[rule.<id>] level``, the
+    ``[paths."GLOB".rule.<id>]`` tables that match (in file order), ``--level``."""
+    level, source = None, "default"
+    configured = settings.rule.get(rule_id, {}).get("level")
+    if configured is not None:
+        level, source = configured, f"[rule.{rule_id}]"
+    if path is not None:
+        for pattern, by_rule in settings.path_levels.items():
+            if rule_id in by_rule and path_matches(pattern, path):
+                level, source = by_rule[rule_id], f'[paths."{pattern}".rule.{rule_id}]'
+    if rule_id in settings.levels:
+        level, source = settings.levels[rule_id], "--level"
+    return level, source
+
+
+def rule_off(settings: Settings, rule_id: str) -> bool:
+    """Whether the rule is off for every shard (``level = "off"`` in ``[rule.<id>]`` or ``--level``, and no path
+    table turns it back on): it is then not run at all."""
+    level, _ = rule_level(settings, rule_id)
+    return level == "off" and not any(by_rule.get(rule_id, "off") != "off"
+                                      for by_rule in settings.path_levels.values())
+
+
+def level_rule_ids(settings: Settings) -> set[str]:
+    """Every rule id a level or a suppression names (checked against the registry)."""
+    ids = {rule_id for rule_id, options in settings.rule.items() if "level" in options}
+    ids |= set(settings.levels)
+    for by_rule in settings.path_levels.values():
+        ids |= set(by_rule)
+    ids |= {entry["rule"] for entry in settings.suppress}
+    return ids

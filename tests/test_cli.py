@@ -71,7 +71,7 @@ def test_an_error_finding_exits_1(tmp_path):
     result = invoke("scan", "bad.jsonl", "--only", "unreadable-record", "--jobs", 1)
     assert result.exit_code == 1
     assert result.stderr == ""
-    assert "ERROR unreadable-record [bad.jsonl] 1 instance(s)" in result.stdout
+    assert "ERROR unreadable-record  bad.jsonl: 1 line (first at row 1, char 21): " in result.stdout
     assert result.stdout.splitlines()[-1].startswith("1 error(s), 0 warning(s), 0 note(s); exit 1 (fails at: error)")
     assert invoke("scan", "bad.jsonl", "--jobs", 1).exit_code == 1  # with every rule, too
 
@@ -81,7 +81,7 @@ def test_a_corrupt_shard_is_a_finding_not_a_usage_error(tmp_path):
         fh.write(b"PAR1 and nothing that makes a footer")
     result = invoke("scan", "noise.parquet", "--jobs", 1)
     assert result.exit_code == 1
-    assert "ERROR unreadable-shard [noise.parquet] 1 instance(s)" in result.stdout
+    assert "ERROR unreadable-shard  noise.parquet: 1 file: " in result.stdout
 
 
 def test_a_folder_of_every_kind_of_bad_shard_is_scanned_without_a_traceback(tmp_path):
@@ -243,8 +243,15 @@ def test_sarif_and_json_are_written_and_nothing_else_is_left_behind(tmp_path):
     assert [s["uri"] for s in report["shards"]] == ["data/a.parquet", "data/bad.jsonl"]
     assert [a["location"]["uri"] for a in sarif["runs"][0]["artifacts"]] == ["data/a.parquet", "data/bad.jsonl"]
     assert len(sarif["runs"][0]["results"]) == len(report["findings"]) > 0
-    # The same findings in the text summary: one headline per finding.
-    heads = [line for line in result.stdout.splitlines() if line.split(" ")[0] in ("ERROR", "WARN", "NOTE")]
+    # The same findings in the text summary: one line per finding, each followed by one fix line (no finding of
+    # the same kind in two shards here, so nothing is merged).
+    lines = result.stdout.splitlines()
+    heads = [i for i, line in enumerate(lines) if line.split(" ")[0] in ("ERROR", "WARN", "NOTE")]
+    assert len(heads) == len(report["findings"])
+    assert all(lines[i + 1].startswith("      fix: ") for i in heads)
+    # --format long: one headline per finding, then its full message
+    long = invoke("scan", "data", "--format", "long", "--jobs", 1)
+    heads = [line for line in long.stdout.splitlines() if line.split(" ")[0] in ("ERROR", "WARN", "NOTE")]
     assert len(heads) == len(report["findings"])
 
 
@@ -253,7 +260,10 @@ def test_the_summary_never_breaks_a_word_or_a_rule_id(tmp_path):
     broken_jsonl(name)
     with open(name, "a") as fh:
         fh.write("[1, 2]\n")  # line 5: not an object
-    result = invoke("scan", name, "--json", "r.json", "--jobs", 1)
+    compact = invoke("scan", name, "--jobs", 1)
+    mentions = [line for line in compact.stdout.splitlines() if "a-shard-with" in line]
+    assert mentions and all(name in line for line in mentions)  # the long shard name is never cut
+    result = invoke("scan", name, "--json", "r.json", "--jobs", 1, "--format", "long")
     words = set(result.stdout.split())
     report = json.loads((tmp_path / "r.json").read_text())
     assert report["findings"]

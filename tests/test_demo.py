@@ -83,6 +83,80 @@ def test_the_demo_counts_match_the_shards(tmp_path):
     assert [(i["row"], i["offset"]) for i in f["instances"]] == expected == [(3, 10), (7, 0)]
 
 
+# -- the summary a CI log shows ---------------------------------------------------------------------------------
+
+
+def summary(*extra):
+    result = CliRunner().invoke(main, ["scan", str(DEMO), "--config", str(CONFIG), "--jobs", "1", *extra])
+    return result.stdout.splitlines()
+
+
+def test_the_demo_summary_fits_80_lines_and_names_every_rule_with_a_result(tmp_path):
+    _, report = scan_demo(tmp_path)
+    lines = summary()
+    assert len(lines) == 71 <= 80
+    assert lines[0].startswith("corpuscle ") and lines[1].startswith("Numbering: rows and offsets are 0-based")
+    ruled = sorted({f["rule"] for f in report["findings"]})
+    assert len(ruled) == 13
+    # the table: one row per rule with a result, its findings, instances and shards (from the JSON report)
+    start = lines.index(next(line for line in lines if line.startswith("rule ")))
+    table = {line.split()[0]: line.split() for line in lines[start + 1:start + 1 + len(ruled)]}
+    assert sorted(table) == ruled
+    for rule_id, row in table.items():
+        mine = [f for f in report["findings"] if f["rule"] == rule_id]
+        shards = {f["uri"] for f in mine if f["uri"]} | {i["uri"] for f in mine if not f["uri"] for i in f["instances"]}
+        assert [int(row[2]), int(row[3].replace(",", "")), int(row[4])] == \
+            [len(mine), sum(f["count"] for f in mine), len(shards)], rule_id
+    # every rule with a result has a line of its own after the table, each finding line followed by one fix line
+    heads = [i for i, line in enumerate(lines) if line.split(" ")[0] in ("ERROR", "WARN", "NOTE")]
+    assert {lines[i].split()[1] for i in heads} == set(ruled)
+    for i in heads:
+        follow = lines[i + 1:i + 7]
+        assert any(line.startswith("      fix: ") for line in follow)
+    # truncation-waste in two shards is one line; the 4 + 3 duplicate clusters sit under one line per rule
+    assert sum(1 for i in heads if lines[i].split()[1] == "truncation-waste") == 1
+    assert [lines[i].split()[1] for i in heads].count("exact-duplicate") == 1
+    assert "WARN  exact-duplicate  in 2 shards: 4 findings, 8 copies in all; the 4 largest:" in lines
+    assert f"      2 copies: {DEMO}/notes_mirror.jsonl row 3 = {DEMO}/notes_text.jsonl row 3" in lines
+    assert " @" not in "\n".join(lines)  # locations read "row 3, token 20"
+    # the verdict is last; no corpus figures without --stats
+    assert lines[-1].startswith("9 error(s), 15 warning(s), 1 note(s); exit 1 (fails at: error).")
+    assert "Corpus figures" not in lines and not any(line.startswith("Token budget") for line in lines)
+
+
+def test_stats_adds_the_corpus_figures_and_the_token_budget(tmp_path):
+    _, report = scan_demo(tmp_path)
+    plain, stats = summary(), summary("--stats")
+    budget = report["metrics"]["tokenBudget"]
+    assert stats[-1] == plain[-1].replace(plain[-1].split(";")[0], stats[-1].split(";")[0])
+    assert stats[2:len(plain) - 2] == plain[2:len(plain) - 2]  # the same lines up to the figures (not the timing)
+    block = stats[len(plain) - 2:-2]
+    assert block[:2] == ["", "Corpus figures"]
+    assert f"  rows: {report['metrics']['rows']:,}" in block and f"  tokens: {report['metrics']['tokens']:,}" in block
+    assert (f"Token budget (tokens; seq_len 128; {budget['documents']:,} documents, {budget['documentTokens']:,} "
+            "document tokens)") in block
+    assert (budget["documents"], budget["documentTokens"]) == (700, 32607)
+    assert len(block) == 29  # blank, heading, 19 lines of figures (wrapped at 100 columns), blank, 7 of the budget
+
+
+def test_the_long_format_keeps_every_message_in_full(tmp_path):
+    _, report = scan_demo(tmp_path)
+    long = " ".join(" ".join(summary("--format", "long")).split())
+    for f in report["findings"]:
+        assert " ".join(f["message"].split()) in long
+
+
+def test_the_demo_against_its_own_baseline_is_all_unchanged_and_exits_0(tmp_path):
+    from tests.shards import validate_sarif
+
+    args = ["scan", str(DEMO), "--config", str(CONFIG), "--jobs", "1"]
+    assert CliRunner().invoke(main, [*args, "--sarif", "base.sarif"]).exit_code == 1
+    again = CliRunner().invoke(main, [*args, "--baseline", "base.sarif", "--sarif", "now.sarif"])
+    assert again.exit_code == 0
+    results = validate_sarif(json.loads((tmp_path / "now.sarif").read_text()))["runs"][0]["results"]
+    assert [r["baselineState"] for r in results] == ["unchanged"] * 25
+
+
 # -- the demo's report does not change unless a change says so ---------------------------------------------------
 
 GOLDEN = REPO / "tests" / "data" / "demo-report.json"

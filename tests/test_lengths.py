@@ -288,7 +288,7 @@ def test_text_shard_without_tokenizer_reports_bytes(tmp_path):
     assert not findings(report, "overlong-document")
     notes = [n.message for n in report.notes if n.rule_id == "overlong-document"]
     assert notes and "UTF-8 bytes" in notes[0] and "--tokenizer" in notes[0]
-    summary = text.render(report)
+    summary = text.render(report, stats=True)  # the figures are in the summary only with --stats
     assert "documentBytes: unit bytes" in summary and "Token budget" not in summary
 
 
@@ -320,7 +320,8 @@ def test_budget_in_text_sarif_and_json(tmp_path):
     path = write(tmp_path / "padded.parquet", padded(docs, seq_len))
     report = run(path, eos_id=EOS, pad_id=PAD, only=RULES)
     budget = budget_of(report)
-    summary = text.render(report)
+    assert "Token budget" not in text.render(report)  # the figures are in the summary only with --stats
+    summary = text.render(report, stats=True)
     lines = summary.splitlines()
     start = next(i for i, line in enumerate(lines) if line.startswith("Token budget"))
     section = lines[start:start + 7]

@@ -17,6 +17,7 @@ import time
 from dataclasses import dataclass, field
 from typing import Iterable
 
+from corpuscle import gate
 from corpuscle.engine import split
 from corpuscle.engine.executors import LocalExecutor, shuffle_here
 from corpuscle.engine.infer import infer_from_batch
@@ -28,7 +29,7 @@ from corpuscle.findings import Finding, Level
 from corpuscle.io.batch import Shard, enough_first_records, first_records, is_integer_list
 from corpuscle.io.sources import absolute, discover, open_shard
 from corpuscle.rules.api import CorpusResult, Rule, ShardState, Unmergeable, check_kind, inferred_by
-from corpuscle.settings import Settings, SettingsError
+from corpuscle.settings import Settings, SettingsError, level_rule_ids, load_settings, rule_off
 
 log = logging.getLogger(__name__)
 
@@ -72,25 +73,63 @@ class Report:
     #: Extra outputs of the rules' ``corpus`` step by name (e.g. ``"drop-list"``); when several rules give the same
     #: name, their lists are concatenated in rule order (entries may repeat; the writer of each output decides).
     outputs: dict[str, list] = field(default_factory=dict)
+    #: The ``[[suppress]]`` entries and how many findings each matched: ``[{"entry": {...}, "matched": n}]``.
+    suppressions: list[dict] = field(default_factory=list)
+    #: The baseline compared with (``--baseline``): ``{"path", "guid"}``, or None.
+    baseline: dict | None = None
 
     def worst(self) -> Level | None:
-        return max((f.level for f in self.findings), default=None)
+        return max((f.level for f in self.findings if f.baseline_state != "absent"), default=None)
 
     @property
     def exit_code(self) -> int:
-        """0 when no finding is at or above ``fail_at``; 1 when one is."""
+        """0 when no finding is at or above ``fail_at``; 1 when one is.  Suppressed findings do not count, and with
+        a baseline only new and updated ones do."""
         threshold = self.settings.fail_level if self.settings else Level.error
         if threshold is None:
             return 0
-        return int(any(f.level >= threshold for f in self.findings))
+        return int(any(f.level >= threshold for f in self.findings if f.gating))
+
+    def compare(self, baseline: "str | dict") -> "Report":
+        """Compare with an earlier SARIF log (a path, or :func:`corpuscle.gate.load_baseline`'s result): every
+        finding gets its SARIF ``baselineState``, and the earlier results that are gone are added as ``absent``."""
+        baseline = gate.load_baseline(baseline) if isinstance(baseline, str) else baseline
+        self.findings = gate.compare(self.findings, baseline)
+        self.baseline = {"path": baseline["path"], "guid": baseline["guid"]}
+        return self
+
+    # -- writing the report (each file atomically) ---------------------------------------------------------------
+    def write_sarif(self, path: str) -> None:
+        """Write the SARIF 2.1.0 log to ``path``."""
+        from corpuscle.report import sarif, write_atomic
+
+        write_atomic(path, sarif.render(self))
+
+    def write_json(self, path: str) -> None:
+        """Write the plain JSON report to ``path``."""
+        from corpuscle.report import json as json_report
+        from corpuscle.report import write_atomic
+
+        write_atomic(path, json_report.render(self))
+
+    def write_text(self, path: str | None = None, stats: bool = False, long: bool = False) -> str:
+        """The text summary (``long``: the full prose of every finding; ``stats``: with the corpus figures and the
+        token budget); written to ``path`` when given, and returned."""
+        from corpuscle.report import text, write_atomic
+
+        out = text.render(self, stats=stats, long=long)
+        if path is not None:
+            write_atomic(path, out.encode())
+        return out
 
 
 def select_rules(settings: Settings, available: dict[str, type[Rule]]) -> list[Rule]:
     """Instantiate the rules to run: all, less ``skip``, or only ``only``; options from the settings."""
-    for name in settings.only + settings.skip + tuple(settings.rule):
+    for name in settings.only + settings.skip + tuple(settings.rule) + tuple(sorted(level_rule_ids(settings))):
         if name not in available:
             raise SettingsError(f"unknown rule {name!r}; `corpuscle rules` lists them: {', '.join(available)}")
-    ids = [i for i in available if (not settings.only or i in settings.only) and i not in settings.skip]
+    ids = [i for i in available if (not settings.only or i in settings.only) and i not in settings.skip
+           and not rule_off(settings, i)]
     rules = []
     for rule_id in ids:
         try:
@@ -479,7 +518,13 @@ def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], se
                 f.evidence["sampleEstimate"] = estimate
         notes.append(Note(Level.note, _sample_note(sampled)))
     findings.sort(key=Finding.sort_key)
-    return Report(findings, [r.shard for r in results], rules, metrics, notes, settings, outputs)
+    findings, suppressions = gate.apply(findings, settings, rules, [r.shard for r in results])
+    for record in suppressions:
+        if not record["matched"]:
+            entry = gate.describe_suppression(record["entry"])
+            notes.append(Note(Level.note, f"stale suppression: [[suppress]] {entry} matched no finding in this run; "
+                                          "remove it if the defect is gone", record["entry"]["rule"]))
+    return Report(findings, [r.shard for r in results], rules, metrics, notes, settings, outputs, suppressions)
 
 
 def _sample_note(sampled: dict) -> str:
@@ -527,16 +572,26 @@ def _inferred_notes(results: list[ShardResult]) -> list[Note]:
 
 
 def scan(paths: Iterable[str] | str, settings: Settings | None = None, jobs: int = 1,
-         progress=None, sample: Sample | None = None) -> Report:
+         progress=None, sample: Sample | None = None, *, config: str | None = None,
+         baseline: str | None = None) -> Report:
     """Public entry point for a data-prep job: find shards under ``paths``, run all selected rules, return the report.
 
-    Raises :class:`corpuscle.io.sources.NoShardsFound` or :class:`corpuscle.settings.SettingsError` for usage problems.
+    Without ``settings``, the settings are read as the command line reads them: the file ``config``, else
+    ``corpuscle.toml`` or ``[tool.corpuscle]`` in ``pyproject.toml`` in the working directory (see
+    :func:`corpuscle.load_settings`).  ``baseline`` is an earlier SARIF log to compare with (``--baseline``).
+    Raises :class:`corpuscle.io.sources.NoShardsFound`, :class:`corpuscle.settings.SettingsError` or
+    :class:`corpuscle.gate.BaselineError` for usage problems.
     """
     from corpuscle.engine.registry import registry
 
     if isinstance(paths, (str, os.PathLike)):
         paths = [os.fspath(paths)]
-    settings = settings or Settings()
+    if settings is not None and config is not None:
+        raise SettingsError("give settings or config, not both: load_settings(config=..., **facts) reads the file "
+                            "and takes facts")
+    settings = settings if settings is not None else load_settings(config)
     rules = select_rules(settings, registry())
     shards = discover(list(paths))
-    return run(shards, settings, rules, jobs=jobs, progress=progress, sample=sample)
+    old = gate.load_baseline(baseline) if baseline is not None else None
+    report = run(shards, settings, rules, jobs=jobs, progress=progress, sample=sample)
+    return report.compare(old) if old is not None else report

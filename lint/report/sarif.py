@@ -2,6 +2,8 @@
 result whose ``properties`` carry the count, the instances (row, offset) and the rule's evidence."""
 from __future__ import annotations
 
+import hashlib
+import uuid
 from urllib.parse import quote
 
 import orjson
@@ -42,22 +44,55 @@ def _location(finding: Finding, artifact_index: dict[str, int]) -> list[dict]:
     return locations
 
 
+def _message(finding: Finding) -> str:
+    """The finding's message; where the result has a region, what its line is in the 0-based row numbering."""
+    if finding.start_line is None or not finding.uri:
+        return finding.message
+    row = finding.start_line - 1
+    return (f"{finding.message} First affected record: row {row:,} (0-based, as in properties.instances) = "
+            f"line {finding.start_line:,} of the file (1-based, region.startLine).")
+
+
 def _result(finding: Finding, rule_index: dict[str, int], artifact_index: dict[str, int]) -> dict:
-    properties = {"count": finding.count, "instances": finding.instances()}
+    properties = {"count": finding.count, "kind": finding.kind, "instances": finding.instances()}
     if finding.truncated:
         properties["instancesTruncated"] = True
     properties.update(finding.evidence)
+    if finding.rule_level is not None:
+        properties["ruleLevel"] = finding.rule_level.name  # the level the rule gave before a configured one
+    if finding.caused_by:
+        properties["rootCause"] = finding.caused_by  # the partial fingerprint of the result naming the cause
+    if finding.explains:
+        properties["explains"] = list(finding.explains)
     result = {
         "ruleId": finding.rule_id,
         "level": finding.level.name,
-        "message": {"text": finding.message},
+        "message": {"text": _message(finding)},
         "locations": _location(finding, artifact_index),
         "partialFingerprints": {"corpuscleFinding/v1": finding.fingerprint},
         "properties": properties,
     }
     if finding.rule_id in rule_index:
         result["ruleIndex"] = rule_index[finding.rule_id]
+    if finding.suppression is not None:
+        result["suppressions"] = [{"kind": "external", "justification": finding.suppression}]
+    if finding.baseline_state is not None:
+        result["baselineState"] = finding.baseline_state
     return result
+
+
+def _overrides(report, rule_index: dict[str, int]) -> list[dict]:
+    """SARIF ruleConfigurationOverrides: the levels set for a whole run (``[rule.<id>] level``, ``--level``) of the
+    rules that ran; levels set per path show only in the results' levels."""
+    from corpuscle.settings import rule_level
+
+    out = []
+    for rule in report.rules:
+        level, _ = rule_level(report.settings, rule.id) if report.settings else (None, "")
+        if level not in (None, "off") and level != rule.level.name:
+            out.append({"descriptor": {"id": rule.id, "index": rule_index[rule.id]},
+                        "configuration": {"level": level}})
+    return out
 
 
 def _notification(note) -> dict:
@@ -69,10 +104,29 @@ def _notification(note) -> dict:
     return out
 
 
+def run_guid(report) -> str:
+    """The run's ``automationDetails.guid`` (which a later run's ``baselineGuid`` names): a name-based UUID of what
+    the run scanned and found, so that the same scan of the same data writes the same report byte for byte."""
+    digest = hashlib.sha256(__version__.encode())
+    for shard in report.shards:
+        digest.update(f"\x1e{shard.uri}\x1f{shard.length}".encode())
+    for f in report.findings:
+        digest.update(f"\x1e{f.fingerprint}\x1f{f.level.name}\x1f{f.count}\x1f{f.baseline_state}".encode())
+        digest.update(f.rows.tobytes() + f.offsets.tobytes())
+    return str(uuid.uuid5(uuid.NAMESPACE_URL, "corpuscle-run:" + digest.hexdigest()))
+
+
 def to_sarif(report) -> dict:
     rule_index = {rule.id: i for i, rule in enumerate(report.rules)}
     artifact_index = {shard.uri: i for i, shard in enumerate(report.shards)}
     # A finding of a rule not selected (cannot happen for built-ins) still needs its id in the driver.
+    invocation = {
+        "executionSuccessful": not any(n.level.name == "error" for n in report.notes),
+        "toolExecutionNotifications": [_notification(n) for n in report.notes],
+    }
+    overrides = _overrides(report, rule_index)
+    if overrides:
+        invocation["ruleConfigurationOverrides"] = overrides
     run = {
         "tool": {"driver": {
             "name": "corpuscle",
@@ -81,13 +135,13 @@ def to_sarif(report) -> dict:
             "rules": [_rule_entry(rule) for rule in report.rules],
         }},
         "artifacts": [{"location": {"uri": artifact_uri(s.uri)}, "length": s.length} for s in report.shards],
-        "invocations": [{
-            "executionSuccessful": not any(n.level.name == "error" for n in report.notes),
-            "toolExecutionNotifications": [_notification(n) for n in report.notes],
-        }],
+        "invocations": [invocation],
+        "automationDetails": {"guid": run_guid(report)},
         "results": [_result(f, rule_index, artifact_index) for f in report.findings],
         "properties": {"metrics": report.metrics},
     }
+    if report.baseline is not None:
+        run["baselineGuid"] = report.baseline["guid"]
     return {"$schema": SCHEMA_URI, "version": "2.1.0", "runs": [run]}
 
 

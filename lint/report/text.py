@@ -1,11 +1,18 @@
-"""The readable summary printed on stdout: findings most severe first, each with its count, evidence, first
-locations and fix; then the corpus figures, what was inferred or skipped, and the verdict."""
+"""The readable summary printed on stdout.
+
+The default (:func:`render`) fits a CI log: a header and the numbering legend, a table of counts per rule, then one
+line per finding (level, rule, where, what, in the unit of its count) each followed by one ``fix:`` line -- root
+causes first, the same kind of finding in several shards merged into one line, at most the five largest clusters of
+a rule's findings across shards -- then suppressions, the baseline, notes, and the verdict last.  ``--stats`` adds
+the corpus figures and the token budget (always in SARIF and JSON).  ``long=True`` gives every finding's full prose
+(``--format long``)."""
 from __future__ import annotations
 
 import re
 import textwrap
 
 from corpuscle.findings import Level
+from corpuscle.report import units
 from corpuscle.version import __version__
 
 WIDTH = 100
@@ -30,16 +37,9 @@ def _wrap(text: str, indent: str) -> list[str]:
 
 
 def _locations(finding) -> str:
-    shown = []
-    for inst in finding.instances()[:SHOW_LOCATIONS]:
-        where = f"row {inst['row']}"
-        if "offset" in inst:
-            where += f" @{inst['offset']}"
-        if "uri" in inst and finding.uri is None:
-            where = f"{inst['uri']} {where}"
-        shown.append(where)
+    shown = [units.where(finding, inst) for inst in finding.instances()[:SHOW_LOCATIONS]]
     more = finding.count - len(shown)
-    return ", ".join(shown) + (f" (+{more:,} more)" if more > 0 else "")
+    return "; ".join(shown) + (f" (+{more:,} more)" if more > 0 else "")
 
 
 #: Corpus figures with a section of their own instead of a line among the others.
@@ -116,17 +116,24 @@ def _estimate_line(estimate: dict) -> list[str]:
     return _wrap(text, "      ")
 
 
-def render(report) -> str:
+def render_long(report, stats: bool = False) -> str:
+    """Every finding in full prose, wrapped at 100 columns (``--format long``)."""
     m = report.metrics
     sample = m.get("sample") if isinstance(m.get("sample"), dict) else None
     head = "SAMPLE of " if sample else ""
     scanned = " scanned" if sample else ""
     out = [f"corpuscle {__version__}: {head}{m.get('shards', 0):,} shard(s), {m.get('rows', 0):,} rows, "
            f"{m.get('tokens', 0):,} tokens{scanned}, {m.get('seconds', 0):.2f} s", ""]
+    out += _wrap(LEGEND, "") + [""]
     for f in report.findings:
         where = f.uri or "across shards"
-        out.append(f"{MARK[f.level]} {f.rule_id} [{where}] {f.count:,} instance(s)")
+        state = f" ({_state(f)})" if _state(f) else ""
+        out.append(f"{MARK[f.level]} {f.rule_id} [{where}] {counted(f.count, units.unit(f))}{state}")
         out += _wrap(f.message, "      ")
+        if f.explains:
+            out += _wrap(f"cause of the next {len(f.explains)} finding(s): fix this first.", "      ")
+        if f.caused_by:
+            out += _wrap("same cause as the root-cause finding above it.", "      ")
         if f.count and f.rows.size:
             out += _wrap("at: " + _locations(f), "      ")
         if isinstance(f.evidence.get("sampleEstimate"), dict):
@@ -134,10 +141,8 @@ def render(report) -> str:
         out.append("")
     if not report.findings:
         out += ["No findings.", ""]
-    out.append("Corpus figures")
-    out += _metric_lines(m)
-    if isinstance(m.get("tokenBudget"), dict):
-        out += [""] + _budget_lines(m["tokenBudget"])
+    if stats:
+        out += _stats_lines(m)
     notes = [n for n in report.notes if n.level != Level.note or not n.message.startswith("skipped")]
     skipped = [n for n in report.notes if n.level == Level.note and n.message.startswith("skipped")]
     if notes:
@@ -157,8 +162,322 @@ def render(report) -> str:
         for (why, uris), rule_ids in rules_of.items():
             where = uris[0] if len(uris) == 1 else f"{len(uris)} shards"
             out += _wrap(f"{', '.join(rule_ids)}: {why} ({where})", "  ")
-    counts = {lvl: sum(1 for f in report.findings if f.level == lvl) for lvl in Level}
+    tail = _suppression_lines(report) + _baseline_line(report)
+    if tail:
+        out += [""] + tail
+    out += ["", _verdict(report)]
+    return "\n".join(out) + "\n"
+
+
+# -- the compact summary (the default) ---------------------------------------------------------------------------
+
+LEGEND = ("Numbering: rows and offsets are 0-based — row = record index in its shard in file order (JSON Lines: the "
+          "line index, blank lines included), token = token index in the row, char = character index in the text "
+          "(SARIF region.startLine alone is 1-based).")
+#: Widest a finding's line gets before its text is cut (the shard names are never cut; SARIF/JSON keep everything).
+LINE = 240
+#: Findings of one rule across shards (clusters) shown before the rest are summed up.
+CLUSTERS = 5
+#: Imperative first words that start the fix in a rule's message (when the finding has no ``fix`` of its own).
+FIX_VERBS = {"add", "append", "accept", "check", "concatenate", "correct", "decode", "deduplicate", "drop", "emit",
+             "filter", "fix", "give", "keep", "lower", "make", "mark", "move", "normalise", "normalize", "pack",
+             "raise", "rebuild", "regenerate", "remove", "repair", "replace", "run", "set", "shift", "skip", "split",
+             "store", "strip", "tokenize", "train", "truncate", "use", "write", "if"}
+
+
+def counted(n: int, unit: str) -> str:
+    """'1 row', '3 rows', '1 document boundary', '2 copies'."""
+    if n == 1 and unit.endswith("ies"):
+        unit = unit[:-3] + "y"
+    elif n == 1 and unit.endswith("s") and not unit.endswith("ss"):
+        unit = unit[:-1]
+    return f"{n:,} {unit}"
+
+
+def _state(f) -> str:
+    parts = ["suppressed"] if f.suppression is not None else []
+    if f.baseline_state is not None:
+        parts.append(f.baseline_state)
+        if f.baseline_state == "updated" and isinstance(f.evidence.get("baselineCount"), int):
+            parts[-1] += f" from {f.evidence['baselineCount']:,}"
+    if f.rule_level is not None:
+        parts.append(f"set from {f.rule_level.name}")
+    return ", ".join(parts)
+
+
+def _stats_lines(m: dict) -> list[str]:
+    out = ["", "Corpus figures"] + _metric_lines(m)
+    if isinstance(m.get("tokenBudget"), dict):
+        out += [""] + _budget_lines(m["tokenBudget"])
+    return out
+
+
+def _in_force(report) -> list:
+    """The findings that stand in this run: not suppressed, not absent since the baseline."""
+    return [f for f in report.findings if f.suppression is None and f.baseline_state != "absent"]
+
+
+def _verdict(report) -> str:
+    standing = _in_force(report)
+    counts = {lvl: sum(1 for f in standing if f.level == lvl) for lvl in Level}
     fail_at = report.settings.fail_at if report.settings else "error"
-    out += ["", f"{counts[Level.error]} error(s), {counts[Level.warning]} warning(s), {counts[Level.note]} note(s); "
-                f"exit {report.exit_code} (fails at: {fail_at}). `corpuscle explain RULE` says how to fix each."]
+    extra = []
+    suppressed = sum(1 for f in report.findings if f.suppression is not None)
+    if suppressed:
+        extra.append(f"{suppressed} suppressed")
+    if report.baseline is not None:
+        gating = sum(1 for f in standing if f.gating)
+        extra.append(f"{gating} new or updated since the baseline")
+    more = f", {', '.join(extra)}" if extra else ""
+    return (f"{counts[Level.error]} error(s), {counts[Level.warning]} warning(s), {counts[Level.note]} note(s){more}; "
+            f"exit {report.exit_code} (fails at: {fail_at}). `corpuscle explain RULE` says how to fix each.")
+
+
+_SENTENCE = re.compile(r"(?<=[.!?])\s+(?=[A-Z(])")
+
+
+def _sentences(text: str) -> list[str]:
+    return [s.strip() for s in _SENTENCE.split(text.strip()) if s.strip()]
+
+
+def _drop_asides(text: str) -> str:
+    """The text without its parenthesised asides (outermost pairs), spaces tidied."""
+    out, depth = [], 0
+    for i, ch in enumerate(text):
+        if ch == "(" and (depth or i == 0 or text[i - 1].isspace()):  # "line(s)" is a word, not an aside
+            depth += 1
+        elif ch == ")" and depth:
+            depth -= 1
+        elif not depth:
+            out.append(ch)
+    return re.sub(r"\s+([,;:.])", r"\1", re.sub(r"\s{2,}", " ", "".join(out))).strip()
+
+
+def split_message(finding, rule=None) -> tuple[str, str]:
+    """A finding's message as (what is wrong, how to fix it): the first sentence without its asides, and the
+    finding's own ``fix`` -- or the sentences of the message from the first that starts with an imperative verb
+    (up to an aside in parentheses) -- or the first sentence of the rule's help."""
+    sentences = _sentences(finding.message)
+    what = _drop_asides(sentences[0]) if sentences else ""
+    fix = finding.fix
+    if not fix:
+        for i, sentence in enumerate(sentences[1:], 1):
+            first = re.split(r"[\s,]", sentence, maxsplit=1)[0].lower()
+            if first in FIX_VERBS or first.startswith("re-"):
+                rest = [s for s in sentences[i:] if not s.startswith("(")]
+                fix = " ".join(rest[:2])
+                break
+    if not fix and rule is not None and rule.help:
+        fix = _sentences(rule.help)[0]
+    return what, fix or "see `corpuscle explain " + finding.rule_id + "`"
+
+
+def _clip(text: str, room: int) -> str:
+    room = max(room, 100)
+    if len(text) <= room:
+        return text
+    cut = text[:room - 1].rsplit(" ", 1)[0].rstrip(",;:")
+    return cut + " …"
+
+
+def _short(uris: list, n: int = 3) -> str:
+    """The first ``n`` shard names, and how many more."""
+    return ", ".join(uris[:n]) + (f" +{len(uris) - n} more" if len(uris) > n else "")
+
+
+def _finding_line(f, group: list, rules: dict, causes: dict[str, str], rule_of: dict[str, str]) -> list[str]:
+    """The line of one finding (or of the same kind of finding in several shards) and its fix line; ``causes``:
+    the rule id of each root-cause finding by fingerprint, ``rule_of``: the rule id of every finding shown."""
+    what, fix = split_message(f, rules.get(f.rule_id))
+    count = sum(g.count for g in group)
+    if len(group) > 1:
+        where = f"in {len(group)} shards ({_short([g.uri for g in group])})"
+        what = f"in the first: {what}"
+    else:
+        where = f.uri or "across shards"
+    first = f.instances()[:1]
+    whole = units.unit(f) in ("shard", "shards", "file", "files")  # a finding about the whole shard: no location
+    at = f" (first at {units.where(f, first[0])})" if first and len(group) == 1 and f.uri and not whole else ""
+    state = f" [{_state(f)}]" if _state(f) else ""
+    head = f"{MARK[f.level]} {f.rule_id}  {where}: {counted(count, units.unit(f))}{_estimate(f)}{at}{state}: "
+    lines = [head + _clip(what, LINE - len(head))]
+    if f.caused_by and f.caused_by in causes:
+        lines.append(f"      fix: same cause as the {causes[f.caused_by]} finding above: fix that first.")
+    else:
+        lines.append(f"      fix: {fix}")
+    if f.explains:
+        named = sorted({rule_of[e] for e in f.explains if e in rule_of})
+        lines.append(f"      cause of: {len(f.explains)} finding(s) below ({', '.join(named)})")
+    return lines
+
+
+def _estimate(f) -> str:
+    """A sampled scan's estimate for the finding, short: the share of rows with its 95% interval, or the count in
+    all."""
+    estimate = f.evidence.get("sampleEstimate")
+    if not isinstance(estimate, dict):
+        return ""
+    if "share" in estimate:
+        return (f" in the sample ({_pct(100 * estimate['share'])} of rows scanned, 95% CI "
+                f"{_pct(100 * estimate['ci95Low'])} to {_pct(100 * estimate['ci95High'])})")
+    if "estimatedCount" in estimate:
+        return f" in the sample (about {_num(estimate['estimatedCount'])} in all, a ratio estimate)"
+    return " in the sample"
+
+
+def _table(findings: list) -> list[str]:
+    """Counts per rule: findings, instances (in the rule's units), shards affected, worst level."""
+    rows: dict[str, dict] = {}
+    for f in findings:
+        row = rows.setdefault(f.rule_id, {"level": f.level, "findings": 0, "count": 0, "shards": set(), "units": set()})
+        row["level"] = max(row["level"], f.level)
+        row["findings"] += 1
+        row["count"] += f.count
+        row["units"].add(units.unit(f))
+        row["shards"] |= {f.uri} if f.uri else set(f.instance_uris or [])
+    if not rows:
+        return []
+    width = max(len("rule"), *(len(r) for r in rows))
+    out = [f"{'rule'.ljust(width)}  level    findings    count  shards  counted in"]
+    for rule_id, row in rows.items():
+        unit = ", ".join(sorted(row["units"]))
+        out.append(f"{rule_id.ljust(width)}  {row['level'].name.ljust(7)}  {row['findings']:>8,}  {row['count']:>7,}  "
+                   f"{len(row['shards']):>6,}  {unit}")
+    return out
+
+
+def _groups(findings: list) -> list[list]:
+    """Findings to print: one group per finding, except the same rule, kind and level in several shards (merged)."""
+    groups: list[list] = []
+    index: dict[tuple, list] = {}
+    for f in findings:
+        if f.uri is None or f.caused_by or f.explains:
+            groups.append([f])
+            continue
+        key = (f.rule_id, f.kind, f.level, f.baseline_state, f.rule_level)
+        if key in index:
+            index[key].append(f)
+        else:
+            index[key] = [f]
+            groups.append(index[key])
+    return groups
+
+
+def _cluster_lines(rule_id: str, clusters: list, rules: dict) -> list[str]:
+    """Many findings of one rule, each of its own kind (duplicate clusters, within or across shards): a headline,
+    the largest few, the count of the rest, one fix line."""
+    clusters = sorted(clusters, key=lambda f: -f.count)
+    first = clusters[0]
+    shards = {u for f in clusters for u in ([f.uri] if f.uri else f.instance_uris or [])}
+    total = sum(f.count for f in clusters)
+    unit = units.unit(first)
+    level = max(f.level for f in clusters)
+    state = f" [{_state(first)}]" if all(_state(f) == _state(first) for f in clusters) and _state(first) else ""
+    where = f"in {len(shards)} shards" if len(shards) > 1 else f"in {next(iter(shards), 'no shard')}"
+    out = [f"{MARK[level]} {rule_id}  {where}: {len(clusters):,} findings, {counted(total, unit)} in all{state}; "
+           f"the {min(len(clusters), CLUSTERS)} largest:"]
+    for f in clusters[:CLUSTERS]:
+        places = " = ".join(units.where(f, inst) for inst in f.instances()[:3])
+        if f.uri and len(shards) > 1:
+            places = f"{f.uri} {places}"
+        more = f" (+{f.count - 3:,} more)" if f.count > 3 else ""
+        tag = f" [{_state(f)}]" if _state(f) and not state else ""
+        out.append(f"      {counted(f.count, unit)}: {places}{more}{tag}")
+    if len(clusters) > CLUSTERS:
+        rest = clusters[CLUSTERS:]
+        out.append(f"      and {len(rest):,} more findings ({counted(sum(f.count for f in rest), unit)}), listed in "
+                   "the SARIF/JSON report")
+    _, fix = split_message(first, rules.get(rule_id))
+    out.append(f"      fix: {fix}")
+    return out
+
+
+def _note_lines(report) -> list[str]:
+    out = []
+    skipped: dict[tuple, list] = {}
+    for n in report.notes:
+        if n.level == Level.note and n.message.startswith("skipped"):
+            skipped.setdefault((n.message[len("skipped: "):], n.rule_id), []).append(n.uri)
+            continue
+        prefix = f"[{n.rule_id}] " if n.rule_id else ""
+        out.append(f"{n.level.name}: {prefix}{n.message}")
+    by_reason: dict[tuple, list] = {}
+    for (why, rule_id), uris in skipped.items():
+        by_reason.setdefault((why, tuple(uris)), []).append(rule_id)
+    for (why, uris), rule_ids in by_reason.items():
+        where = uris[0] if len(uris) == 1 else f"{len(uris)} shards"
+        out.append(f"skipped {', '.join(rule_ids)} in {where}: {why}")
+    return out
+
+
+def _baseline_line(report) -> list[str]:
+    if report.baseline is None:
+        return []
+    states = {}
+    for f in report.findings:
+        states[f.baseline_state] = states.get(f.baseline_state, 0) + 1
+    counts = ", ".join(f"{states.get(s, 0)} {s}" for s in ("new", "updated", "unchanged", "absent"))
+    out = [f"Baseline {report.baseline['path']}: {counts} (only new and updated results count for the exit status)"]
+    gone = [f for f in report.findings if f.baseline_state == "absent"]
+    if gone:
+        names = [f"{f.rule_id} in {f.uri or 'several shards'}" for f in gone[:CLUSTERS]]
+        more = f" +{len(gone) - CLUSTERS} more" if len(gone) > CLUSTERS else ""
+        out.append(f"  absent now (gone since the baseline): {', '.join(names)}{more}")
+    return out
+
+
+def _suppression_lines(report) -> list[str]:
+    out = []
+    from corpuscle.gate import describe_suppression
+
+    for record in report.suppressions:
+        if record["matched"]:
+            out.append(f"SUPPRESSED {record['matched']} result(s) of {describe_suppression(record['entry'])}: "
+                       f"{record['entry']['justification']}")
+    return out
+
+
+def render(report, stats: bool = False, long: bool = False) -> str:
+    """The summary: compact (the default), or every finding's full prose with ``long``; the corpus figures and the
+    token budget only with ``stats``."""
+    if long:
+        return render_long(report, stats)
+    m = report.metrics
+    sample = m.get("sample") if isinstance(m.get("sample"), dict) else None
+    head = "SAMPLE of " if sample else ""
+    scanned = " scanned" if sample else ""
+    out = [f"corpuscle {__version__}: {head}{m.get('shards', 0):,} shard(s), {m.get('rows', 0):,} rows, "
+           f"{m.get('tokens', 0):,} tokens{scanned}, {m.get('seconds', 0):.2f} s", LEGEND]
+    standing = _in_force(report)
+    rules = {rule.id: rule for rule in report.rules}
+    rule_of = {f.fingerprint: f.rule_id for f in standing}
+    if standing:
+        out += [""] + _table(standing) + [""]
+    else:
+        out += ["", "No findings."]
+    causes = {f.fingerprint: f.rule_id for f in standing if f.explains}
+    groups = _groups(standing)
+    # A rule with many findings of a kind each (duplicate clusters), or several across shards, gets one block.
+    singles: dict[str, list] = {}
+    for group in groups:
+        f = group[0]
+        if len(group) == 1 and not f.explains and not f.caused_by:
+            singles.setdefault(f.rule_id, []).append(f)
+    blocks = {rule_id for rule_id, found in singles.items()
+              if len(found) > CLUSTERS or sum(1 for f in found if f.uri is None) > 1}
+    shown = set()
+    for group in groups:
+        f = group[0]
+        if f.rule_id in blocks and len(group) == 1 and any(f is g for g in singles[f.rule_id]):
+            if f.rule_id not in shown:
+                shown.add(f.rule_id)
+                out += _cluster_lines(f.rule_id, singles[f.rule_id], rules)
+            continue
+        out += _finding_line(f, group, rules, causes, rule_of)
+    tail = _suppression_lines(report) + _baseline_line(report) + _note_lines(report)
+    if tail:
+        out += [""] + tail
+    if stats:
+        out += _stats_lines(m)
+    out += ["", _verdict(report)]
     return "\n".join(out) + "\n"
