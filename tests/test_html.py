@@ -263,10 +263,10 @@ def test_the_demo_report_names_every_rule_with_a_result_and_draws_its_figures(tm
         assert sizes["counts"] == [sum(1 for c in counts if a <= c < b) for a, b in zip(edges[:-1], edges[1:])]
     assert m["exactDuplicateClusterSizes"]["clusters"] == m["exactDuplicates"]["groups"]
     assert m["nearDuplicateClusterSizes"]["clusters"] == m["nearDuplicates"]["clusters"]
-    # Every finding's first location is shown as in the text summary: row and @offset, 0-based.
+    # Every finding's first location is shown as in the text summary: 'row 3, token 20', both 0-based.
     first = next(f for f in report["findings"] if f["rule"] == "token-range")
     inst = first["instances"][0]
-    assert f"row {inst['row']:,} @{inst['offset']:,}" in text
+    assert f"row {inst['row']:,}, token {inst['offset']:,}" in text
     # The inferred facts with their evidence, the settings in force, the version.
     assert 'id="inferred"' in text and "most common row length" in text
     assert re.search(r"<code>eos_id</code></td><td><code>2</code></td><td>config</td>", text)

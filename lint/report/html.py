@@ -16,7 +16,7 @@ import math
 from html import escape
 
 from corpuscle.findings import Level
-from corpuscle.report import svg
+from corpuscle.report import svg, units
 from corpuscle.settings import FACTS
 from corpuscle.version import __version__
 
@@ -124,17 +124,12 @@ def _verdict(report) -> str:
 
 
 def _locations(finding) -> str:
-    rows = finding.rows[:LOCATIONS_SHOWN].tolist()
-    offsets = finding.offsets[:LOCATIONS_SHOWN].tolist()
-    uris = finding.instance_uris[:LOCATIONS_SHOWN] if finding.instance_uris is not None else None
     shown = []
-    for i, (row, offset) in enumerate(zip(rows, offsets)):
-        where = f"row {row:,}" + (f" @{offset:,}" if offset >= 0 else "")
-        if uris is not None and finding.uri is None:
-            where = f"{uris[i]} {where}"
+    for instance in finding.instances()[:LOCATIONS_SHOWN]:
+        where = units.where(finding, instance)  # "row 3, token 20", as the text summary writes it
         shown.append(f'<span class="loc">{escape(where)}</span>')
     more = finding.count - len(shown)
-    text = ", ".join(shown)
+    text = "; ".join(shown)
     if more > 0 and shown:
         text += f' <span class="more">(+{more:,} more)</span>'
     return text or '<span class="more">whole shard</span>'
@@ -172,7 +167,7 @@ def _findings(report) -> str:
     cols = ('<colgroup><col style="width:72px"><col style="width:19%"><col style="width:88px"><col>'
             '<col style="width:25%"></colgroup>')
     head = cols + ('<thead><tr><th>level</th><th>shard</th><th class="num">instances</th><th>what is wrong</th>'
-            '<th>first locations (row and @token offset, both 0-based)</th></tr></thead>')
+            '<th>first locations (row, token or character offset; both 0-based)</th></tr></thead>')
     return f'<table id="findings" class="findings">{head}{"".join(body)}</table>'
 
 
@@ -462,8 +457,8 @@ def render(report) -> bytes:
         '<a href="#heat-section">per shard and rule</a> · <a href="#facts">inferred, skipped, noted</a> · '
         '<a href="#settings-section">settings</a> · <a href="#run-section">run</a></nav>',
         '<h2 id="findings-section">Findings by rule and level</h2>',
-        "<p>Rows and token offsets are 0-based (row = the record's index in the shard in file order; @offset = the "
-        "token index in that row, or the character offset for rules on raw text).</p>",
+        "<p>Rows and offsets are 0-based: row = the record's index in the shard in file order (for JSON Lines the "
+        "line index), token = the token index in that row, char = the character offset for rules on raw text.</p>",
         _findings(report),
         '<h2 id="plots">Distributions</h2>',
         "<p>Drawn from the report's corpus figures (the same numbers as in the JSON and SARIF metrics).</p>",
