@@ -91,10 +91,15 @@ def repair(paths: list[str] | str, out: str, settings: Settings | None = None, f
     check_shards_outside(out, shards)
     names = output_names(paths, shards)
     available = registry()
-    rules = [available[fix](**settings.options_for(fix)) for fix in requested if fix in available]
+    # a repack needs to know where documents are: the separator rule says whether a shard shows them
+    scanned = requested + (("missing-separator",) if repack and "missing-separator" not in requested else ())
+    rules = [available[fix](**settings.options_for(fix)) for fix in scanned if fix in available]
     executor = LocalExecutor(jobs)
     report = run(shards, settings, rules, jobs=jobs, executor=executor)
-    planned = plan_fixes(report, shards, requested)
+    planned = plan_fixes(report, shards, scanned)
+    if scanned != requested:
+        for plan in planned.values():
+            plan["fixes"] = tuple(fix for fix in plan["fixes"] if fix in requested)
     special = tuple(settings.options_for("special-token-text").get(
         "strings", available["special-token-text"].options.get("strings", ())
         if "special-token-text" in available else ()))
@@ -104,7 +109,7 @@ def repair(paths: list[str] | str, out: str, settings: Settings | None = None, f
         plan = planned[shard.uri]
         work.append(ShardJob(shard, os.path.join(out, names[shard.path]), names[shard.path], settings,
                              plan["fixes"], repack, plan["drop_rows"], plan["drop_starts"], dry_run, special,
-                             controls))
+                             controls, plan["kinds"]))
     outcomes = list(executor.map(rewrite_shard, work))
     result = RepairResult(out, dry_run, repack, outcomes, report)
     if dry_run:
@@ -124,7 +129,7 @@ def _rescan(result: RepairResult, work: list[ShardJob], settings: Settings, avai
              for job, o in written}
     if any(o.repack for _, o in written):
         for job, o in written:
-            if o.repack:
+            if o.repack and "missing-separator" not in o.unfixable:
                 fixed[job.out_path].add("missing-separator")
     rule_ids = sorted({fix for fixes in fixed.values() for fix in fixes if fix in available},
                       key=FIXABLE.index)

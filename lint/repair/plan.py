@@ -116,9 +116,11 @@ def output_names(paths: list[str], shards: list[Shard]) -> dict[str, str]:
 
 
 def plan_fixes(report, shards: list[Shard], requested: tuple[str, ...]) -> dict[str, dict]:
-    """Per shard uri: the fixes the scan's findings call for (``fixes``), and the rows (``drop_rows``) and document
+    """Per shard uri: the fixes the scan's findings call for (``fixes``), the finding kinds per rule (``kinds``),
+    and the rows (``drop_rows``) and document
     starts (``drop_starts``, ``row << 32 | offset``) the drop list names in it."""
     found: dict[str, set] = {shard.uri: set() for shard in shards}
+    kinds: dict[str, dict] = {shard.uri: {} for shard in shards}
     for finding in report.findings:
         if finding.rule_id not in requested or not addressed(finding.rule_id, finding.kind):
             continue
@@ -126,6 +128,7 @@ def plan_fixes(report, shards: list[Shard], requested: tuple[str, ...]) -> dict[
         for uri in uris:
             if uri in found:
                 found[uri].add(finding.rule_id)
+                kinds[uri].setdefault(finding.rule_id, set()).add(finding.kind)
     rows: dict[str, list] = {}
     starts: dict[str, list] = {}
     for entry in report.outputs.get("drop-list", []):
@@ -143,7 +146,7 @@ def plan_fixes(report, shards: list[Shard], requested: tuple[str, ...]) -> dict[
         dup = [fix for fix in wanted if fix in ("exact-duplicate", "near-duplicate")]
         if dup and not (rows.get(uri) or starts.get(uri)):
             wanted = [fix for fix in wanted if fix not in dup]  # duplicates of this shard are kept copies
-        out[uri] = {"fixes": tuple(wanted),
+        out[uri] = {"fixes": tuple(wanted), "kinds": kinds[uri],
                     "drop_rows": np.unique(np.asarray(rows.get(uri, []), dtype=np.int64)),
                     "drop_starts": np.unique(np.asarray(starts.get(uri, []), dtype=np.int64))}
     return out

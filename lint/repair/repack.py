@@ -296,14 +296,7 @@ def _lay_out(values: np.ndarray, untrained: np.ndarray, piece_src: np.ndarray, p
     flags[dest] = untrained[src]
     positions[dest] = _ranges(piece_pos0, piece_len)
     fill = np.bincount(piece_window, weights=piece_len, minlength=windows).astype(np.int64)
-    # padding: position_ids count on from the window's last real position
-    pad = np.ones(windows * seq_len, dtype=bool)
-    pad[dest] = False
-    if pad.any():
-        at = np.flatnonzero(pad)
-        w = at // seq_len
-        base = np.where(fill[w] > 0, positions[np.maximum(w * seq_len + fill[w] - 1, 0)] + 1, 0)
-        positions[at] = base + (at - (w * seq_len + fill[w]))
+    # padding keeps the position_ids of a plain window (its index in the window), as written by np.tile above
     bounds = np.searchsorted(piece_window, np.arange(windows + 1), side="left")
     return Windows(out, flags, positions, fill, piece_len, bounds)
 

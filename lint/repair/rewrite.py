@@ -41,6 +41,7 @@ class ShardJob:
     dry_run: bool = False
     special_strings: tuple[str, ...] = ()
     allowed_controls: str = "\t\n\r"
+    kinds: dict = field(default_factory=dict)  # rule id -> finding kinds the scan found in the shard
 
 
 @dataclass
@@ -208,21 +209,31 @@ class _Rewrite:
             self.out.unfixable["repack"] = "the window length is not known: give --seq-len"
         elif job.repack and s.pad_id is None and s.eos_id is None:
             self.out.unfixable["repack"] = "no id to pad windows with: give --pad-id"
+        elif job.repack and self.tokenized and self._separator_why(for_repack=True):
+            self.out.unfixable["repack"] = ("the documents are not known, so they cannot be laid out again: "
+                                            + self._separator_why(for_repack=True))
         if "repack" in self.out.unfixable:
             self.out.error = f"cannot repack: {self.out.unfixable['repack']}"
         self.fixes = keep
 
-    def _separator_why(self) -> str | None:
+    def _separator_why(self, for_repack: bool = False) -> str | None:
+        """Why the missing separators of this shard cannot be put back, or None when they can: where position_ids
+        restart, a document is known without its separator; a padded row that holds one document ends it at the
+        padding; a doubled separator is one too many.  Elsewhere a missing separator leaves no trace."""
         s = self.facts
+        found = set(self.job.kinds.get("missing-separator", ()))
+        repairable = {POSITIONS: found, ONE_PER_ROW: {"unterminated-row", "doubled-eos", "doubled-bos"},
+                      SEPARATORS: {"doubled-eos", "doubled-bos"}}.get(self.arrangement, set())
+        if not found <= repairable:
+            unknown = ", ".join(sorted(found - repairable))
+            return (f"{unknown}: the documents of this shard are told apart only by their separators (no "
+                    "position_ids restarting at 0, rows that are not one document each), so where one is missing "
+                    "the boundary is unknown; rebuild the shard from its documents with the separator added")
+        if for_repack:
+            return None
         if self.job.repack is None:
-            if self.arrangement in (POSITIONS, ONE_PER_ROW):
-                return ("inserting a separator moves every later token of the window: repair with --repack chunk "
-                        "(or best-fit), which lays the documents out again with one separator each")
-            return ("the documents of this shard are told apart only by their separators, so where one is "
-                    "missing the boundary is unknown")
-        if self.arrangement == SEPARATORS:
-            return ("the documents of this shard are told apart only by their separators, so where one is missing "
-                    "the boundary is unknown and a repack cannot put it back")
+            return ("inserting a separator moves every later token of the window: repair with --repack chunk "
+                    "(or best-fit), which lays the documents out again with one separator each")
         if (s.separator in ("eos-after", "both") and s.eos_id is None) or \
                 (s.separator in ("bos-before", "both") and s.bos_id is None):
             return "the separator id is not known: give --eos-id (or --bos-id)"
