@@ -166,23 +166,9 @@ def test_loss_on_padding_and_broken_masks_are_fixed_keeping_the_side(tmp_path, s
 # -- duplicates in packed shards, best fit ---------------------------------------------------------------------------
 
 
-def pieces_of(cols) -> collections.Counter:
-    """Multiset of the pieces of a packed shard: runs of real tokens from a position_ids restart (or a row start)
-    to the next restart or the row's padding (the run of pad ids at its end; plain Python)."""
-    out = collections.Counter()
-    for ids, pos in zip(cols["input_ids"], cols["position_ids"]):
-        real = len(ids)
-        while real and ids[real - 1] == PAD:
-            real -= 1
-        piece = []
-        for t in range(real):
-            if pos[t] == 0 and piece:
-                out[tuple(piece)] += 1
-                piece = []
-            piece.append(ids[t])
-        if piece:
-            out[tuple(piece)] += 1
-    return out
+def expected_documents(docs: list[list[int]]) -> collections.Counter:
+    """Each document with one eos (plain Python)."""
+    return collections.Counter(tuple(doc + [EOS]) for doc in docs)
 
 
 def python_documents(cols, pad):
@@ -200,20 +186,6 @@ def python_documents(cols, pad):
             docs[-1][0].append(ids[t])
             docs[-1][2] = r
     return docs
-
-
-def expected_pieces(docs: list[list[int]], seq_len: int) -> collections.Counter:
-    """Each document with one eos, cut into full windows and a remainder (a remainder of the eos alone is left
-    out: the document ends at its last full window)."""
-    out = collections.Counter()
-    for doc in docs:
-        body = doc + [EOS]
-        full, rest = divmod(len(body), seq_len)
-        for i in range(full):
-            out[tuple(body[i * seq_len:(i + 1) * seq_len])] += 1
-        if rest and not (rest == 1 and full):
-            out[tuple(body[full * seq_len:])] += 1
-    return out
 
 
 def test_duplicate_windows_of_a_packed_shard_are_dropped_with_best_fit(tmp_path):
@@ -241,18 +213,13 @@ def test_duplicate_windows_of_a_packed_shard_are_dropped_with_best_fit(tmp_path)
     for tokens, first, last in python_documents(cols, PAD):
         body = tokens[:-1] if tokens[-1] == EOS else tokens
         (dropped if dropped_rows & set(range(first, last + 1)) else kept).append(body)
-    assert pieces_of(got) == expected_pieces(kept, seq_len)
+    after = python_documents(got, PAD)
+    assert collections.Counter(tuple(d[0]) for d in after) == expected_documents(kept)
     entry = json.loads((tmp_path / "out" / "repair.json").read_text())["shards"][0]
     assert entry["fixes"]["exact-duplicate"]["documentsDropped"] == len(dropped)
-    assert entry["fixes"]["exact-duplicate"]["tokensRemoved"] == sum(len(d) for d in dropped)
+    assert entry["fixes"]["exact-duplicate"]["tokensRemoved"] == sum(len(d) for d in dropped)  # without eos
     assert entry["repack"]["windowsAfter"] == len(got["input_ids"])
-    # the windows are the best-fit-decreasing windows of the pieces (kernels.packing gives the same fills)
-    body_lengths = [len(d) + 1 for d in kept]
-    fills = best_fit_decreasing_fills(np.asarray(body_lengths), seq_len)
-    lone = sum(1 for n in body_lengths if n % seq_len == 1 and n > seq_len)  # eos pieces left out
-    assert entry["repack"].get("separatorsLeftOut", 0) == lone
-    if not lone:
-        assert len(got["input_ids"]) == int(fills.sum())
+    # (the multiset above is read row by row from position_ids: a split document runs on in the next rows)
     # labels: shifted inside each window, the last and the padding ignored (the input trained every target)
     for ids, labels, mask in zip(got["input_ids"], got["labels"], [None] * len(got["labels"])):
         real = len(ids)
@@ -288,6 +255,31 @@ def test_document_level_drop_entries_drop_exactly_those_documents(tmp_path):
     got = read(tmp_path / "out" / "doc.parquet")
     assert got["input_ids"] == want["input_ids"] and got["position_ids"] == want["position_ids"]
     assert got["labels"] == want["labels"]
+
+
+def test_best_fit_repack_of_short_documents_is_best_fit_decreasing_exactly(tmp_path):
+    seq_len = 96
+    docs = documents(11, 400, 90)  # every document with its eos fits in a window
+    cols = pack(docs, seq_len, eos=EOS, pad=PAD)
+    cols = {k: v + [v[i] for i in (3, 4)] for k, v in cols.items()}  # two windows written twice
+    src = write(tmp_path / "in" / "short.parquet", cols)
+    facts = dict(eos_id=EOS, pad_id=PAD, seq_len=seq_len)
+    result = repair([src], str(tmp_path / "out"), Settings(**facts), repack="best-fit", jobs=1)
+    assert result.exit_code == 0, result.still_found
+    got = read(tmp_path / "out" / "short.parquet")
+    dropped_rows = {len(cols["input_ids"]) - 2, len(cols["input_ids"]) - 1}
+    kept = [t[:-1] if t[-1] == EOS else t for t, first, last in python_documents(cols, PAD)
+            if not dropped_rows & set(range(first, last + 1))]
+    assert collections.Counter(tuple(d[0]) for d in python_documents(got, PAD)) == expected_documents(kept)
+    fills = [0] * (seq_len + 1)
+    for ids in got["input_ids"]:
+        real = len(ids)
+        while real and ids[real - 1] == PAD:
+            real -= 1
+        fills[real] += 1
+    # the windows' fills are those of best-fit decreasing over the documents' lengths (kernels.packing, which
+    # tests/test_packing.py checks against Johnson et al.'s bound and a one-at-a-time reference)
+    assert fills == best_fit_decreasing_fills(np.asarray([len(d) + 1 for d in kept]), seq_len).tolist()
 
 
 # -- missing separators, chunk ------------------------------------------------------------------------------------

@@ -16,11 +16,14 @@ bos before it, or both, as the shard's convention says) and cut the result into 
 ``best-fit``
     Best-fit decreasing over pieces: a document longer than ``seq_len`` gives full windows plus one remainder
     piece; the pieces, largest first, each go into the open window with the least room that still holds them
-    (a new window when none does); a document one token longer than a whole number of windows ends at its last
-    window's end, without the eos that would be a piece of its own.  The same batched group moves as
-    :func:`corpuscle.kernels.packing.best_fit_decreasing_fills`, keeping which window each piece went to.
-    position_ids restart at 0 at every piece.  Documents are packed in buffers of about ``buffer_tokens``
-    tokens, so memory stays bounded; the number of windows is within best-fit decreasing's bound per buffer.
+    (a new window when none does), with the batched group moves of
+    :func:`corpuscle.kernels.packing.best_fit_decreasing_fills`, keeping which window each piece went to.  The
+    remainder of a split document opens a window of its own before the other pieces are placed (they fill the
+    room behind it), and that window goes right after the document's full windows, so
+    the document runs on from row to row (position_ids count on through its pieces and restart at 0 at every
+    other document).  Documents are packed in buffers of about ``buffer_tokens`` tokens, so memory stays
+    bounded; for documents no longer than the window the number of windows is within best-fit decreasing's
+    bound per buffer.
 
 Windows are padded only where they are not full.  Labels follow the shard's convention (shifted: the next token
 of the window; aligned: the token itself), ``ignore_index`` at padding, at the last position under shifted and
@@ -356,14 +359,20 @@ class ChunkPacker:
                         self.pad_id)
 
 
-def best_fit_assign(sizes: np.ndarray, seq_len: int) -> tuple[np.ndarray, np.ndarray, int]:
+def best_fit_assign(sizes: np.ndarray, seq_len: int, opens: np.ndarray | None = None
+                    ) -> tuple[np.ndarray, np.ndarray, int]:
     """Best-fit decreasing over pieces of the given sizes (each 1..seq_len): ``(order, window, windows)`` with
     ``order`` the pieces in the order they are placed (largest first, stable), ``window[i]`` the window of piece
     ``order[i]``, and the number of windows.  The group moves are those of
     :func:`corpuscle.kernels.packing.best_fit_decreasing_fills` (see its proof that they equal placing the pieces
-    one at a time), with the windows of each room kept by id."""
+    one at a time), with the windows of each room kept by id.
+
+    Pieces marked in ``opens`` (the remainders of split documents) are placed first, each in a window of its own,
+    so that they come first in it; the other pieces, largest first, fill the room behind them by best fit.
+    Without ``opens`` this is best-fit decreasing exactly."""
     sizes = np.asarray(sizes, dtype=np.int64)
-    order = np.argsort(-sizes, kind="stable")
+    opens = np.zeros(sizes.size, dtype=bool) if opens is None else np.asarray(opens, dtype=bool)
+    order = np.lexsort((np.arange(sizes.size), -sizes, ~opens))  # openers first, then largest first
     window = np.empty(sizes.size, dtype=np.int64)
     rooms: dict[int, list[int]] = {}
     occupied: list[int] = []
@@ -385,6 +394,17 @@ def best_fit_assign(sizes: np.ndarray, seq_len: int) -> tuple[np.ndarray, np.nda
             del occupied[bisect.bisect_left(occupied, r)]
         return taken
 
+    if opens.any():  # each opener in a window of its own, before anything else is placed
+        first = sizes[order[:int(opens.sum())]]
+        opened = first.size
+        window[:opened] = np.arange(opened)
+        pos = opened
+        room_of = seq_len - first
+        by_room = np.argsort(room_of, kind="stable")
+        rooms_left, first_at = np.unique(room_of[by_room], return_index=True)
+        for r, ids in zip(rooms_left.tolist(), np.split(by_room, first_at[1:])):
+            add(r, ids.tolist())
+        sizes = sizes[~opens]
     values, counts = np.unique(sizes, return_counts=True)
     for s, c in zip(values[::-1].tolist(), counts[::-1].tolist()):
         while c:
@@ -434,7 +454,6 @@ class BestFitPacker:
         self._waiting: list[Documents] = []
         self._tokens = 0
         self.separators_added = 0
-        self.separators_left_out = 0
 
     def add(self, docs: Documents) -> Windows | None:
         size = docs.values.size
@@ -461,20 +480,22 @@ class BestFitPacker:
         chunk = np.arange(doc.size) - np.repeat(np.cumsum(per_doc) - per_doc, per_doc)
         piece_len = np.where(chunk < full[doc], seq_len, rest[doc])
         piece_src = docs.offsets[:-1][doc] + chunk * seq_len
-        if self.s.separator in ("eos-after", "both") and self.s.eos_id is not None:
-            # A document one token longer than a whole number of windows would leave its eos as a piece of its
-            # own, a "document" of nothing but a separator; it ends at its last window's end instead, and the
-            # eos is left out (counted).
-            lone = (chunk == full[doc]) & (rest[doc] == 1) & (full[doc] > 0)
-            if lone.any():
-                self.separators_left_out += int(lone.sum())
-                piece_len, piece_src = piece_len[~lone], piece_src[~lone]
-        order, window, windows = best_fit_assign(piece_len, seq_len)
-        # pieces by window, in the order they went in
-        by_window = np.argsort(window, kind="stable")
+        opens = (chunk == full[doc]) & (full[doc] > 0)  # the remainder of a split document
+        order, window, windows = best_fit_assign(piece_len, seq_len, opens)
+        # Window order: each split document's full windows in a row (they are opened one after another), then
+        # the window its remainder opened, so its pieces follow each other and position_ids count on.
+        of_piece = np.empty(piece_len.size, dtype=np.int64)
+        of_piece[order] = window
+        key = 2 * np.arange(windows, dtype=np.int64)
+        remainders = np.flatnonzero(opens)
+        key[of_piece[remainders]] = 2 * of_piece[remainders - 1] + 1
+        rank = np.empty(windows, dtype=np.int64)
+        rank[np.argsort(key, kind="stable")] = np.arange(windows)
+        window = rank[window]
+        by_window = np.argsort(window, kind="stable")  # pieces by window, in the order they went in
         placed = order[by_window]
         return _lay_out(docs.values, docs.untrained, piece_src[placed], piece_len[placed], window[by_window],
-                        np.zeros(placed.size, dtype=np.int64), windows, seq_len, self.pad_id)
+                        chunk[placed] * seq_len, windows, seq_len, self.pad_id)
 
 
 def window_labels(win: Windows, seq_len: int, shifted: bool, ignore_index: int, dtype) -> np.ndarray:

@@ -461,9 +461,6 @@ class _Rewrite:
             count.tokens_added += counts.documents_without_separator
             count.rows_changed = self.windows
         self.out.repack["separatorsAdded"] = self.packer.separators_added
-        left_out = getattr(self.packer, "separators_left_out", 0)
-        if left_out:
-            self.out.repack["separatorsLeftOut"] = left_out
 
 
 def _replace(table: pa.Table, name: str, original, values: np.ndarray, offsets: np.ndarray) -> pa.Table:
