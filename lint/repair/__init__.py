@@ -109,7 +109,7 @@ def repair(paths: list[str] | str, out: str, settings: Settings | None = None, f
         plan = planned[shard.uri]
         work.append(ShardJob(shard, os.path.join(out, names[shard.path]), names[shard.path], settings,
                              plan["fixes"], repack, plan["drop_rows"], plan["drop_starts"], dry_run, special,
-                             controls, plan["kinds"]))
+                             controls, plan["kinds"], plan["labels"]))
     outcomes = list(executor.map(rewrite_shard, work))
     result = RepairResult(out, dry_run, repack, outcomes, report)
     if dry_run:
@@ -152,7 +152,7 @@ def _rescan(result: RepairResult, work: list[ShardJob], settings: Settings, avai
         if job is not None:
             uri_fixes[shard.uri] = fixed[job.out_path]
     for finding in report.findings:
-        if not addressed(finding.rule_id, finding.kind):
+        if not addressed(finding.rule_id, finding.kind) or finding.level.name == "note":
             continue
         uris = [finding.uri] if finding.uri else list(finding.instance_uris or [])
         hit = [uri for uri in uris if finding.rule_id in uri_fixes.get(uri, ())
@@ -191,6 +191,9 @@ def summary(result: RepairResult) -> str:
             r = o.repack
             lines.append(f"  repack {r['layout']}: {r['windowsBefore']:,} -> {r['windowsAfter']:,} windows of "
                          f"{r['seqLen']:,}, {r['separatorsAdded']:,} separators written")
+        for key in ("repack", "repackNote"):
+            if key in o.facts:
+                lines.append(f"  note: {'repack ' if key == 'repack' else ''}{o.facts[key]}")
         for fix, why in o.unfixable.items():
             lines.append(f"  cannot fix {fix}: {why}")
         b, a = o.before, o.after

@@ -122,13 +122,24 @@ def plan_fixes(report, shards: list[Shard], requested: tuple[str, ...]) -> dict[
     found: dict[str, set] = {shard.uri: set() for shard in shards}
     kinds: dict[str, dict] = {shard.uri: {} for shard in shards}
     for finding in report.findings:
-        if finding.rule_id not in requested or not addressed(finding.rule_id, finding.kind):
+        if finding.rule_id not in requested or not addressed(finding.rule_id, finding.kind) or \
+                finding.level.name == "note":  # a note is no defect to fix
             continue
         uris = [finding.uri] if finding.uri else list(finding.instance_uris or [])
         for uri in uris:
             if uri in found:
                 found[uri].add(finding.rule_id)
                 kinds[uri].setdefault(finding.rule_id, set()).add(finding.kind)
+    # shards whose label convention differs from the corpus majority are rebuilt in the majority's convention
+    # (unless the convention was configured for them per path: the finding is a note then)
+    convention: dict[str, str] = {}
+    for finding in report.findings:
+        if finding.rule_id == "label-alignment" and finding.kind == "mixed-across-shards" and \
+                finding.level.name != "note" and "label-alignment" in requested:
+            majority = {1: "shifted", 0: "aligned"}.get(finding.evidence.get("majorityShift"))
+            for uri in finding.instance_uris or []:
+                if majority and uri in found:
+                    convention[uri] = majority
     rows: dict[str, list] = {}
     starts: dict[str, list] = {}
     for entry in report.outputs.get("drop-list", []):
@@ -146,7 +157,7 @@ def plan_fixes(report, shards: list[Shard], requested: tuple[str, ...]) -> dict[
         dup = [fix for fix in wanted if fix in ("exact-duplicate", "near-duplicate")]
         if dup and not (rows.get(uri) or starts.get(uri)):
             wanted = [fix for fix in wanted if fix not in dup]  # duplicates of this shard are kept copies
-        out[uri] = {"fixes": tuple(wanted), "kinds": kinds[uri],
+        out[uri] = {"fixes": tuple(wanted), "kinds": kinds[uri], "labels": convention.get(uri),
                     "drop_rows": np.unique(np.asarray(rows.get(uri, []), dtype=np.int64)),
                     "drop_starts": np.unique(np.asarray(starts.get(uri, []), dtype=np.int64))}
     return out

@@ -42,6 +42,7 @@ class ShardJob:
     special_strings: tuple[str, ...] = ()
     allowed_controls: str = "\t\n\r"
     kinds: dict = field(default_factory=dict)  # rule id -> finding kinds the scan found in the shard
+    labels: str | None = None  # the corpus majority's convention, for a shard that breaks it
 
 
 @dataclass
@@ -106,7 +107,12 @@ def rewrite_shard(job: ShardJob) -> ShardOutcome:
     outcome = ShardOutcome(job.shard.uri, job.name)
     writer = None
     try:
-        layout = InputLayout(job.shard)
+        try:
+            layout = InputLayout(job.shard)
+        except Exception as exc:  # noqa: BLE001 - a shard that cannot be opened is reported, not repaired
+            outcome.error = (f"the shard cannot be opened ({type(exc).__name__}: {str(exc).splitlines()[0]}): "
+                             "its copy is not written; restore it from its source, then repair again")
+            return outcome
         writer = (NullWriter() if job.dry_run else ShardWriter(job.shard, job.out_path, layout))
         _Rewrite(job, outcome, layout, writer).run()
         if outcome.error is None:
@@ -175,8 +181,13 @@ class _Rewrite:
         self.expected = 0 if s.labels == "aligned" else 1
         if s.labels is None and self.tokenized:
             self.out.facts["labels"] = {"value": "shifted", "source": "assumed (not set, not inferable)"}
+        if self.job.labels is not None and "label-alignment" in self.fixes:
+            self.expected = 0 if self.job.labels == "aligned" else 1
+            self.out.facts["labels"] = {"value": self.job.labels, "source": "the corpus majority (the shard "
+                                        f"followed {s.labels or 'no convention'})"}
         self._decide()
-        if self.job.repack and self.tokenized:
+        if self.job.repack and self.tokenized and self.out.error is None:
+            self.template = self.layout.schema if self.layout.schema is not None else sample.table.schema
             self._start_repack()
 
     def _decide(self) -> None:
@@ -204,7 +215,7 @@ class _Rewrite:
             else:
                 keep.append(fix)
         if job.repack and not self.tokenized:
-            self.out.unfixable["repack"] = "--repack needs tokenized shards (this one holds raw text)"
+            self.out.facts["repack"] = "not applied: the shard holds raw text, not token windows"
         elif job.repack and s.seq_len is None:
             self.out.unfixable["repack"] = "the window length is not known: give --seq-len"
         elif job.repack and s.pad_id is None and s.eos_id is None:
@@ -244,6 +255,8 @@ class _Rewrite:
 
     # -- batches ----------------------------------------------------------------------------------------------
     def _batch(self, batch: Batch) -> None:
+        if self.out.error is not None:  # the shard is not written: nothing more to do
+            return
         for problem in batch.problems:
             if len(self.out.unreadable) < LISTED:
                 self.out.unreadable.append({"row": problem.row, "kind": problem.kind, "detail": problem.detail})
@@ -354,7 +367,8 @@ class _Rewrite:
             changed = removed > 0
             count.rows_changed += int(np.count_nonzero(changed))
             count.positions_changed += int(removed.sum())
-            count.list([[int(r), int(n)] for r, n in zip(batch.rows[changed], removed[changed])])
+            first = np.flatnonzero(changed)[:max(0, LISTED - len(count.listed))]
+            count.list([[int(r), int(n)] for r, n in zip(batch.rows[first], removed[first])])
         if "empty-document" in self.fixes and not self.tokenized:
             empty = keep & fx.blank_text(column)
             self._dropped("empty-document", batch, empty)
@@ -386,7 +400,12 @@ class _Rewrite:
                                      cap=LISTED)
         self.windows = 0
         self.labels_shift = None
-        if self.layout.schema is not None and s.labels_column in self.layout.schema.names:
+        if s.positions_column not in self.template.names:
+            self.out.facts["repackNote"] = (
+                f"the shard has no {s.positions_column!r} column, so the repacked windows hold several documents "
+                "with nothing but their separators between them: mask attention at the separators in the "
+                "trainer, or add position_ids")
+        if s.labels_column in self.template.names:
             self.labels_shift = self.expected == 1
 
     def _untrained(self, batch: Batch, tokens: Flat, real: np.ndarray | None) -> np.ndarray | None:
@@ -431,7 +450,7 @@ class _Rewrite:
         if windows is None or windows.count == 0:
             return
         s = self.facts
-        table = window_table(windows, self.layout.schema, s, s.seq_len, self.labels_shift)
+        table = window_table(windows, self.template, s, s.seq_len, self.labels_shift)
         self.windows += windows.count
         self.out.after.rows += windows.count
         self.out.after.slots += windows.count * s.seq_len
@@ -456,6 +475,9 @@ class _Rewrite:
             "separatorsStripped": counts.separators_stripped,
             "documentsWithoutSeparator": counts.documents_without_separator,
         }
+        for fix in ("label-alignment", "padding-loss"):  # every window's labels and mask are built anew
+            if fix in self.fixes:
+                self.out.count(fix).rows_changed = self.windows
         if "missing-separator" in self.fixes:
             count = self.out.count("missing-separator")
             count.tokens_added += counts.documents_without_separator
