@@ -476,3 +476,58 @@ def test_a_shard_that_cannot_be_read_is_not_written_and_exits_3(tmp_path):
     assert (tmp_path / "out" / "good.parquet").exists()
     report = json.loads((tmp_path / "out" / "repair.json").read_text())
     assert [s["written"] for s in report["shards"]] == [False, True]
+
+
+def test_a_continued_stream_keeps_its_last_labels(tmp_path):
+    # one token stream cut into windows, each window's last label the next window's first token (on purpose);
+    # the defect: ignored positions marked -1
+    stream = [t for doc in documents(12, 60, 40) for t in doc + [EOS]]
+    seq_len = 32
+    rows = [stream[s:s + seq_len] for s in range(0, len(stream) - seq_len, seq_len)]
+    truth = []
+    for i, row in enumerate(rows):
+        last = rows[i + 1][0] if i + 1 < len(rows) else IGNORE
+        labels = row[1:] + [last]
+        if i % 2:
+            labels[5:9] = [IGNORE] * 4  # a masked span
+        truth.append(labels)
+    marked = [[-1 if x == IGNORE else x for x in row] for row in truth]
+    src = write(tmp_path / "stream.parquet", {"input_ids": rows, "labels": marked}, row_group_size=7)
+    result = repair([src], str(tmp_path / "out"), Settings(eos_id=EOS, labels="shifted"), jobs=1)
+    assert read(tmp_path / "out" / "stream.parquet")["labels"] == truth  # across row groups and batches too
+    assert result.exit_code == 0
+
+
+def test_a_shard_against_the_corpus_convention_is_rebuilt_in_the_majority_one(tmp_path):
+    shifted = pack(documents(13, 60, 30), 32, eos=EOS, pad=PAD)
+    for name in ("a", "b", "c"):
+        write(tmp_path / "in" / f"{name}.parquet", shifted)
+    aligned = pack(documents(14, 60, 30), 32, eos=EOS, pad=PAD)
+    want = aligned["labels"]
+    aligned = dict(aligned, labels=[[x if p < sum(1 for y in ids if y != PAD) else IGNORE
+                                     for p, x in enumerate(ids)] for ids in aligned["input_ids"]])
+    write(tmp_path / "in" / "d.parquet", aligned)
+    facts = dict(eos_id=EOS, pad_id=PAD)
+    assert kinds(run(tmp_path / "in", **facts), "label-alignment")  # shards disagree on the label shift
+    result = repair([str(tmp_path / "in")], str(tmp_path / "out"), Settings(**facts), jobs=1)
+    assert read(tmp_path / "out" / "d.parquet")["labels"] == want
+    assert read(tmp_path / "out" / "a.parquet")["labels"] == shifted["labels"]
+    assert result.exit_code == 0 and not kinds(run(tmp_path / "out", **facts), "label-alignment")
+
+
+def test_remainders_of_split_documents_open_their_own_windows_first():
+    rng = np.random.default_rng(5)
+    for _ in range(100):
+        seq_len = int(rng.choice([16, 50, 128]))
+        sizes = rng.integers(1, seq_len + 1, int(rng.integers(1, 40))).astype(np.int64)
+        opens = rng.random(sizes.size) < 0.3
+        opens &= sizes < seq_len
+        order, window, windows = best_fit_assign(sizes, seq_len, opens)
+        fills = np.bincount(window, weights=sizes[order], minlength=windows)
+        assert fills.max() <= seq_len and sorted(order.tolist()) == list(range(sizes.size))
+        first_in_window = {}
+        for piece, w in zip(order.tolist(), window.tolist()):
+            first_in_window.setdefault(w, piece)
+        # every opener is the first piece of a window of its own
+        assert sorted(first_in_window[w] for w in set(window[np.isin(order, np.flatnonzero(opens))].tolist())) \
+            == sorted(np.flatnonzero(opens).tolist())

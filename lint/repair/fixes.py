@@ -145,15 +145,25 @@ def build_labels(tokens: Flat, real: np.ndarray, untrained: np.ndarray, shifted:
 
 
 def realign_labels(tokens: Flat, labels: np.ndarray, real: np.ndarray, expected: int, ignore_index: int,
-                   pad_id: int | None, vocab_size: int | None) -> np.ndarray:
+                   pad_id: int | None, vocab_size: int | None, following: np.ndarray | None = None) -> np.ndarray:
     """The label-alignment fix: labels rebuilt from input_ids in the expected convention (shift 1 or 0), keeping
     ignored what the input ignored on purpose (read through each row's observed shift) and reading wrong ignore
-    markers (-1, the pad id at padding, values >= vocab_size) as ignored."""
+    markers (-1, the pad id at padding, values >= vocab_size) as ignored.
+
+    ``following`` (per row, the first token of the next record, -1 when unknown): under shifted labels a row's
+    trained last label that equals it is kept, as the label rule accepts it: a pipeline that cuts one token
+    stream into windows continues the stream there on purpose."""
     markers = ignore_markers(labels, real, ignore_index, pad_id, vocab_size)
     ignored = markers | (labels == ignore_index)
     shifts = row_shifts(tokens, labels, ignored, ignore_index, expected)
     untrained = untrained_targets(tokens, ignored, real, shifts)
-    return build_labels(tokens, real, untrained, expected == 1, ignore_index, labels.dtype)
+    out = build_labels(tokens, real, untrained, expected == 1, ignore_index, labels.dtype)
+    if expected == 1 and following is not None:
+        rows = np.flatnonzero(tokens.lengths > 0)
+        last = tokens.ends[rows] - 1
+        kept = real[last] & ~ignored[last] & (labels[last] == following[rows]) & (following[rows] >= 0)
+        out[last[kept]] = labels[last[kept]]
+    return out
 
 
 # -- rows to drop -----------------------------------------------------------------------------------------------

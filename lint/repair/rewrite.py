@@ -138,29 +138,45 @@ class _Rewrite:
     # -- reading ----------------------------------------------------------------------------------------------
     def run(self) -> None:
         job = self.job
-        pending: list[Batch] = []
-        started = False
         with open_shard(job.shard, tokens_column=self.facts.tokens_column) as reader:
-            for batch in reader:
-                if started:
-                    self._batch(batch)
-                    continue
-                pending.append(batch)
-                if enough_first_records(pending, self.facts.tokens_column):
-                    self._start(pending)
-                    started = True
-                    for waiting in pending:
-                        self._batch(waiting)
-                    pending = []
-            if not started:
-                self._start(pending)
-                for waiting in pending:
-                    self._batch(waiting)
+            held = None  # each batch is fixed once the next one is read: its last row's label may continue there
+            for batch in self._started(reader):
+                if held is not None:
+                    self._batch(held, self._first_token(batch))
+                held = batch
+            if held is not None:
+                self._batch(held, None)
             if reader.stopped:
                 self.out.error = ("the shard cannot be read to its end (see unreadable); its copy is not written: "
                                   "restore it from its source, then repair again")
         if self.out.error is None:
             self._close()
+
+    def _started(self, reader):
+        """The reader's batches, after the shard's facts are inferred from its first records."""
+        pending: list[Batch] = []
+        started = False
+        for batch in reader:
+            if started:
+                yield batch
+                continue
+            pending.append(batch)
+            if enough_first_records(pending, self.facts.tokens_column):
+                self._start(pending)
+                started = True
+                yield from pending
+                pending = []
+        if not started:
+            self._start(pending)
+            yield from pending
+
+    def _first_token(self, batch: Batch) -> int | None:
+        """The first token of a batch's first record (None when it has none)."""
+        s = self.facts
+        if not (len(batch) and batch.has(s.tokens_column) and is_integer_list(batch.type_of(s.tokens_column))):
+            return None
+        tokens = batch.flat(s.tokens_column)
+        return int(tokens.values[0]) if tokens.lengths[0] > 0 else None
 
     def _start(self, batches: list[Batch]) -> None:
         """Facts from the shard's first records (as a scan infers them), then which fixes can run here."""
@@ -254,7 +270,7 @@ class _Rewrite:
         return name in (self.layout.schema.names if self.layout.schema is not None else [name])
 
     # -- batches ----------------------------------------------------------------------------------------------
-    def _batch(self, batch: Batch) -> None:
+    def _batch(self, batch: Batch, next_first: int | None = None) -> None:
         if self.out.error is not None:  # the shard is not written: nothing more to do
             return
         for problem in batch.problems:
@@ -266,7 +282,7 @@ class _Rewrite:
         if self.stream is not None:
             self._repack_batch(batch)
             return
-        table = self._fix_rows(batch)
+        table = self._fix_rows(batch, next_first)
         self._count_budget(self.out.after, Batch(batch.shard, table, np.arange(table.num_rows)))
         self.writer.write(table)
 
@@ -285,12 +301,12 @@ class _Rewrite:
             budget.real += size
             budget.unit = "utf-8 bytes"
 
-    def _fix_rows(self, batch: Batch) -> pa.Table:
+    def _fix_rows(self, batch: Batch, next_first: int | None = None) -> pa.Table:
         s, job = self.facts, self.job
         table = batch.table if isinstance(batch.table, pa.Table) else pa.Table.from_batches([batch.table])
         keep = np.ones(len(batch), dtype=bool)
         if self.tokenized and batch.has(s.tokens_column) and is_integer_list(batch.type_of(s.tokens_column)):
-            table, keep = self._token_fixes(batch, table, keep)
+            table, keep = self._token_fixes(batch, table, keep, next_first)
         if self.text and batch.has(s.text_column) and is_text(batch.type_of(s.text_column)):
             table, keep = self._text_fixes(batch, table, keep)
         dups = [f for f in self.fixes if f in DUPLICATES]
@@ -312,7 +328,7 @@ class _Rewrite:
             count.tokens_removed += int(tokens.row_counts(real)[drop].sum())
         count.list(batch.rows[drop].tolist())
 
-    def _token_fixes(self, batch: Batch, table: pa.Table, keep: np.ndarray):
+    def _token_fixes(self, batch: Batch, table: pa.Table, keep: np.ndarray, next_first: int | None = None):
         s = self.facts
         tokens = batch.flat(s.tokens_column)
         has_labels = self._parallel(batch, s.labels_column, tokens)
@@ -338,8 +354,12 @@ class _Rewrite:
                 self._changed("padding-loss", labels_flat, new)
                 labels_flat = Flat(new, labels_flat.offsets)
             if "label-alignment" in self.fixes:
+                following = np.full(tokens.lengths.size, -1, dtype=np.int64)  # first token of the next record
+                filled = tokens.lengths[1:] > 0
+                following[:-1][filled] = tokens.values[tokens.starts[1:][filled]]
+                following[-1] = -1 if next_first is None else next_first
                 new = fx.realign_labels(tokens, labels_flat.values, real, self.expected, s.ignore_index, s.pad_id,
-                                        s.vocab_size)
+                                        s.vocab_size, following)
                 self._changed("label-alignment", labels_flat, new)
                 labels_flat = Flat(new, labels_flat.offsets)
             if labels_flat.values is not labels:

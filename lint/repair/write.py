@@ -134,6 +134,11 @@ class ShardWriter(_Buffered):
             self._writer.close()
         if self._sink is not None:
             self._sink.close()
+        fd = os.open(self.tmp, os.O_RDONLY)
+        try:
+            os.fsync(fd)  # on disk before it takes the shard's name
+        finally:
+            os.close(fd)
         os.chmod(self.tmp, 0o666 & ~_umask())
         os.replace(self.tmp, self.path)
 
