@@ -40,7 +40,7 @@ from corpuscle.io.batch import Batch
 from corpuscle.kernels.documents import RealTokens, documents_of
 
 #: Tokens of documents collected before a best-fit buffer is packed.
-BUFFER_TOKENS = 1 << 22
+BUFFER_TOKENS = 1 << 21
 
 
 @dataclass
@@ -148,8 +148,12 @@ class DocumentStream:
         untrained = self.untrained_of(batch, tokens, real.mask) if self.untrained_of else None
         flags = untrained[where] if untrained is not None else np.zeros(stream.size, dtype=bool)
         docs = documents_of(batch, s, self.arrangement)
-        local = np.searchsorted(tokens.offsets, where, side="right") - 1  # batch row of each real token
-        rows_of, offs_of = batch.rows[local], where - tokens.offsets[local]
+        def rows_of(at):  # shard row of the real tokens ``at`` (indices into the stream)
+            return batch.rows[np.searchsorted(tokens.offsets, where[at], side="right") - 1]
+
+        def offs_of(at):  # their offsets within their rows
+            flat = where[at]
+            return flat - tokens.offsets[np.searchsorted(tokens.offsets, flat, side="right") - 1]
         lengths = np.asarray(docs.lengths, dtype=np.int64)
         head = int(docs.head)
         tail = int(docs.tail)
@@ -158,9 +162,9 @@ class DocumentStream:
         closed = []
         if head:
             if self._open_at is None:
-                self._open_at = (int(rows_of[0]), int(offs_of[0]), int(rows_of[0]))
+                self._open_at = (int(rows_of([0])[0]), int(offs_of([0])[0]), int(rows_of([0])[0]))
             self._open.append((stream[:head], flags[:head]))
-            self._open_at = (*self._open_at[:2], int(rows_of[head - 1]))
+            self._open_at = (*self._open_at[:2], int(rows_of([head - 1])[0]))
         if docs.closes and self._open:
             closed.append(self._close_open())
         middle_lo = head
@@ -172,11 +176,13 @@ class DocumentStream:
             np.cumsum(lengths, out=offsets[1:])
             offsets += middle_lo
             first, last = offsets[:-1], offsets[1:] - 1
+            first_rows = rows_of(first)
             closed.append((Documents(stream[middle_lo:middle_hi], offsets - middle_lo, flags[middle_lo:middle_hi]),
-                           rows_of[first], offs_of[first], rows_of[first], rows_of[last]))
+                           first_rows, offs_of(first), first_rows, rows_of(last)))
         if tail:
             self._open = [(stream[middle_hi:], flags[middle_hi:])]
-            self._open_at = (int(rows_of[middle_hi]), int(offs_of[middle_hi]), int(rows_of[-1]))
+            self._open_at = (int(rows_of([middle_hi])[0]), int(offs_of([middle_hi])[0]),
+                             int(rows_of([stream.size - 1])[0]))
         return self._finish(closed)
 
     def close(self) -> Documents:

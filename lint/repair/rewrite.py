@@ -181,6 +181,7 @@ class _Rewrite:
     def _start(self, batches: list[Batch]) -> None:
         """Facts from the shard's first records (as a scan infers them), then which fixes can run here."""
         sample = first_records(batches)
+        self.first_schema = sample.table.schema if sample is not None else None
         if sample is not None:
             self.facts = infer_from_batch(self.facts, sample)
         s = self.facts
@@ -232,13 +233,14 @@ class _Rewrite:
                 keep.append(fix)
         if job.repack and not self.tokenized:
             self.out.facts["repack"] = "not applied: the shard holds raw text, not token windows"
-        elif job.repack and s.seq_len is None:
-            self.out.unfixable["repack"] = "the window length is not known: give --seq-len"
-        elif job.repack and s.pad_id is None and s.eos_id is None:
-            self.out.unfixable["repack"] = "no id to pad windows with: give --pad-id"
         elif job.repack and self.tokenized and self._separator_why(for_repack=True):
             self.out.unfixable["repack"] = ("the documents are not known, so they cannot be laid out again: "
                                             + self._separator_why(for_repack=True))
+        elif job.repack and s.seq_len is None:
+            self.out.unfixable["repack"] = "the window length is not known: give --seq-len"
+        elif job.repack and s.pad_id is None and (s.eos_id is None or not self._has_list(s.mask_column)):
+            self.out.unfixable["repack"] = ("the pad id is not known and no attention mask would hide padding "
+                                            "written with another id: give --pad-id")
         if "repack" in self.out.unfixable:
             self.out.error = f"cannot repack: {self.out.unfixable['repack']}"
         self.fixes = keep
@@ -267,7 +269,9 @@ class _Rewrite:
         return None
 
     def _has_list(self, name: str) -> bool:
-        return name in (self.layout.schema.names if self.layout.schema is not None else [name])
+        """Whether the shard has an integer list column ``name`` (as its schema, or its first records, say)."""
+        schema = self.layout.schema if self.layout.schema is not None else self.first_schema
+        return schema is not None and name in schema.names and is_integer_list(schema.field(name).type)
 
     # -- batches ----------------------------------------------------------------------------------------------
     def _batch(self, batch: Batch, next_first: int | None = None) -> None:
