@@ -145,14 +145,17 @@ def _rescan(result: RepairResult, work: list[ShardJob], settings: Settings, avai
     shards = discover([job.out_path for job, _ in written])
     report = run(shards, rescan_settings, rules, jobs=jobs)
     result.rescan = report
-    by_path = {os.path.abspath(job.out_path): job for job, _ in written}
-    uri_fixes = {}
+    by_path = {os.path.abspath(o_job.out_path): (o_job, o) for o_job, o in written}
+    uri_fixes, uri_left = {}, {}
     for shard in shards:
-        job = by_path.get(os.path.abspath(shard.path))
+        job, outcome = by_path.get(os.path.abspath(shard.path), (None, None))
         if job is not None:
             uri_fixes[shard.uri] = fixed[job.out_path]
+            uri_left[shard.uri] = set(outcome.unfixable)  # "rule" or "rule kind" said to be unfixable
     for finding in report.findings:
         if not addressed(finding.rule_id, finding.kind) or finding.level.name == "note":
+            continue
+        if finding.uri and f"{finding.rule_id} {finding.kind}" in uri_left.get(finding.uri, ()):
             continue
         uris = [finding.uri] if finding.uri else list(finding.instance_uris or [])
         hit = [uri for uri in uris if finding.rule_id in uri_fixes.get(uri, ())

@@ -124,6 +124,10 @@ def rewrite_shard(job: ShardJob) -> ShardOutcome:
         outcome.error = f"{type(exc).__name__}: {exc} ({traceback.extract_tb(exc.__traceback__)[-1].name})"
         if writer is not None:
             writer.abort()
+    except BaseException:  # interrupted: leave no temporary file behind
+        if writer is not None:
+            writer.abort()
+        raise
     return outcome
 
 
@@ -222,9 +226,15 @@ class _Rewrite:
                 why = "padding cannot be told from real tokens: no attention mask and no pad id (give --pad-id)"
             elif fix == "missing-separator":
                 why = self._separator_why()
-            elif fix in DUPLICATES + ("empty-document",) and packed and job.repack is None:
+            elif fix in DUPLICATES and packed and job.repack is None:
                 why = ("rows of this shard are packed windows: dropping one would cut the documents it shares "
                        "with its neighbours; repair with --repack best-fit (or chunk) to drop whole documents")
+            elif fix == "empty-document" and packed and job.repack is None and \
+                    "zero-length-document" in job.kinds.get(fix, ()):
+                # rows without a real token are dropped; an empty document inside a packed row needs a repack
+                self.out.unfixable["empty-document zero-length-document"] = (
+                    "an empty document inside a packed row (two separators in a row) can only be left out by "
+                    "laying the documents out again: repair with --repack best-fit (or chunk)")
             elif fix in ("special-token-text", "encoding-error") and not self.text:
                 why = f"the shard has no text column {s.text_column!r}"
             if why:
