@@ -10,6 +10,7 @@ from __future__ import annotations
 import collections
 import gzip
 import hashlib
+import itertools
 import json
 import os
 import re
@@ -531,3 +532,52 @@ def test_remainders_of_split_documents_open_their_own_windows_first():
         # every opener is the first piece of a window of its own
         assert sorted(first_in_window[w] for w in set(window[np.isin(order, np.flatnonzero(opens))].tolist())) \
             == sorted(np.flatnonzero(opens).tolist())
+
+
+@pytest.mark.parametrize("kind", ["doc_lengths", "cu_seqlens"])
+def test_length_columns_say_where_documents_are_for_a_repack(tmp_path, kind):
+    # documents packed whole into padded rows, the length column giving each row's documents; some lack their eos
+    seq_len = 64
+    docs = documents(15, 90, 20)
+    rows, lengths, bodies = [], [], []
+    row, row_lengths = [], []
+    for i, doc in enumerate(docs):
+        body = doc + ([EOS] if i % 3 else [])
+        bodies.append(doc)
+        if len(row) + len(body) > seq_len:
+            rows.append(row + [PAD] * (seq_len - len(row)))
+            lengths.append(row_lengths)
+            row, row_lengths = [], []
+        row += body
+        row_lengths.append(len(body))
+    rows.append(row + [PAD] * (seq_len - len(row)))
+    lengths.append(row_lengths)
+    column = lengths if kind == "doc_lengths" else [[0] + list(itertools.accumulate(r)) + [seq_len] for r in lengths]
+    src = write(tmp_path / "in" / "lengths.parquet", {"input_ids": rows, kind: column})
+    result = repair([src], str(tmp_path / "out"), Settings(eos_id=EOS, pad_id=PAD, seq_len=seq_len), repack="chunk",
+                    jobs=1)
+    assert result.outcomes[0].facts["arrangement"]["value"] == "length-columns"
+    got = read(tmp_path / "out" / "lengths.parquet")
+    want = pack(bodies, seq_len, eos=EOS, pad=PAD, positions=False)
+    assert got["input_ids"] == want["input_ids"]
+    # the rebuilt length column: the pieces of each window (documents cut at window ends), from the same stream
+    stream_ends = list(itertools.accumulate(len(d) + 1 for d in bodies))
+    for w, (ids, lens) in enumerate(zip(got["input_ids"], got[kind])):
+        lo, hi = w * seq_len, min((w + 1) * seq_len, stream_ends[-1])
+        cuts = sorted({lo, hi} | {e for e in stream_ends if lo < e < hi})
+        pieces = [b - a for a, b in zip(cuts, cuts[1:])]
+        want_col = pieces if kind == "doc_lengths" else [0] + list(itertools.accumulate(pieces)) + (
+            [seq_len] if hi - lo < seq_len else [])
+        assert lens == want_col, w
+
+
+def test_invalid_utf8_is_listed_as_unfixable(tmp_path):
+    path = tmp_path / "bad.jsonl"
+    path.write_bytes(b'{"text": "a fine line about rice"}\n{"text": "caf\xe9 au lait"}\n{"text": "ok\\u0007"}\n')
+    result = repair([str(path)], str(tmp_path / "out"), Settings(), jobs=1)
+    outcome = result.outcomes[0]
+    assert "rows 1)" in outcome.unfixable["encoding-error invalid-utf8"]
+    assert outcome.fixes["encoding-error"].listed == [[2, 1]]  # the control character was removed
+    got = [json.loads(line) for line in (tmp_path / "out" / "bad.jsonl").read_text().splitlines()]
+    assert [g["text"] for g in got] == ["a fine line about rice", "caf\ufffd au lait", "ok"]
+    assert result.exit_code == 0

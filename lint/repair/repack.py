@@ -36,7 +36,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pyarrow as pa
-from corpuscle.io.batch import Batch
+from corpuscle.io.batch import Batch, is_integer_list
 from corpuscle.kernels.documents import RealTokens, documents_of
 
 #: Tokens of documents collected before a best-fit buffer is packed.
@@ -116,6 +116,44 @@ class DropCounts:
             listed += [[int(r), int(o)] for r, o in zip(rows[:room].tolist(), offsets[:room].tolist())]
 
 
+#: Arrangement of a shard whose length columns (``doc_lengths``: the lengths of the documents packed in each row;
+#: ``cu_seqlens``: their cumulative offsets, 0 ... row length) say where its documents are.
+LENGTHS = "length-columns"
+LENGTH_COLUMNS = ("doc_lengths", "cu_seqlens")
+
+
+def length_column(batch: Batch, settings) -> tuple[str, str] | None:
+    """``(column, kind)`` of the length column that says where the documents of a shard without position_ids
+    are (kind ``doc_lengths`` or ``cu_seqlens``), or None."""
+    if batch.has(settings.positions_column):
+        return None
+    for kind in LENGTH_COLUMNS:
+        name = getattr(settings, f"{kind}_column", kind)
+        if batch.has(name) and is_integer_list(batch.type_of(name)):
+            return name, kind
+    return None
+
+
+def length_documents(batch: Batch, tokens, real, settings) -> np.ndarray:
+    """Real tokens of each document of a batch whose length column says where its documents are (every row
+    starts a document; empty documents left out)."""
+    name, kind = length_column(batch, settings)
+    col = batch.flat(name)
+    n = tokens.values.size
+    row_of_entry = np.repeat(np.arange(col.lengths.size), col.lengths)
+    values = col.values.astype(np.int64)
+    if kind == "cu_seqlens":  # offsets 0 ... row length: every one but the row's end starts a document
+        starts = tokens.starts[row_of_entry] + values
+    else:  # doc_lengths: each document starts where the ones before it in the row end
+        csum = np.cumsum(values)
+        before_row = np.concatenate([[0], csum])[col.offsets[:-1]]
+        starts = tokens.starts[row_of_entry] + csum - values - before_row[row_of_entry]
+    starts = np.concatenate([[0], starts, tokens.starts[tokens.lengths > 0], [n]])
+    bounds = np.unique(np.clip(starts, 0, n))
+    seg = np.diff(real.upto(bounds))
+    return seg[seg > 0]
+
+
 class DocumentStream:
     """The documents of one tokenized shard, batch by batch, with the one open at a batch's end carried on.
 
@@ -147,17 +185,20 @@ class DocumentStream:
         stream = tokens.values[where]
         untrained = self.untrained_of(batch, tokens, real.mask) if self.untrained_of else None
         flags = untrained[where] if untrained is not None else np.zeros(stream.size, dtype=bool)
-        docs = documents_of(batch, s, self.arrangement)
+        if self.arrangement == LENGTHS:
+            head, lengths, tail, closes = 0, length_documents(batch, tokens, real, s), 0, True
+        else:
+            docs = documents_of(batch, s, self.arrangement)
+            head, lengths, tail, closes = int(docs.head), np.asarray(docs.lengths, dtype=np.int64), \
+                int(docs.tail), docs.closes
+
         def rows_of(at):  # shard row of the real tokens ``at`` (indices into the stream)
             return batch.rows[np.searchsorted(tokens.offsets, where[at], side="right") - 1]
 
         def offs_of(at):  # their offsets within their rows
             flat = where[at]
             return flat - tokens.offsets[np.searchsorted(tokens.offsets, flat, side="right") - 1]
-        lengths = np.asarray(docs.lengths, dtype=np.int64)
-        head = int(docs.head)
-        tail = int(docs.tail)
-        if not docs.closes:  # no document starts in this batch: it all continues the open one
+        if not closes:  # no document starts in this batch: it all continues the open one
             head, lengths, tail = stream.size, lengths[:0], 0
         closed = []
         if head:
@@ -165,7 +206,7 @@ class DocumentStream:
                 self._open_at = (int(rows_of([0])[0]), int(offs_of([0])[0]), int(rows_of([0])[0]))
             self._open.append((stream[:head], flags[:head]))
             self._open_at = (*self._open_at[:2], int(rows_of([head - 1])[0]))
-        if docs.closes and self._open:
+        if closes and self._open:
             closed.append(self._close_open())
         middle_lo = head
         middle_hi = stream.size - tail

@@ -19,7 +19,8 @@ from corpuscle.io.sources import open_shard
 from corpuscle.kernels.documents import ONE_PER_ROW, POSITIONS, SEPARATORS, infer_arrangement
 from corpuscle.kernels.tokens import real_positions
 from corpuscle.repair import fixes as fx
-from corpuscle.repair.repack import BestFitPacker, ChunkPacker, DocumentStream, Documents, window_table
+from corpuscle.repair.repack import (LENGTHS, BestFitPacker, ChunkPacker, DocumentStream, Documents, length_column,
+                                     window_table)
 from corpuscle.repair.write import InputLayout, NullWriter, ShardWriter
 from corpuscle.settings import Settings
 
@@ -138,6 +139,7 @@ class _Rewrite:
         self.fixes = list(job.fixes)
         self.arrangement = None
         self.stream = self.packer = None
+        self.invalid_utf8: list[int] = []
 
     # -- reading ----------------------------------------------------------------------------------------------
     def run(self) -> None:
@@ -194,6 +196,9 @@ class _Rewrite:
         self.text = sample is not None and sample.has(s.text_column) and is_text(sample.type_of(s.text_column))
         if self.tokenized:
             self.arrangement, why = infer_arrangement(sample, s)
+            lengths = length_column(sample, s)
+            if lengths is not None:
+                self.arrangement, why = LENGTHS, f"the {lengths[0]!r} column says where each document is"
             self.out.facts["arrangement"] = {"value": self.arrangement, "why": why}
         for key in ("eos_id", "bos_id", "pad_id", "seq_len", "labels", "vocab_size", "separator"):
             value = getattr(s, key)
@@ -214,7 +219,7 @@ class _Rewrite:
     def _decide(self) -> None:
         """Drop the fixes this shard cannot take, each with why (``unfixable`` in repair.json)."""
         s, job = self.facts, self.job
-        packed = self.arrangement in (POSITIONS, SEPARATORS)
+        packed = self.arrangement in (POSITIONS, SEPARATORS, LENGTHS)
         keep = []
         for fix in self.fixes:
             why = None
@@ -261,8 +266,9 @@ class _Rewrite:
         padding; a doubled separator is one too many.  Elsewhere a missing separator leaves no trace."""
         s = self.facts
         found = set(self.job.kinds.get("missing-separator", ()))
-        repairable = {POSITIONS: found, ONE_PER_ROW: {"unterminated-row", "doubled-eos", "doubled-bos"},
-                      SEPARATORS: {"doubled-eos", "doubled-bos"}}.get(self.arrangement, set())
+        doubled = {"doubled-eos", "doubled-bos"}
+        repairable = {POSITIONS: found, LENGTHS: found, ONE_PER_ROW: {"unterminated-row"} | doubled,
+                      SEPARATORS: doubled}.get(self.arrangement, set())
         if not found <= repairable:
             unknown = ", ".join(sorted(found - repairable))
             return (f"{unknown}: the documents of this shard are told apart only by their separators (no "
@@ -288,6 +294,9 @@ class _Rewrite:
         if self.out.error is not None:  # the shard is not written: nothing more to do
             return
         for problem in batch.problems:
+            if problem.kind == "invalid-utf8":  # kept, as read: not guessed at
+                self.invalid_utf8.append(problem.row)
+                continue
             if len(self.out.unreadable) < LISTED:
                 self.out.unreadable.append({"row": problem.row, "kind": problem.kind, "detail": problem.detail})
         if not len(batch):
@@ -492,6 +501,13 @@ class _Rewrite:
         self.writer.write(table)
 
     def _close(self) -> None:
+        if self.invalid_utf8:
+            rows = self.invalid_utf8
+            self.out.unfixable["encoding-error invalid-utf8"] = (
+                f"{len(rows):,} record(s) hold bytes that are not UTF-8 (rows {', '.join(map(str, rows[:20]))}"
+                f"{' ...' if len(rows) > 20 else ''}): what they meant cannot be known, so they are not guessed "
+                "at; the copy holds them as they were read, each bad byte as U+FFFD. Decode them from the source "
+                "with the right encoding, or drop them")
         if self.stream is None:
             return
         self._windows(self.packer.add(self.stream.close()))
