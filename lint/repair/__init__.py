@@ -125,7 +125,7 @@ def _rescan(result: RepairResult, work: list[ShardJob], settings: Settings, avai
     written = [(job, o) for job, o in zip(work, result.outcomes) if o.written]
     if not written:
         return
-    fixed = {job.out_path: {fix for fix in o.fixes if fix in FIXABLE} | set(job.fixes) - set(o.unfixable)
+    fixed = {job.out_path: ({fix for fix in o.fixes if fix in FIXABLE} | set(job.fixes)) - set(o.unfixable)
              for job, o in written}
     if any(o.repack for _, o in written):
         for job, o in written:
@@ -175,6 +175,10 @@ def summary(result: RepairResult) -> str:
     for o in result.outcomes:
         lines.append(f"{o.uri} -> {o.name}" + ("" if o.fixes or o.repack or o.unfixable or o.error else
                                                  ": nothing to fix (copied)"))
+        guessed = [f"{key} = {value['value']} ({value['source']})" for key, value in o.facts.items()
+                   if isinstance(value, dict) and str(value.get("source", "")).startswith(("inferred", "assumed"))]
+        if guessed:
+            lines.append(f"  facts inferred from the data (heuristic): {'; '.join(guessed)}")
         for fix, c in o.fixes.items():
             parts = []
             if c.rows_changed:
@@ -189,7 +193,9 @@ def summary(result: RepairResult) -> str:
                 parts.append(f"{c.tokens_added:,} tokens added")
             if c.tokens_removed:
                 parts.append(f"{c.tokens_removed:,} tokens removed")
-            lines.append(f"  {fix}: {', '.join(parts) or 'nothing changed'}")
+            estimate = (" (near-duplicates are MinHash estimates, verified by a similarity threshold: heuristic)"
+                        if "near-duplicate" in fix and (c.rows_dropped or c.documents_dropped) else "")
+            lines.append(f"  {fix}: {', '.join(parts) or 'nothing changed'}{estimate}")
         if o.repack:
             r = o.repack
             lines.append(f"  repack {r['layout']}: {r['windowsBefore']:,} -> {r['windowsAfter']:,} windows of "

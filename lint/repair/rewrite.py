@@ -67,6 +67,7 @@ class FixCount:
     tokens_removed: int = 0
     positions_changed: int = 0
     listed: list = field(default_factory=list)  # rows (or [row, offset] of documents) dropped, up to LISTED
+    listed_as: str = "dropped"  # or "removedPerRow": [row, how many strings or characters were removed]
 
     def as_dict(self) -> dict:
         out = {"rowsChanged": self.rows_changed, "rowsDropped": self.rows_dropped,
@@ -76,7 +77,7 @@ class FixCount:
         if self.positions_changed:
             out["positionsChanged"] = self.positions_changed
         if self.listed:
-            out["dropped"] = self.listed
+            out[self.listed_as] = self.listed
         return out
 
     def list(self, items) -> None:
@@ -335,7 +336,7 @@ class _Rewrite:
         dups = [f for f in self.fixes if f in DUPLICATES]
         if dups and job.drop_rows.size:
             drop = keep & np.isin(batch.rows, job.drop_rows)
-            self._dropped(dups[0], batch, drop)
+            self._dropped(",".join(dups), batch, drop)
             keep &= ~drop
         return table if keep.all() else table.filter(pa.array(keep))
 
@@ -407,6 +408,7 @@ class _Rewrite:
                 continue
             column, removed = strip(column)
             count = self.out.count(fix)
+            count.listed_as = "removedPerRow"
             changed = removed > 0
             count.rows_changed += int(np.count_nonzero(changed))
             count.positions_changed += int(removed.sum())
@@ -483,7 +485,7 @@ class _Rewrite:
                 hit |= np.searchsorted(rows, last_rows, side="right") > np.searchsorted(rows, first_rows, side="left")
             if job.drop_starts.size:
                 hit |= np.isin((start_rows << 32) | start_offsets, job.drop_starts)
-            out[dups[0]] = hit
+            out[",".join(dups)] = hit
         return out
 
     def _repack_batch(self, batch: Batch) -> None:
