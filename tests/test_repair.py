@@ -581,3 +581,15 @@ def test_invalid_utf8_is_listed_as_unfixable(tmp_path):
     got = [json.loads(line) for line in (tmp_path / "out" / "bad.jsonl").read_text().splitlines()]
     assert [g["text"] for g in got] == ["a fine line about rice", "caf\ufffd au lait", "ok"]
     assert result.exit_code == 0
+
+
+def test_a_shard_with_nothing_to_fix_is_copied_byte_for_byte(tmp_path):
+    clean = write(tmp_path / "in" / "clean.parquet", pack(documents(16, 50, 30), 32, eos=EOS, pad=PAD))
+    broken = pack(documents(17, 50, 30), 32, eos=EOS, pad=PAD)
+    broken["labels"] = [row[1:] + [IGNORE] for row in broken["labels"]]
+    write(tmp_path / "in" / "broken.parquet", broken)
+    result = repair([str(tmp_path / "in")], str(tmp_path / "out"), Settings(eos_id=EOS, pad_id=PAD), jobs=1)
+    assert result.exit_code == 0
+    assert sha256(tmp_path / "out" / "clean.parquet") == sha256(clean)
+    assert sha256(tmp_path / "out" / "broken.parquet") != sha256(tmp_path / "in" / "broken.parquet")
+    assert {o.name: bool(o.fixes) for o in result.outcomes} == {"broken.parquet": True, "clean.parquet": False}

@@ -200,7 +200,7 @@ def summary(result: RepairResult) -> str:
             r = o.repack
             lines.append(f"  repack {r['layout']}: {r['windowsBefore']:,} -> {r['windowsAfter']:,} windows of "
                          f"{r['seqLen']:,}, {r['separatorsAdded']:,} separators written")
-        for key in ("repack", "repackNote"):
+        for key in ("repack", "repackNote", "note"):
             if key in o.facts:
                 lines.append(f"  note: {'repack ' if key == 'repack' else ''}{o.facts[key]}")
         for fix, why in o.unfixable.items():

@@ -21,7 +21,7 @@ from corpuscle.kernels.tokens import real_positions
 from corpuscle.repair import fixes as fx
 from corpuscle.repair.repack import (LENGTHS, BestFitPacker, ChunkPacker, DocumentStream, Documents, length_column,
                                      window_table)
-from corpuscle.repair.write import InputLayout, NullWriter, ShardWriter
+from corpuscle.repair.write import InputLayout, NullWriter, ShardWriter, copy_atomic
 from corpuscle.settings import Settings
 
 DUPLICATES = ("exact-duplicate", "near-duplicate")
@@ -115,10 +115,13 @@ def rewrite_shard(job: ShardJob) -> ShardOutcome:
             outcome.error = (f"the shard cannot be opened ({type(exc).__name__}: {str(exc).splitlines()[0]}): "
                              "its copy is not written; restore it from its source, then repair again")
             return outcome
-        writer = (NullWriter() if job.dry_run else ShardWriter(job.shard, job.out_path, layout))
+        untouched = not job.fixes and job.repack is None  # read to count, then copied byte for byte
+        writer = NullWriter() if job.dry_run or untouched else ShardWriter(job.shard, job.out_path, layout)
         _Rewrite(job, outcome, layout, writer).run()
         if outcome.error is None:
             writer.commit()
+            if untouched and not job.dry_run:
+                copy_atomic(job.shard, job.out_path)
             outcome.written = not job.dry_run
         else:
             writer.abort()
@@ -247,6 +250,10 @@ class _Rewrite:
                 self.out.unfixable[fix] = why
             else:
                 keep.append(fix)
+            if fix == "token-range" and not why and packed and job.repack is None:
+                self.out.facts["note"] = ("rows with ids out of range are dropped whole from packed windows, "
+                                          "cutting the documents they share with the rows beside them; with "
+                                          "--repack only the documents holding such ids are dropped")
         if job.repack and not self.tokenized:
             self.out.facts["repack"] = "not applied: the shard holds raw text, not token windows"
         elif job.repack and self.tokenized and self._separator_why(for_repack=True):
@@ -508,8 +515,9 @@ class _Rewrite:
             self.out.unfixable["encoding-error invalid-utf8"] = (
                 f"{len(rows):,} record(s) hold bytes that are not UTF-8 (rows {', '.join(map(str, rows[:20]))}"
                 f"{' ...' if len(rows) > 20 else ''}): what they meant cannot be known, so they are not guessed "
-                "at; the copy holds them as they were read, each bad byte as U+FFFD. Decode them from the source "
-                "with the right encoding, or drop them")
+                "at; " + ("the copy holds them byte for byte" if not self.job.fixes and self.job.repack is None else
+                          "the copy holds them as they were read, each bad byte as U+FFFD") +
+                ". Decode them from the source with the right encoding, or drop them")
         if self.stream is None:
             return
         self._windows(self.packer.add(self.stream.close()))

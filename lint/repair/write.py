@@ -174,6 +174,32 @@ class NullWriter(_Buffered):
         pass
 
 
+def copy_atomic(shard: Shard, path: str) -> None:
+    """Copy a shard byte for byte to ``path`` (temporary file in the same folder, synced, then renamed)."""
+    folder = os.path.dirname(os.path.abspath(path))
+    os.makedirs(folder, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=".corpuscle-", suffix=".tmp", dir=folder)
+    try:
+        with os.fdopen(fd, "wb") as out:
+            source = _open_input(shard.path) if is_uri(shard.path) else open(shard.path, "rb")
+            with source:
+                while True:
+                    chunk = source.read(1 << 22)
+                    if not chunk:
+                        break
+                    out.write(chunk)
+            out.flush()
+            os.fsync(out.fileno())
+        os.chmod(tmp, 0o666 & ~_umask())
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+
+
 def _umask() -> int:
     mask = os.umask(0o022)
     os.umask(mask)
