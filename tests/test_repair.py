@@ -593,3 +593,19 @@ def test_a_shard_with_nothing_to_fix_is_copied_byte_for_byte(tmp_path):
     assert sha256(tmp_path / "out" / "clean.parquet") == sha256(clean)
     assert sha256(tmp_path / "out" / "broken.parquet") != sha256(tmp_path / "in" / "broken.parquet")
     assert {o.name: bool(o.fixes) for o in result.outcomes} == {"broken.parquet": True, "clean.parquet": False}
+
+
+def test_exit_1_when_the_rescan_still_finds_what_a_fix_should_have_removed(tmp_path, monkeypatch):
+    from corpuscle.repair import fixes
+
+    cols = pack(documents(18, 40, 30), 32, eos=EOS, pad=PAD)
+    cols["labels"] = [row[1:] + [IGNORE] for row in cols["labels"]]
+    src = write(tmp_path / "in" / "x.parquet", cols)
+    # a fix that does nothing: the rescan must catch it
+    monkeypatch.setattr(fixes, "realign_labels", lambda tokens, labels, *args, **kw: labels.copy())
+    got = cli("repair", src, "--out", tmp_path / "out", "--eos-id", EOS, "--pad-id", PAD, "--jobs", 1)
+    assert got.exit_code == 1, got.output
+    assert "label-alignment (shift+2)" in got.output
+    report = json.loads((tmp_path / "out" / "repair.json").read_text())
+    assert report["rescan"]["clean"] is False
+    assert {f["kind"] for f in report["rescan"]["stillFound"]} == {"shift+2"}
