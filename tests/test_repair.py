@@ -609,3 +609,28 @@ def test_exit_1_when_the_rescan_still_finds_what_a_fix_should_have_removed(tmp_p
     report = json.loads((tmp_path / "out" / "repair.json").read_text())
     assert report["rescan"]["clean"] is False
     assert {f["kind"] for f in report["rescan"]["stillFound"]} == {"shift+2"}
+
+
+def test_drop_list_entries_with_or_without_offsets_name_rows_of_unpacked_shards(tmp_path):
+    from types import SimpleNamespace
+
+    from corpuscle.findings import Level
+    from corpuscle.repair.plan import plan_fixes
+
+    texts = ["one note on barley", "two notes on oats", "three notes on rye", "four notes on spelt", "five"]
+    src = write(tmp_path / "notes.jsonl", {"text": texts})
+    shard = discover([src])[0]
+    finding = SimpleNamespace(rule_id="near-duplicate", kind="cluster", level=Level.warning, uri=None,
+                              instance_uris=[shard.uri, shard.uri], count=2)
+    report = SimpleNamespace(findings=[finding], outputs={"drop-list": [
+        {"uri": shard.uri, "row": 1}, {"uri": shard.uri, "row": 3, "offset": 0, "length": 19},
+        {"uri": "elsewhere.jsonl", "row": 0}]})
+    plan = plan_fixes(report, [shard], ("near-duplicate",))[shard.uri]
+    assert plan["fixes"] == ("near-duplicate",)
+    assert plan["drop_rows"].tolist() == [1] and plan["drop_starts"].tolist() == [3 << 32]
+    job = ShardJob(shard, str(tmp_path / "out" / "notes.jsonl"), "notes.jsonl", Settings(), plan["fixes"], None,
+                   plan["drop_rows"], plan["drop_starts"])
+    outcome = rewrite_shard(job)
+    got = [json.loads(line)["text"] for line in (tmp_path / "out" / "notes.jsonl").read_text().splitlines()]
+    assert got == [texts[0], texts[2], texts[4]]
+    assert outcome.fixes["near-duplicate"].listed == [1, 3]

@@ -341,8 +341,11 @@ class _Rewrite:
         if self.text and batch.has(s.text_column) and is_text(batch.type_of(s.text_column)):
             table, keep = self._text_fixes(batch, table, keep)
         dups = [f for f in self.fixes if f in DUPLICATES]
-        if dups and job.drop_rows.size:
-            drop = keep & np.isin(batch.rows, job.drop_rows)
+        if dups and (job.drop_rows.size or job.drop_starts.size):
+            # rows hold one document each here (packed shards drop documents only with a repack): a document
+            # named by where it starts names its row
+            named = np.union1d(job.drop_rows, job.drop_starts >> 32)
+            drop = keep & np.isin(batch.rows, named)
             self._dropped(",".join(dups), batch, drop)
             keep &= ~drop
         return table if keep.all() else table.filter(pa.array(keep))
