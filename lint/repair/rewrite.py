@@ -246,6 +246,9 @@ class _Rewrite:
                     "laying the documents out again: repair with --repack best-fit (or chunk)")
             elif fix in ("special-token-text", "encoding-error") and not self.text:
                 why = f"the shard has no text column {s.text_column!r}"
+            elif fix in ("special-token-text", "encoding-error") and self.tokenized:
+                why = (f"the shard holds token ids ({s.tokens_column!r}) beside its text: changing the text would "
+                       "leave the ids behind; clean the text at the source and tokenize it again")
             if why:
                 self.out.unfixable[fix] = why
             else:
