@@ -181,7 +181,8 @@ _FACT_OPTIONS = ("config_path", "eos_id", "bos_id", "pad_id", "vocab_size", "seq
 @main.command()
 @click.argument("paths", nargs=-1, required=True)
 @click.option("--out", "out", required=True, type=click.Path(file_okay=False),
-              help="Folder for the repaired shards (same relative names) and repair.json; never an input or inside one.")
+              help="Folder for the repaired shards (same relative names) and repair.json; never an input or "
+                   "inside one.")
 @click.option("--fix", "fix", metavar="RULE,...",
               help="Fix only these rules' findings (comma-separated ids) [default: every fixable one found].")
 @click.option("--repack", type=click.Choice(["best-fit", "chunk"]),
@@ -189,7 +190,7 @@ _FACT_OPTIONS = ("config_path", "eos_id", "bos_id", "pad_id", "vocab_size", "seq
 @click.option("--dry-run", is_flag=True, help="Print what would change, per shard and fix; write nothing.")
 @click.option("--jobs", type=click.IntRange(min=1), help="Shards repaired at once [default: number of cores].")
 def repair(paths, out, fix, repack, dry_run, jobs, **flags):
-    """Write corrected copies of shards under --out, then scan them again (exit 0 clean, 1 still found, 3 incomplete)."""
+    """Write corrected copies of shards under --out, then scan them again: exit 0 clean, 1 still found, 3 incomplete."""
     from corpuscle.repair import RepairUsage, parse_fixes, summary
     from corpuscle.repair import repair as run_repair
 
