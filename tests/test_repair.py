@@ -281,6 +281,9 @@ def test_best_fit_repack_of_short_documents_is_best_fit_decreasing_exactly(tmp_p
     # the windows' fills are those of best-fit decreasing over the documents' lengths (kernels.packing, which
     # tests/test_packing.py checks against Johnson et al.'s bound and a one-at-a-time reference)
     assert fills == best_fit_decreasing_fills(np.asarray([len(d) + 1 for d in kept]), seq_len).tolist()
+    layouts = result.outcomes[0].repack["layouts"]
+    assert layouts["bestFitDecreasing"] == sum(fills) == result.outcomes[0].repack["windowsAfter"]
+    assert layouts["lowerBound"] == -(-sum(len(d) + 1 for d in kept) // seq_len)
 
 
 # -- missing separators, chunk ------------------------------------------------------------------------------------

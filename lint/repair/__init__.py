@@ -198,8 +198,11 @@ def summary(result: RepairResult) -> str:
             lines.append(f"  {fix}: {', '.join(parts) or 'nothing changed'}{estimate}")
         if o.repack:
             r = o.repack
+            lay = r.get("layouts", {})
+            bound = (f" (best-fit decreasing over all documents at once: {lay['bestFitDecreasing']:,}; no layout "
+                     f"fewer than {lay['lowerBound']:,})" if lay else "")
             lines.append(f"  repack {r['layout']}: {r['windowsBefore']:,} -> {r['windowsAfter']:,} windows of "
-                         f"{r['seqLen']:,}, {r['separatorsAdded']:,} separators written")
+                         f"{r['seqLen']:,}{bound}, {r['separatorsAdded']:,} separators written")
         for key in ("repack", "repackNote", "note"):
             if key in o.facts:
                 lines.append(f"  note: {'repack ' if key == 'repack' else ''}{o.facts[key]}")

@@ -37,7 +37,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pyarrow as pa
 from corpuscle.io.batch import Batch, is_integer_list
-from corpuscle.kernels.documents import RealTokens, documents_of
+from corpuscle.kernels.documents import LengthHistogram, RealTokens, documents_of
 
 #: Tokens of documents collected before a best-fit buffer is packed.
 BUFFER_TOKENS = 1 << 21
@@ -359,11 +359,13 @@ class ChunkPacker:
         self.s, self.seq_len, self.pad_id = settings, seq_len, pad_id
         self._rest = None  # (values, untrained, positions, piece lengths) not yet in a full window
         self.separators_added = 0
+        self.lengths = LengthHistogram()  # of the documents with their separators, for the layouts they allow
 
     def add(self, docs: Documents) -> Windows | None:
         size = docs.values.size
         docs = with_separators(docs, self.s)
         self.separators_added += docs.values.size - size
+        self.lengths.add(docs.lengths)
         positions = (np.arange(docs.values.size, dtype=np.int64)
                      - np.repeat(docs.offsets[:-1], docs.lengths))
         values, flags, lengths = docs.values, docs.untrained, docs.lengths
@@ -501,11 +503,13 @@ class BestFitPacker:
         self._waiting: list[Documents] = []
         self._tokens = 0
         self.separators_added = 0
+        self.lengths = LengthHistogram()  # of the documents with their separators, for the layouts they allow
 
     def add(self, docs: Documents) -> Windows | None:
         size = docs.values.size
         docs = with_separators(docs, self.s)
         self.separators_added += docs.values.size - size
+        self.lengths.add(docs.lengths)
         if docs.count:
             self._waiting.append(docs)
             self._tokens += docs.values.size

@@ -17,6 +17,7 @@ from corpuscle.engine.infer import infer_from_batch
 from corpuscle.io.batch import Batch, Flat, Shard, enough_first_records, first_records, is_integer_list, is_text
 from corpuscle.io.sources import open_shard
 from corpuscle.kernels.documents import ONE_PER_ROW, POSITIONS, SEPARATORS, infer_arrangement
+from corpuscle.kernels.packing import compare_layouts
 from corpuscle.kernels.tokens import real_positions
 from corpuscle.repair import fixes as fx
 from corpuscle.repair.repack import (LENGTHS, BestFitPacker, ChunkPacker, DocumentStream, Documents, length_column,
@@ -549,6 +550,12 @@ class _Rewrite:
             count.tokens_added += counts.documents_without_separator
             count.rows_changed = self.windows
         self.out.repack["separatorsAdded"] = self.packer.separators_added
+        # what the layouts of kernels.packing need for the same documents, all at once (no buffers)
+        lengths = self.packer.lengths
+        layouts = compare_layouts(lengths.sizes, self.facts.seq_len, lengths.counts)
+        self.out.repack["layouts"] = {
+            "onePerWindow": layouts.one_per_window.windows, "concatChunk": layouts.concat_chunk.windows,
+            "bestFitDecreasing": layouts.best_fit_decreasing.windows, "lowerBound": layouts.lower_bound}
 
 
 def _replace(table: pa.Table, name: str, original, values: np.ndarray, offsets: np.ndarray) -> pa.Table:
