@@ -102,6 +102,20 @@ def test_labels_shifted_twice_are_rebuilt_keeping_the_prompt_masks(tmp_path):
         assert new.metrics[key] == old.metrics[key], key
 
 
+def test_a_prompt_masked_with_the_pad_id_stays_masked(tmp_path):
+    docs = documents(19, 60, 40)
+    cols = pack(docs, 48, eos=EOS, pad=PAD)
+    truth = [list(row) for row in cols["labels"]]
+    for row in truth[::2]:
+        row[2:6] = [IGNORE] * 4  # a prompt, not trained
+    marked = [[PAD if x == IGNORE else x for x in row] for row in truth]  # ignored labels written as the pad id
+    broken = [row[1:] + [PAD] for row in marked]  # and shifted twice
+    src = write(tmp_path / "p.parquet", dict(cols, labels=broken))
+    result = repair([src], str(tmp_path / "out"), Settings(eos_id=EOS, pad_id=PAD), jobs=1)
+    assert read(tmp_path / "out" / "p.parquet")["labels"] == truth
+    assert result.exit_code == 0
+
+
 def test_wrong_ignore_markers_become_the_ignore_index(tmp_path):
     docs = documents(2, 40, 30)
     cols = pack(docs, 32, eos=EOS, pad=PAD)

@@ -93,14 +93,21 @@ def train_real_eos(tokens: Flat, labels: np.ndarray, real: np.ndarray, eos_id: i
 
 
 def ignore_markers(labels: np.ndarray, real: np.ndarray, ignore_index: int, pad_id: int | None,
-                   vocab_size: int | None) -> np.ndarray:
+                   vocab_size: int | None, tokens: Flat | None = None, expected: int = 1,
+                   separators: tuple = ()) -> np.ndarray:
     """Label values that mark an ignored position with the wrong value: negative values other than ignore_index
-    (-1 ...), values >= vocab_size, and the pad id at padding."""
+    (-1 ...), values >= vocab_size, and the pad id at padding.  Given ``tokens``, also the pad id at a real
+    position whose target under the ``expected`` shift is not the pad id (a prompt masked with the pad id) --
+    unless the pad id is also a separator id (``separators``), which is a real target."""
     marker = (labels < 0) & (labels != ignore_index)
     if vocab_size is not None:
         marker |= labels >= vocab_size
     if pad_id is not None and pad_id != ignore_index:
-        marker |= ~real & (labels == pad_id)
+        is_pad = labels == pad_id
+        marker |= ~real & is_pad
+        if tokens is not None and pad_id not in separators and is_pad.any():
+            target = tokens.values == pad_id if expected == 0 else next_in_row(tokens, tokens.values == pad_id)
+            marker |= real & is_pad & ~target
     return marker
 
 
@@ -145,15 +152,16 @@ def build_labels(tokens: Flat, real: np.ndarray, untrained: np.ndarray, shifted:
 
 
 def realign_labels(tokens: Flat, labels: np.ndarray, real: np.ndarray, expected: int, ignore_index: int,
-                   pad_id: int | None, vocab_size: int | None, following: np.ndarray | None = None) -> np.ndarray:
+                   pad_id: int | None, vocab_size: int | None, following: np.ndarray | None = None,
+                   separators: tuple = ()) -> np.ndarray:
     """The label-alignment fix: labels rebuilt from input_ids in the expected convention (shift 1 or 0), keeping
     ignored what the input ignored on purpose (read through each row's observed shift) and reading wrong ignore
-    markers (-1, the pad id at padding, values >= vocab_size) as ignored.
+    markers (-1, the pad id at padding or where it is not the target, values >= vocab_size) as ignored.
 
     ``following`` (per row, the first token of the next record, -1 when unknown): under shifted labels a row's
     trained last label that equals it is kept, as the label rule accepts it: a pipeline that cuts one token
     stream into windows continues the stream there on purpose."""
-    markers = ignore_markers(labels, real, ignore_index, pad_id, vocab_size)
+    markers = ignore_markers(labels, real, ignore_index, pad_id, vocab_size, tokens, expected, separators)
     ignored = markers | (labels == ignore_index)
     shifts = row_shifts(tokens, labels, ignored, ignore_index, expected)
     untrained = untrained_targets(tokens, ignored, real, shifts)

@@ -397,7 +397,7 @@ class _Rewrite:
                 following[:-1][filled] = tokens.values[tokens.starts[1:][filled]]
                 following[-1] = -1 if next_first is None else next_first
                 new = fx.realign_labels(tokens, labels_flat.values, real, self.expected, s.ignore_index, s.pad_id,
-                                        s.vocab_size, following)
+                                        s.vocab_size, following, self._separator_ids())
                 self._changed("label-alignment", labels_flat, new)
                 labels_flat = Flat(new, labels_flat.offsets)
             if labels_flat.values is not labels:
@@ -443,6 +443,9 @@ class _Rewrite:
         count.positions_changed += int(np.count_nonzero(diff))
         count.rows_changed += int(np.count_nonzero(old.row_counts(diff)))
 
+    def _separator_ids(self) -> tuple:
+        return tuple(i for i in (self.facts.eos_id, self.facts.bos_id) if i is not None)
+
     @staticmethod
     def _parallel(batch: Batch, name: str, tokens: Flat) -> bool:
         return (batch.has(name) and is_integer_list(batch.type_of(name))
@@ -473,7 +476,8 @@ class _Rewrite:
             return None
         real = real if real is not None else np.ones(tokens.values.size, dtype=bool)
         labels = batch.flat(s.labels_column).values
-        markers = fx.ignore_markers(labels, real, s.ignore_index, s.pad_id, s.vocab_size)
+        markers = fx.ignore_markers(labels, real, s.ignore_index, s.pad_id, s.vocab_size, tokens, self.expected,
+                                    self._separator_ids())
         ignored = markers | (labels == s.ignore_index)
         shifts = fx.row_shifts(tokens, labels, ignored, s.ignore_index, self.expected)
         return fx.untrained_targets(tokens, ignored, real, shifts)
