@@ -206,6 +206,10 @@ def repair(paths, out, fix, repack, dry_run, jobs, **flags):
         click.echo(f"repair could not complete: {exc.strerror or exc} ({getattr(exc, 'filename', '') or out})",
                    err=True)
         sys.exit(3)
+    except Exception as exc:  # noqa: BLE001 - an internal error: say so in one line, exit 3 (incomplete)
+        click.echo(f"repair could not complete (internal error: {type(exc).__name__}: {exc}); the inputs are "
+                   "untouched, and a repaired shard is only ever renamed into place once it is complete", err=True)
+        sys.exit(3)
     click.echo(summary(result), nl=False)
     sys.exit(result.exit_code)
 
