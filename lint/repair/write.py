@@ -31,7 +31,8 @@ class InputLayout:
         self.ipc_stream = False
         source = _open_input(shard.path) if is_uri(shard.path) else shard.path
         if shard.format == "parquet":
-            meta = pq.ParquetFile(source).metadata
+            with pq.ParquetFile(source) as parquet:
+                meta = parquet.metadata
             self.schema = meta.schema.to_arrow_schema()
             if meta.num_row_groups:
                 self.unit_rows = max(1, meta.row_group(0).num_rows)
