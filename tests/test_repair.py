@@ -651,3 +651,40 @@ def test_drop_list_entries_with_or_without_offsets_name_rows_of_unpacked_shards(
     got = [json.loads(line)["text"] for line in (tmp_path / "out" / "notes.jsonl").read_text().splitlines()]
     assert got == [texts[0], texts[2], texts[4]]
     assert outcome.fixes["near-duplicate"].listed == [1, 3]
+
+
+def test_round_trip_of_a_shard_with_several_defects_equals_the_shard_built_right(tmp_path):
+    width, vocab = 40, 1000
+    docs = documents(20, 80, 45)
+    clean = {"input_ids": [], "labels": [], "attention_mask": []}
+    broken = {"input_ids": [], "labels": [], "attention_mask": []}
+    for i, doc in enumerate(docs):
+        real = (doc + [EOS])[:width]
+        if i == 5:
+            real[3] = vocab + 7  # an id beyond the vocabulary: the row is dropped
+        if i == 9:
+            real = []  # a row of padding only: dropped
+        fill = width - len(real)
+        ids = real + [PAD] * fill
+        mask = [1] * len(real) + [0] * fill
+        good = [ids[t + 1] if t + 1 < len(real) else IGNORE for t in range(width)]
+        bad = ids[2:] + [PAD, PAD]  # shifted twice, padding trained
+        broken["input_ids"].append(ids), broken["labels"].append(bad), broken["attention_mask"].append(mask)
+        if i not in (5, 9):
+            clean["input_ids"].append(ids), clean["labels"].append(good), clean["attention_mask"].append(mask)
+    src = write(tmp_path / "in" / "many.parquet", broken, row_group_size=16)
+    reference = write(tmp_path / "ref" / "many.parquet", clean, row_group_size=16)
+    before = sha256(src)
+    facts = dict(eos_id=EOS, pad_id=PAD, vocab_size=vocab, labels="shifted")
+    found = run(src, **facts)
+    assert {f.rule_id for f in found.findings} >= {"label-alignment", "padding-loss", "token-range",
+                                                   "empty-document"}
+    result = repair([src], str(tmp_path / "out"), Settings(**facts), jobs=1)
+    assert sha256(src) == before
+    assert result.exit_code == 0, result.still_found
+    out = tmp_path / "out" / "many.parquet"
+    assert read(out) == read(reference)
+    new, ref = run(out, **facts), run(reference, **facts)
+    assert kinds(new) == kinds(ref)
+    for key in ("rows", "tokens", "realTokenFraction", "documentTokens", "labelSupervision"):
+        assert new.metrics.get(key) == ref.metrics.get(key), key
