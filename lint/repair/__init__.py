@@ -51,7 +51,8 @@ class RepairResult:
     def as_json(self) -> dict:
         shards = []
         for o in self.outcomes:
-            entry = {"uri": o.uri, "output": o.name, "written": o.written, "facts": o.facts,
+            entry = {"uri": o.uri, "output": o.name, "written": o.written, "copiedByteForByte": o.copied,
+                     "facts": o.facts,
                      "fixes": {fix: count.as_dict() for fix, count in o.fixes.items()},
                      "unfixable": o.unfixable,
                      "budget": {"before": o.before.as_dict(), "after": o.after.as_dict()}}
@@ -167,55 +168,31 @@ def _rescan(result: RepairResult, work: list[ShardJob], settings: Settings, avai
                          if note.level.name == "error" and note.rule_id in rule_ids]
 
 
+#: Shards described one by one in the summary before the rest are only counted (repair.json has them all).
+SUMMARY_SHARDS = 20
+
+
 def summary(result: RepairResult) -> str:
-    """The short text summary for stdout."""
+    """The short text summary for stdout: what changed in the shards that changed (the first
+    :data:`SUMMARY_SHARDS`), how many were copied as they were, the token budget before and after, the rescan."""
     lines = []
     head = "repair plan (dry run: nothing written)" if result.dry_run else f"repaired into {result.out}"
     lines.append(f"{head}: {len(result.outcomes)} shard(s)" + (f", repack {result.repack}" if result.repack else ""))
-    for o in result.outcomes:
-        lines.append(f"{o.uri} -> {o.name}" + ("" if o.fixes or o.repack or o.unfixable or o.error else
-                                                 ": nothing to fix (copied)"))
-        guessed = [f"{key} = {value['value']} ({value['source']})" for key, value in o.facts.items()
-                   if isinstance(value, dict) and str(value.get("source", "")).startswith(("inferred", "assumed"))]
-        if guessed:
-            lines.append(f"  facts inferred from the data (heuristic): {'; '.join(guessed)}")
-        for fix, c in o.fixes.items():
-            parts = []
-            if c.rows_changed:
-                parts.append(f"{c.rows_changed:,} rows changed")
-            if c.positions_changed:
-                parts.append(f"{c.positions_changed:,} positions changed")
-            if c.rows_dropped:
-                parts.append(f"{c.rows_dropped:,} rows dropped")
-            if c.documents_dropped:
-                parts.append(f"{c.documents_dropped:,} documents dropped")
-            if c.tokens_added:
-                parts.append(f"{c.tokens_added:,} tokens added")
-            if c.tokens_removed:
-                parts.append(f"{c.tokens_removed:,} tokens removed")
-            estimate = (" (near-duplicates are MinHash estimates, verified by a similarity threshold: heuristic)"
-                        if "near-duplicate" in fix and (c.rows_dropped or c.documents_dropped) else "")
-            lines.append(f"  {fix}: {', '.join(parts) or 'nothing changed'}{estimate}")
-        if o.repack:
-            r = o.repack
-            lay = r.get("layouts", {})
-            bound = (f" (best-fit decreasing over all documents at once: {lay['bestFitDecreasing']:,}; no layout "
-                     f"fewer than {lay['lowerBound']:,})" if lay else "")
-            lines.append(f"  repack {r['layout']}: {r['windowsBefore']:,} -> {r['windowsAfter']:,} windows of "
-                         f"{r['seqLen']:,}{bound}, {r['separatorsAdded']:,} separators written")
-        for key in ("repack", "repackNote", "note"):
-            if key in o.facts:
-                lines.append(f"  note: {'repack ' if key == 'repack' else ''}{o.facts[key]}")
-        for fix, why in o.unfixable.items():
-            lines.append(f"  cannot fix {fix}: {why}")
-        b, a = o.before, o.after
-        lines.append(f"  budget ({b.unit}): {b.slots:,} slots, {b.real:,} real, {b.slots - b.real:,} padding -> "
-                     f"{a.slots:,} slots, {a.real:,} real, {a.slots - a.real:,} padding")
-        if o.unreadable:
-            lines.append(f"  {len(o.unreadable):,} unreadable record(s) or part(s) not copied (listed in "
-                         f"{REPORT_NAME})")
-        if o.error:
-            lines.append(f"  NOT REPAIRED: {o.error}")
+    eventful = [o for o in result.outcomes if o.fixes or o.repack or o.unfixable or o.error or o.unreadable]
+    for o in eventful[:SUMMARY_SHARDS]:
+        lines += _shard_lines(o)
+    if len(eventful) > SUMMARY_SHARDS:
+        lines.append(f"... and {len(eventful) - SUMMARY_SHARDS:,} more shard(s) with changes (see {REPORT_NAME})")
+    untouched = len(result.outcomes) - len(eventful)
+    if untouched:
+        copied = "would be copied" if result.dry_run else "copied byte for byte"
+        lines.append(f"{untouched:,} shard(s) with nothing to fix: {copied}")
+    for unit in dict.fromkeys(o.before.unit for o in result.outcomes):
+        mine = [o for o in result.outcomes if o.before.unit == unit and not o.error]
+        b = [sum(getattr(o.before, k) for o in mine) for k in ("slots", "real")]
+        a = [sum(getattr(o.after, k) for o in mine) for k in ("slots", "real")]
+        lines.append(f"budget ({unit}): {b[0]:,} slots, {b[1]:,} real, {b[0] - b[1]:,} padding -> {a[0]:,} slots, "
+                     f"{a[1]:,} real, {a[0] - a[1]:,} padding")
     if result.rescan is not None:
         if result.still_found:
             lines.append(f"rescan: {len(result.still_found)} finding(s) the fixes should have removed are still "
@@ -227,3 +204,40 @@ def summary(result: RepairResult) -> str:
         lines.append(f"details: {os.path.join(result.out, REPORT_NAME)}. Decode a few repaired windows and read them "
                      "before training on them.")
     return "\n".join(lines) + "\n"
+
+
+def _shard_lines(o: ShardOutcome) -> list[str]:
+    lines = [f"{o.uri} -> {o.name}"]
+    guessed = [f"{key} = {value['value']} ({value['source']})" for key, value in o.facts.items()
+               if isinstance(value, dict) and str(value.get("source", "")).startswith(("inferred", "assumed"))]
+    if guessed:
+        lines.append(f"  facts inferred from the data (heuristic): {'; '.join(guessed)}")
+    for fix, c in o.fixes.items():
+        parts = [f"{n:,} {what}" for n, what in (
+            (c.rows_changed, "rows changed"), (c.positions_changed, "positions changed"),
+            (c.rows_dropped, "rows dropped"), (c.documents_dropped, "documents dropped"),
+            (c.tokens_added, "tokens added"), (c.tokens_removed, "tokens removed")) if n]
+        estimate = (" (near-duplicates are MinHash estimates, verified by a similarity threshold: heuristic)"
+                    if "near-duplicate" in fix and (c.rows_dropped or c.documents_dropped) else "")
+        lines.append(f"  {fix}: {', '.join(parts) or 'nothing changed'}{estimate}")
+    if o.repack:
+        r = o.repack
+        lay = r.get("layouts", {})
+        bound = (f" (best-fit decreasing over all documents at once: {lay['bestFitDecreasing']:,}; no layout "
+                 f"fewer than {lay['lowerBound']:,})" if lay else "")
+        lines.append(f"  repack {r['layout']}: {r['windowsBefore']:,} -> {r['windowsAfter']:,} windows of "
+                     f"{r['seqLen']:,}{bound}, {r['separatorsAdded']:,} separators written")
+    for key in ("repack", "repackNote", "note"):
+        if key in o.facts:
+            lines.append(f"  note: {'repack ' if key == 'repack' else ''}{o.facts[key]}")
+    for fix, why in o.unfixable.items():
+        lines.append(f"  cannot fix {fix}: {why}")
+    if not o.error:
+        b, a = o.before, o.after
+        lines.append(f"  budget ({b.unit}): {b.slots:,} slots, {b.real:,} real -> {a.slots:,} slots, {a.real:,} real")
+    if o.unreadable:
+        kept = "copied as they are with the rest, byte for byte" if o.copied else "not copied"
+        lines.append(f"  {len(o.unreadable):,} unreadable record(s) or part(s): {kept} (listed in {REPORT_NAME})")
+    if o.error:
+        lines.append(f"  NOT REPAIRED: {o.error}")
+    return lines

@@ -100,6 +100,7 @@ class ShardOutcome:
     unreadable: list = field(default_factory=list)  # records or parts that could not be read (not copied)
     error: str | None = None
     written: bool = False
+    copied: bool = False  # written byte for byte (nothing to fix)
 
     def count(self, fix: str) -> FixCount:
         return self.fixes.setdefault(fix, FixCount())
@@ -123,6 +124,7 @@ def rewrite_shard(job: ShardJob) -> ShardOutcome:
             writer.commit()
             if untouched and not job.dry_run:
                 copy_atomic(job.shard, job.out_path)
+                outcome.copied = True
             outcome.written = not job.dry_run
         else:
             writer.abort()
@@ -211,7 +213,7 @@ class _Rewrite:
                 self.out.facts[key] = {"value": value, "source": s.source(key)}
         self.expected = 0 if s.labels == "aligned" else 1
         if s.labels is None and self.tokenized:
-            self.out.facts["labels"] = {"value": "shifted", "source": "assumed (not set, not inferable)"}
+            self.out.facts["labels"] = {"value": "shifted", "source": "assumed: not set, not inferable"}
         if self.job.labels is not None and "label-alignment" in self.fixes:
             self.expected = 0 if self.job.labels == "aligned" else 1
             self.out.facts["labels"] = {"value": self.job.labels, "source": "the corpus majority (the shard "
