@@ -104,6 +104,7 @@ class DropCounts:
     listed: dict = field(default_factory=dict)  # reason -> [(row, offset), ...] of the first few
     separators_stripped: int = 0
     documents_without_separator: int = 0
+    last_unterminated: bool = False
 
     def add(self, reason: str, lengths: np.ndarray, rows: np.ndarray, offsets: np.ndarray, cap: int) -> None:
         if lengths.size == 0:
@@ -227,9 +228,14 @@ class DocumentStream:
         return self._finish(closed)
 
     def close(self) -> Documents:
-        """The shard ended: the open document is complete."""
+        """The shard ended: the open document is complete (``counts.last_unterminated`` says whether it ended
+        without its separator: it may go on in the next shard, and gets one here like every document)."""
         if not self._open:
             return Documents.empty(self.dtype or np.int64)
+        last = self._open[-1][0]
+        s = self.s
+        if s.separator in ("eos-after", "both") and s.eos_id is not None and last.size and last[-1] != s.eos_id:
+            self.counts.last_unterminated = True
         return self._finish([self._close_open()])
 
     def _close_open(self):

@@ -556,6 +556,10 @@ class _Rewrite:
             count.tokens_added += counts.documents_without_separator
             count.rows_changed = self.windows
         self.out.repack["separatorsAdded"] = self.packer.separators_added
+        if counts.last_unterminated:
+            self.out.facts["note"] = (
+                "the shard's last document ends without eos: it may go on in the next shard (a stream cut into "
+                "shards); the repack ends it with eos like every other document, so check the next shard's start")
         # what the layouts of kernels.packing need for the same documents, all at once (no buffers)
         lengths = self.packer.lengths
         layouts = compare_layouts(lengths.sizes, self.facts.seq_len, lengths.counts)
