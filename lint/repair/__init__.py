@@ -54,7 +54,7 @@ class RepairResult:
             entry = {"uri": o.uri, "output": o.name, "written": o.written, "copiedByteForByte": o.copied,
                      "facts": o.facts,
                      "fixes": {fix: count.as_dict() for fix, count in o.fixes.items()},
-                     "unfixable": o.unfixable,
+                     "unfixable": o.unfixable, "notes": o.notes,
                      "budget": {"before": o.before.as_dict(), "after": o.after.as_dict()}}
             if o.repack is not None:
                 entry["repack"] = o.repack
@@ -178,7 +178,8 @@ def summary(result: RepairResult) -> str:
     lines = []
     head = "repair plan (dry run: nothing written)" if result.dry_run else f"repaired into {result.out}"
     lines.append(f"{head}: {len(result.outcomes)} shard(s)" + (f", repack {result.repack}" if result.repack else ""))
-    eventful = [o for o in result.outcomes if o.fixes or o.repack or o.unfixable or o.error or o.unreadable]
+    eventful = [o for o in result.outcomes
+                if o.fixes or o.repack or o.unfixable or o.error or o.unreadable or o.notes]
     for o in eventful[:SUMMARY_SHARDS]:
         lines += _shard_lines(o)
     if len(eventful) > SUMMARY_SHARDS:
@@ -227,9 +228,7 @@ def _shard_lines(o: ShardOutcome) -> list[str]:
                  f"fewer than {lay['lowerBound']:,})" if lay else "")
         lines.append(f"  repack {r['layout']}: {r['windowsBefore']:,} -> {r['windowsAfter']:,} windows of "
                      f"{r['seqLen']:,}{bound}, {r['separatorsAdded']:,} separators written")
-    for key in ("repack", "repackNote", "note"):
-        if key in o.facts:
-            lines.append(f"  note: {'repack ' if key == 'repack' else ''}{o.facts[key]}")
+    lines += [f"  note: {note}" for note in o.notes]
     for fix, why in o.unfixable.items():
         lines.append(f"  cannot fix {fix}: {why}")
     if not o.error:

@@ -101,6 +101,7 @@ class ShardOutcome:
     error: str | None = None
     written: bool = False
     copied: bool = False  # written byte for byte (nothing to fix)
+    notes: list = field(default_factory=list)  # what the user should know about this shard's copy
 
     def count(self, fix: str) -> FixCount:
         return self.fixes.setdefault(fix, FixCount())
@@ -257,11 +258,11 @@ class _Rewrite:
             else:
                 keep.append(fix)
             if fix == "token-range" and not why and packed and job.repack is None:
-                self.out.facts["note"] = ("rows with ids out of range are dropped whole from packed windows, "
+                self.out.notes.append("rows with ids out of range are dropped whole from packed windows, "
                                           "cutting the documents they share with the rows beside them; with "
                                           "--repack only the documents holding such ids are dropped")
         if job.repack and not self.tokenized:
-            self.out.facts["repack"] = "not applied: the shard holds raw text, not token windows"
+            self.out.notes.append("repack not applied: the shard holds raw text, not token windows")
         elif job.repack and self.tokenized and self._separator_why(for_repack=True):
             self.out.unfixable["repack"] = ("the documents are not known, so they cannot be laid out again: "
                                             + self._separator_why(for_repack=True))
@@ -465,7 +466,7 @@ class _Rewrite:
         self.windows = 0
         self.labels_shift = None
         if s.positions_column not in self.template.names:
-            self.out.facts["repackNote"] = (
+            self.out.notes.append(
                 f"the shard has no {s.positions_column!r} column, so the repacked windows hold several documents "
                 "with nothing but their separators between them: mask attention at the separators in the "
                 "trainer, or add position_ids")
@@ -557,7 +558,7 @@ class _Rewrite:
             count.rows_changed = self.windows
         self.out.repack["separatorsAdded"] = self.packer.separators_added
         if counts.last_unterminated:
-            self.out.facts["note"] = (
+            self.out.notes.append(
                 "the shard's last document ends without eos: it may go on in the next shard (a stream cut into "
                 "shards); the repack ends it with eos like every other document, so check the next shard's start")
         # what the layouts of kernels.packing need for the same documents, all at once (no buffers)
