@@ -688,3 +688,35 @@ def test_round_trip_of_a_shard_with_several_defects_equals_the_shard_built_right
     assert kinds(new) == kinds(ref)
     for key in ("rows", "tokens", "realTokenFraction", "documentTokens", "labelSupervision"):
         assert new.metrics.get(key) == ref.metrics.get(key), key
+
+
+@pytest.mark.parametrize("repack", [None, "best-fit", "chunk"])
+def test_memory_of_a_repair_does_not_grow_with_the_shard(tmp_path, monkeypatch, repack):
+    import tracemalloc
+
+    import corpuscle.io.sources as sources
+    import corpuscle.repair.repack as repack_module
+
+    import corpuscle.io.batch as batch_module
+
+    # small batches, buffers and first records (facts are inferred from them, as a scan does), so that both
+    # shards are many of each
+    monkeypatch.setattr(sources, "DEFAULT_BATCH_TOKENS", 16_384)
+    monkeypatch.setattr(repack_module, "BUFFER_TOKENS", 16_384)
+    monkeypatch.setattr(batch_module, "FIRST_ROWS", 64)
+    monkeypatch.setattr(batch_module, "FIRST_TOKENS", 16_384)
+    peaks = []
+    for count in (1_000, 1_000, 4_000):  # documents: about 100k and 400k tokens (the first run warms up)
+        cols = pack(documents(21, count, 200), 256, eos=EOS, pad=PAD)
+        cols["labels"] = [row[1:] + [IGNORE] for row in cols["labels"]]  # shifted twice: every row is rebuilt
+        src = write(tmp_path / f"in{len(peaks)}" / "w.parquet", cols, row_group_size=32)
+        shard = discover([src])[0]
+        job = ShardJob(shard, str(tmp_path / f"out{len(peaks)}" / "w.parquet"), "w.parquet",
+                       Settings(eos_id=EOS, pad_id=PAD), ("label-alignment",), repack)
+        tracemalloc.start()
+        outcome = rewrite_shard(job)
+        peaks.append(tracemalloc.get_traced_memory()[1])
+        tracemalloc.stop()
+        assert outcome.error is None and outcome.written
+    # four times the shard, about the same peak: batches and buffers are bounded, nothing piles up
+    assert peaks[2] < 1.5 * peaks[1], peaks

@@ -503,9 +503,9 @@ def best_fit_assign(sizes: np.ndarray, seq_len: int, opens: np.ndarray | None = 
 class BestFitPacker:
     """Best-fit decreasing in buffers of about ``buffer_tokens`` tokens of documents."""
 
-    def __init__(self, settings, seq_len: int, pad_id: int, buffer_tokens: int = BUFFER_TOKENS):
+    def __init__(self, settings, seq_len: int, pad_id: int, buffer_tokens: int | None = None):
         self.s, self.seq_len, self.pad_id = settings, seq_len, pad_id
-        self.buffer_tokens = buffer_tokens
+        self.buffer_tokens = BUFFER_TOKENS if buffer_tokens is None else buffer_tokens
         self._waiting: list[Documents] = []
         self._tokens = 0
         self.separators_added = 0
