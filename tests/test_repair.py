@@ -720,3 +720,33 @@ def test_memory_of_a_repair_does_not_grow_with_the_shard(tmp_path, monkeypatch, 
         assert outcome.error is None and outcome.written
     # four times the shard, about the same peak: batches and buffers are bounded, nothing piles up
     assert peaks[2] < 1.5 * peaks[1], peaks
+
+
+def test_clean_shards_of_every_layout_are_left_as_they_are(tmp_path):
+    docs = documents(22, 120, 50)
+    write(tmp_path / "in" / "packed_positions.parquet", pack(docs, 64, eos=EOS, pad=PAD))
+    write(tmp_path / "in" / "packed_plain.arrow", pack(documents(23, 120, 50), 64, eos=EOS, pad=PAD,
+                                                        positions=False))
+    right, left = {"input_ids": [], "labels": [], "attention_mask": []}, {"input_ids": [], "attention_mask": []}
+    for doc in documents(24, 120, 50):
+        real = (doc + [EOS])[:48]
+        fill = 48 - len(real)
+        right["input_ids"].append(real + [PAD] * fill)
+        right["labels"].append(real[1:] + [IGNORE] * (fill + 1))
+        right["attention_mask"].append([1] * len(real) + [0] * fill)
+        real = [t + 1 for t in real[:-1]] + [EOS]  # the left-padded rows are not copies of the right-padded ones
+        left["input_ids"].append([PAD] * fill + real)
+        left["attention_mask"].append([0] * fill + [1] * len(real))
+    write(tmp_path / "in" / "padded_right.jsonl", right)
+    write(tmp_path / "in" / "padded_left.jsonl.gz", left)
+    write(tmp_path / "in" / "notes.jsonl", {"text": ["a note on leeks", "another on lentils", "one on figs"]})
+    result = repair([str(tmp_path / "in")], str(tmp_path / "out"), Settings(eos_id=EOS, pad_id=PAD), jobs=1)
+    assert result.exit_code == 0
+    for o in result.outcomes:
+        assert not o.fixes and not o.unfixable and o.copied, (o.uri, o.fixes, o.unfixable)
+        assert sha256(tmp_path / "out" / o.name) == sha256(tmp_path / "in" / o.name)
+    # a shard already laid out by concatenate-and-chunk comes back the same from a chunk repack
+    again = repair([str(tmp_path / "in" / "packed_positions.parquet")], str(tmp_path / "again"),
+                   Settings(eos_id=EOS, pad_id=PAD), repack="chunk", jobs=1)
+    assert again.exit_code == 0
+    assert read(tmp_path / "again" / "packed_positions.parquet") == read(tmp_path / "in" / "packed_positions.parquet")
