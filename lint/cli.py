@@ -203,3 +203,58 @@ def _fill(text: str, indent: str) -> str:
     """Wrap at 100 columns without breaking a word or at its hyphens (rule ids and kinds stay copyable)."""
     return textwrap.fill(text, 100, initial_indent=indent, subsequent_indent=indent, break_long_words=False,
                          break_on_hyphens=False)
+
+
+#: Options of ``scan`` that ``repair`` takes as they are: the shard facts.
+_FACT_OPTIONS = ("config_path", "eos_id", "bos_id", "pad_id", "vocab_size", "seq_len", "labels", "separator",
+                 "tokenizer")
+
+
+@main.command()
+@click.argument("paths", nargs=-1, required=True)
+@click.option("--out", "out", required=True, type=click.Path(file_okay=False),
+              help="Folder for the repaired shards (same relative names) and repair.json; never an input or "
+                   "inside one.")
+@click.option("--fix", "fix", metavar="RULE,...",
+              help="Fix only these rules' findings (comma-separated ids) [default: every fixable one found].")
+@click.option("--repack", type=click.Choice(["best-fit", "chunk"]),
+              help="Lay the documents into new windows of seq_len: best-fit decreasing, or concatenate and chunk.")
+@click.option("--dry-run", is_flag=True, help="Print what would change, per shard and fix; write nothing.")
+@click.option("--jobs", type=click.IntRange(min=1), help="Shards repaired at once [default: number of cores].")
+def repair(paths, out, fix, repack, dry_run, jobs, **flags):
+    """Write corrected copies of shards under --out, then scan them again: exit 0 clean, 1 still found, 3 incomplete."""
+    from corpuscle.repair import RepairUsage, parse_fixes, summary
+    from corpuscle.repair import repair as run_repair
+
+    config_path = flags.pop("config_path", None)
+    try:
+        fixes = parse_fixes(fix)
+        config, _ = load_config(config_path)
+        settings = build(config, flags)
+        result = run_repair(list(paths), out, settings, fixes, repack, dry_run, jobs or os.cpu_count() or 1)
+    except (SettingsError, NoShardsFound, RepairUsage) as exc:
+        raise UsageProblem(str(exc)) from None
+    except OSError as exc:
+        click.echo(f"repair could not complete: {exc.strerror or exc} ({getattr(exc, 'filename', '') or out})",
+                   err=True)
+        sys.exit(3)
+    except Exception as exc:  # noqa: BLE001 - an internal error: say so in one line, exit 3 (incomplete)
+        click.echo(f"repair could not complete (internal error: {type(exc).__name__}: {exc}); the inputs are "
+                   "untouched, and a repaired shard is only ever renamed into place once it is complete", err=True)
+        sys.exit(3)
+    click.echo(summary(result), nl=False)
+    sys.exit(result.exit_code)
+
+
+def _repair_fact_options():
+    """The facts options of ``scan`` (the same objects: one definition), and ``--separator`` when scan has none."""
+    taken = [param for param in scan.params if param.name in _FACT_OPTIONS]
+    if not any(param.name == "separator" for param in taken):
+        from corpuscle.settings import SEPARATORS
+
+        taken.append(click.Option(["--separator"], type=click.Choice(SEPARATORS),
+                                  help="Separator convention: eos-after each document, bos-before, or both."))
+    return taken
+
+
+repair.params.extend(_repair_fact_options())
