@@ -15,12 +15,14 @@ from corpuscle.kernels.documents import (
     QUANTILE_METHOD,
     QUANTILES,
     TEXT,
+    UNDECIDED,
     DocumentTally,
     LengthHistogram,
     documents_of,
     infer_arrangement,
 )
 from corpuscle.kernels.packing import AsBuilt, compare_layouts, savings
+from corpuscle.kernels.tokens import inferred_facts, inferred_note
 from corpuscle.rules.api import CorpusResult, Rule, Unmergeable, consistent, pct, share
 
 #: Names of the three layouts in reports (camelCase keys) and in messages.
@@ -59,7 +61,13 @@ class _DocumentRule(Rule):
     splittable = True
 
     def missing(self, batch, settings):
-        if _tokenized(batch, settings) or _textual(batch, settings):
+        if _tokenized(batch, settings):
+            arrangement, why = infer_arrangement(batch, settings)
+            if arrangement == UNDECIDED:
+                return f"how documents sit in the rows could not be decided ({why}): give --eos-id (or --bos-id " \
+                       "with --separator bos-before), or the position_ids or document-length columns"
+            return None
+        if _textual(batch, settings):
             return None
         return f"no {settings.tokens_column!r} token column and no {settings.text_column!r} text column"
 
@@ -186,18 +194,21 @@ class OverlongDocument(_DocumentRule):
                 f"window; they hold {pct(t.overlong_tokens, tokens)} of the {tokens:,} document tokens, "
                 f"{t.beyond_window:,} of them past the first window. {fate}. Document lengths ({t.unit}): "
                 f"{figures}. Split long documents at natural boundaries before tokenizing, or train with a longer "
-                f"window.",
+                f"window." + inferred_note(s, ("seq_len", "eos_id", "bos_id", "pad_id")),
                 overlong=n, documentShare=share(n, documents), tokenShare=share(t.overlong_tokens, tokens),
                 overlongTokens=t.overlong_tokens, tokensBeyondWindow=t.beyond_window, **common))
         if state.hits.get("cut"):
             n = t.cut
+            shows = ("each row holds one document" if state.arrangement == ONE_PER_ROW
+                     else "the next row begins a new document")
             out.append(self.finding(
                 state, "cut",
-                f"{n:,} of {documents:,} documents ({pct(n, documents)}) fill their {s.seq_len:,}-token window, "
-                f"end without eos (id {s.eos_id}) and are not continued by the next row: they were cut at the "
-                f"window, and the rest of each (at least {n:,} tokens in all) was lost; if the pipeline put the rest "
+                f"{n:,} of {documents:,} documents ({pct(n, documents)}) fill their {s.seq_len:,}-token window and "
+                f"end without eos (id {s.eos_id}), and {shows}: they were cut at the window, and the rest of each "
+                f"(at least {n:,} tokens in all, a lower bound) is not in the shard; if the pipeline put the rest "
                 f"in another row, that row starts mid-document without its context. Rebuild the shard without "
-                f"truncating documents at the window (split them at natural boundaries, or pack them).",
+                f"truncating documents at the window (split them at natural boundaries, or pack them)."
+                + inferred_note(s, ("eos_id", "seq_len", "pad_id")),
                 cut=n, documentShare=share(n, documents), **common))
         return out
 
@@ -243,7 +254,8 @@ class TruncationWaste(_DocumentRule):
         budget = shard_budget(t, s.seq_len)
         built = budget["asBuilt"]
         n = t.padded_rows + t.cut
-        message = (f"{pct(built['padding'] + built['truncated'], built['slots'])} of this shard's "
+        message = (f"{'at least ' if t.cut else ''}{pct(built['padding'] + built['truncated'], built['slots'])} "
+                   f"of this shard's "
                    f"{built['slots']:,} token slots ({t.rows:,} rows) train on nothing (max_waste "
                    f"{self.opts['max_waste']:.0%}): {built['padding']:,} padding "
                    f"({pct(built['padding'], built['slots'])}, in {t.padded_rows:,} rows)")
@@ -294,7 +306,8 @@ def _as_built(slots: int, real: int, truncated: int, rows: int) -> dict:
     padding = slots - real
     return {"windows": rows, "slots": slots, "realTokens": real, "padding": padding, "truncated": truncated,
             "truncatedIsLowerBound": True, "paddingPct": 100.0 * share(padding, slots),
-            "truncatedPct": 100.0 * share(truncated, real + truncated),
+            # a share of a lower bound would read like a measurement: given only when nothing was cut
+            "truncatedPct": None if truncated else 0.0,
             "wastedFraction": share(padding + truncated, slots)}
 
 

@@ -42,11 +42,14 @@ from typing import Callable
 
 import numpy as np
 from corpuscle.io.batch import Batch, Flat, is_integer_list
+from corpuscle.kernels.tokens import RealTokens, _real_key, _running, real_tokens
 
 POSITIONS = "position-restarts"
 SEPARATORS = "separators"
 ONE_PER_ROW = "one-per-row"
 TEXT = "text"
+LENGTHS = "length-columns"
+UNDECIDED = "undecided"
 
 #: Quantiles reported for document lengths (percent), and how they are computed.
 QUANTILES = (50, 90, 99)
@@ -184,80 +187,12 @@ def percentile(sizes: np.ndarray, counts: np.ndarray, percent: float) -> float:
     return float(b - diff * (1 - t)) if t >= 0.5 else float(a + diff * t)
 
 
-# -- real tokens ----------------------------------------------------------------------------------------------
+# -- real tokens (one reading, shared with every rule: corpuscle.kernels.tokens) -----------------------------------
 
-def _running(mask: np.ndarray) -> np.ndarray:
-    """``out[i]`` = set positions in ``mask[:i]`` (length N+1), int32 when it fits."""
-    dtype = np.int32 if mask.size < np.iinfo(np.int32).max else np.int64
-    out = np.zeros(mask.size + 1, dtype=dtype)
-    np.cumsum(mask, dtype=dtype, out=out[1:])
-    return out
-
-
-class RealTokens:
-    """Which flat positions of a token column hold real tokens, not padding.
-
-    ``mask`` is None when every position is real; ``run`` is then None too (the running count is the index
-    itself).  ``per_row`` is the real tokens of each row.
-    """
-
-    def __init__(self, mask: np.ndarray | None, run: np.ndarray | None, per_row: np.ndarray):
-        self.mask = mask
-        self.run = run
-        self.per_row = per_row
-
-    @property
-    def total(self) -> int:
-        return int(self.per_row.sum())
-
-    def upto(self, index: np.ndarray) -> np.ndarray:
-        """Real tokens before each flat index."""
-        return np.asarray(index, dtype=np.int64) if self.run is None else self.run[index].astype(np.int64)
-
-    def first_from(self, index: np.ndarray) -> np.ndarray:
-        """The first real position at or after each flat index (few indices: binary search)."""
-        if self.run is None:
-            return np.asarray(index, dtype=np.int64)
-        return np.searchsorted(self.run, self.run[index] + 1, side="left") - 1
-
-    @classmethod
-    def of(cls, batch: Batch, tokens: Flat, settings) -> "RealTokens":
-        n = tokens.values.size
-        name = settings.mask_column
-        if batch.has(name) and is_integer_list(batch.type_of(name)):
-            mask_col = batch.flat(name)
-            if np.array_equal(mask_col.lengths, tokens.lengths):
-                real = mask_col.values != 0
-                if np.count_nonzero(real) == n:
-                    return cls(None, None, tokens.lengths)
-                run = _running(real)
-                return cls(real, run, (run[tokens.ends] - run[tokens.starts]).astype(np.int64))
-        pad = settings.pad_id
-        lengths = tokens.lengths
-        nonempty = lengths > 0
-        if pad is None or n == 0:
-            return cls(None, None, lengths)
-        padded = np.zeros(lengths.size, dtype=bool)
-        padded[nonempty] = tokens.values[tokens.ends[nonempty] - 1] == pad
-        if not padded.any():
-            return cls(None, None, lengths)
-        # Past the last non-pad token of each padded row: the first index where the running count of non-pad
-        # tokens reaches the row's total (rows-sized binary search over one cumulative count).
-        nonpad = _running(tokens.values != pad)
-        rows = np.flatnonzero(padded)
-        total = nonpad[tokens.ends[rows]]
-        end = np.maximum(np.searchsorted(nonpad, total, side="left"), tokens.starts[rows])
-        has_real = total > nonpad[tokens.starts[rows]]
-        if pad == settings.eos_id:  # the first pad is the eos that ends the row's last document
-            end = np.where(has_real, np.minimum(end + 1, tokens.ends[rows]), end)
-        per_row = lengths.copy()
-        per_row[rows] = end - tokens.starts[rows]
-        # Real mask: +1 at each row start, -1 past its last real token, accumulated (int8, one pass).
-        step = np.zeros(n + 1, dtype=np.int8)
-        np.add.at(step, tokens.starts[nonempty], 1)
-        np.subtract.at(step, tokens.starts[nonempty] + per_row[nonempty], 1)
-        real = np.cumsum(step[:-1], dtype=np.int8).view(np.bool_)
-        return cls(real, _running(real), per_row)
+# RealTokens and _running live in corpuscle.kernels.tokens and stay importable from here.
+__all__ = ["RealTokens", "LengthHistogram", "DocumentTally", "BatchDocuments", "documents_of", "infer_arrangement",
+           "length_column", "length_boundaries", "length_column_problems", "percentile", "QUANTILES",
+           "QUANTILE_METHOD", "POSITIONS", "SEPARATORS", "ONE_PER_ROW", "TEXT", "LENGTHS", "UNDECIDED"]
 
 
 # -- arrangement ------------------------------------------------------------------------------------------------
@@ -278,11 +213,152 @@ def _marker(settings) -> tuple[str, int | None]:
     return "eos", settings.eos_id
 
 
+def length_column(batch: Batch, settings) -> tuple[str, str, Flat] | None:
+    """The batch's document-length column, if it has one: ``(kind, column name, flat values)`` with kind
+    ``"doc_lengths"`` (lengths of the documents of each row) or ``"cu_seqlens"`` (their cumulative offsets, 0 ...
+    the row's real length)."""
+    for kind, name in (("doc_lengths", settings.doc_lengths_column), ("cu_seqlens", settings.cu_seqlens_column)):
+        if batch.has(name) and is_integer_list(batch.type_of(name)):
+            return kind, name, batch.flat(name)
+    return None
+
+
+def _piece_ends(kind: str, column: Flat) -> tuple[np.ndarray, np.ndarray]:
+    """Per entry of a length column: its row and the offset within the row where a document ends (doc_lengths:
+    the running sum within the row; cu_seqlens: the value itself)."""
+    rows = column.row_of
+    values = column.values.astype(np.int64)
+    if kind == "cu_seqlens":
+        return rows, values
+    total = np.cumsum(values)
+    before = np.concatenate([[0], total])[column.starts]  # sum of the earlier rows' entries
+    return rows, total - before[rows]
+
+
+def length_boundaries(batch: Batch, tokens: Flat, settings) -> np.ndarray:
+    """Sorted flat indices where the batch's length column starts a document inside a row (strictly between the
+    row's start and the end of its real tokens; shared per batch).  Empty without a length column."""
+    found = length_column(batch, settings)
+    if found is None:
+        return np.zeros(0, dtype=np.int64)
+    kind, name, column = found
+
+    def make():
+        if column.lengths.size != tokens.lengths.size:
+            return np.zeros(0, dtype=np.int64)
+        rows, ends = _piece_ends(kind, column)
+        per_row = real_tokens(batch, tokens, settings).per_row
+        inside = (ends > 0) & (ends < per_row[rows])
+        return np.unique(tokens.starts[rows[inside]] + ends[inside])
+    return batch.memo(("length-boundaries", name, kind) + _real_key(settings)[1:], make)
+
+
+def length_column_problems(batch: Batch, tokens: Flat, settings) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """Where the batch's length column contradicts its token rows, as batch-local ``(rows, offsets)`` per kind:
+
+    ``lengths-mismatch``: rows whose lengths do not describe the row: a negative length, cumulative offsets that
+    do not start at 0 or go down, or a total that is not the row's real length (offset: where the first problem
+    is, the smaller of the total and the real length for a wrong total);
+    ``lengths-vs-separators``: document starts the column gives inside a row that the separator does not mark
+    (under eos-after and both: the token before is not eos; under bos-before: the token is not bos; offset: the
+    start).  Needs the separator id; without it only the first kind is checked."""
+    found = length_column(batch, settings)
+    empty = (np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64))
+    if found is None:
+        return {}
+    kind, _, column = found
+    if column.lengths.size != tokens.lengths.size:
+        return {}
+    per_row = real_tokens(batch, tokens, settings).per_row
+    rows, ends = _piece_ends(kind, column)
+    values = column.values.astype(np.int64)
+    n_rows = tokens.lengths.size
+    big = np.iinfo(np.int64).max
+    first = np.full(n_rows, big, dtype=np.int64)  # per row: offset of its first problem
+    if kind == "doc_lengths":
+        bad = values < 0
+        np.minimum.at(first, rows[bad], np.maximum(ends[bad] - values[bad], 0))
+        total = np.zeros(n_rows, dtype=np.int64)
+        np.add.at(total, rows, values)
+    else:
+        lead = column.starts[column.lengths > 0]
+        wrong_start = values[lead] != 0
+        np.minimum.at(first, rows[lead[wrong_start]], 0)
+        down = np.flatnonzero(values[1:] < values[:-1]) + 1
+        down = down[~column.is_first[down]]
+        np.minimum.at(first, rows[down], np.maximum(values[down - 1], 0))
+        total = np.zeros(n_rows, dtype=np.int64)
+        has = column.lengths > 0
+        total[has] = values[column.ends[has] - 1]
+    mismatch = total != per_row
+    np.minimum.at(first, np.flatnonzero(mismatch), np.clip(np.minimum(total, per_row)[mismatch], 0, None))
+    bad_rows = np.flatnonzero(first != big)
+    out = {"lengths-mismatch": (bad_rows, first[bad_rows])}
+    name, marker = _marker(settings)
+    if marker is None:
+        out["lengths-vs-separators"] = empty
+        return out
+    starts = length_boundaries(batch, tokens, settings)
+    starts = starts[~np.isin(tokens.rows_at(starts), bad_rows)]  # a row whose lengths are wrong is reported once
+    if settings.separator in ("eos-after", "both"):
+        unmarked = tokens.values[starts - 1] != settings.eos_id
+        if settings.separator == "both" and settings.bos_id is not None:
+            unmarked |= tokens.values[starts] != settings.bos_id
+    else:
+        unmarked = tokens.values[starts] != marker
+    r, off = tokens.locate(starts[unmarked])
+    out["lengths-vs-separators"] = (r, off)
+    return out
+
+
+def _inner_restarts(batch: Batch, tokens: Flat, settings, real: RealTokens) -> np.ndarray | None:
+    """Flat indices where position_ids restart at 0 inside a row between two real tokens (None without a usable
+    position_ids column)."""
+    positions = _positions(batch, tokens, settings)
+    if positions is None:
+        return None
+    at = np.flatnonzero(positions.values == 0)
+    at = at[~tokens.is_first[at]]
+    if real.mask is not None:
+        at = at[real.mask[at] & real.mask[at - 1]]
+    return at
+
+
+def _inner_separators(tokens: Flat, real: RealTokens, name: str, marker: int) -> np.ndarray:
+    """Flat indices of the document starts a separator marks inside a row: after an eos that a real token other
+    than eos follows in the same row (a doubled eos starts no document), or at a bos that is not its row's first
+    real token."""
+    values = tokens.values
+    at = np.flatnonzero(values == marker)
+    if real.mask is not None:
+        at = at[real.mask[at]]
+    if name == "eos":
+        at = at + 1
+        at = at[at < values.size]
+        at = at[~tokens.is_first[at]]
+        keep = values[at] != marker
+        if real.mask is not None:
+            keep &= real.mask[at]
+        return at[keep]
+    first = real.first_from(tokens.starts[tokens.rows_at(at)])
+    return at[at != first]
+
+
+#: A shard is read as packed when at least this share of its first rows hold a document boundary inside them
+#: (or, when almost no row is padded, PACKED_SHARE_UNPADDED): a few rows that disagree do not change the reading.
+PACKED_SHARE = 0.10
+PACKED_SHARE_UNPADDED = 0.02
+#: Position_ids run on across rows (a row may start mid-document at a position > 0) when at least this share of
+#: the rows start at a position above 0.
+CARRY_SHARE = 0.10
+
+
 def infer_arrangement(batch: Batch, settings) -> tuple[str, str]:
-    """How documents sit in a shard's rows, from its first records: ``(arrangement, why)`` (a heuristic; cached
-    on the batch)."""
+    """How documents sit in a shard's rows, from its first records: ``(arrangement, why)`` (a heuristic decided
+    by the clear majority of the rows; cached on the batch)."""
     key = ("arrangement", settings.tokens_column, settings.mask_column, settings.positions_column,
-           settings.separator, settings.eos_id, settings.bos_id, settings.pad_id)
+           settings.separator, settings.eos_id, settings.bos_id, settings.pad_id, settings.doc_lengths_column,
+           settings.cu_seqlens_column)
     return batch.memo(key, lambda: _infer_arrangement(batch, settings))
 
 
@@ -291,32 +367,50 @@ def _infer_arrangement(batch: Batch, settings) -> tuple[str, str]:
     if not (batch.has(tok) and is_integer_list(batch.type_of(tok))):
         return TEXT, "raw text, one document per row"
     tokens = batch.flat(tok)
-    if _positions(batch, tokens, settings) is not None:
-        return POSITIONS, "position_ids restart at 0 at each document start"
+    found = length_column(batch, settings)
+    if found is not None:
+        return LENGTHS, f"the {found[1]} column gives the documents of each row"
+    real = real_tokens(batch, tokens, settings)
+    with_real = real.per_row > 0
+    rows = int(np.count_nonzero(with_real))
+    padded = int(np.count_nonzero(with_real & (real.per_row < tokens.lengths)))
+    restarts = _inner_restarts(batch, tokens, settings, real)
     name, marker = _marker(settings)
-    if marker is None:
-        return ONE_PER_ROW, f"no {name}_id known, so each row is taken as one document"
-    real = RealTokens.of(batch, tokens, settings)
-    hits = tokens.values == marker
-    if real.mask is not None:
-        hits &= real.mask
-    inside = int(np.count_nonzero(hits))
-    nonempty = real.per_row > 0
-    if name == "eos":  # an eos that is not the last real token of its row separates two documents in the row
-        edge = _last_real_index(tokens, real)[nonempty]
-    else:  # a bos that is not the first real token of its row
-        edge = real.first_from(tokens.starts[nonempty])
-    inside -= int(np.count_nonzero(tokens.values[edge] == marker))
-    if inside > 0:
-        return SEPARATORS, f"{inside:,} {name} tokens inside rows of the first {len(batch):,} rows: packed documents"
-    return ONE_PER_ROW, f"no {name} inside any of the first {len(batch):,} rows: one document per row"
-
-
-def _last_real_index(tokens: Flat, real: RealTokens) -> np.ndarray:
-    """Per row, the flat index of its last real token (rows without one: its start - 1, to be masked out)."""
-    if real.run is None:
-        return tokens.ends - 1
-    return np.searchsorted(real.run, real.run[tokens.ends], side="left") - 1
+    marks = [a for a in (restarts, None if marker is None else _inner_separators(tokens, real, name, marker))
+             if a is not None and a.size]
+    inside = np.zeros(tokens.lengths.size, dtype=bool)
+    for at in marks:
+        inside[tokens.rows_at(at)] = True
+    packed_rows = int(np.count_nonzero(inside))
+    what = " or ".join(w for w, a in (("position restarts", restarts), (f"{name}", marker)) if a is not None)
+    unpadded = padded <= max(1, int(rows * 0.01))
+    packed = packed_rows > 0 and (packed_rows >= PACKED_SHARE * rows
+                                  or (unpadded and packed_rows >= PACKED_SHARE_UNPADDED * rows))
+    where = f"of the first {rows:,} rows"
+    positions = _positions(batch, tokens, settings)
+    carry = 0
+    if positions is not None and rows and (packed or unpadded):
+        # rows that start mid-document: their first real position is above 0 (left padding aside: unpadded rows)
+        first = real.first_from(tokens.starts[with_real])
+        carry = int(np.count_nonzero(positions.values[first] > 0))
+    if carry and carry >= CARRY_SHARE * rows:
+        return POSITIONS, (f"{carry:,} {where} start at a position above 0 and {packed_rows:,} hold a document "
+                           f"boundary inside them: packed documents whose position_ids restart per document and "
+                           f"run on across rows")
+    if packed:
+        return SEPARATORS, (f"{packed_rows:,} {where} hold a document boundary inside them ({what}): packed "
+                            f"documents, joined across rows unless a separator or padding ends them")
+    if not what:
+        lengths = tokens.lengths[with_real]
+        common = np.bincount(lengths).max() if lengths.size else 0
+        if unpadded and rows and common >= 0.9 * rows:
+            return UNDECIDED, (f"{rows:,} rows of the same length, unpadded, and no eos_id, bos_id, position_ids "
+                               f"or length column to tell documents apart: whether each row is one document or a "
+                               f"window of a packed stream cannot be told")
+        return ONE_PER_ROW, (f"no separator id known and no position_ids: each row is taken as one document "
+                             f"({padded:,} {where} are padded)")
+    others = f"; {packed_rows:,} rows that hold a boundary inside are reported as such" if packed_rows else ""
+    return ONE_PER_ROW, f"no boundary ({what}) inside {rows - packed_rows:,} {where}: one document per row{others}"
 
 
 # -- documents of one batch -------------------------------------------------------------------------------------
@@ -354,7 +448,7 @@ def documents_of(batch: Batch, settings, arrangement: str) -> BatchDocuments:
     """The documents of ``batch`` under ``arrangement`` (cached on the batch, so rules sharing it pay once)."""
     key = (arrangement, settings.tokens_column, settings.text_column, settings.mask_column,
            settings.positions_column, settings.eos_id, settings.bos_id, settings.pad_id, settings.seq_len,
-           settings.separator, settings.tokenizer)
+           settings.separator, settings.tokenizer, settings.doc_lengths_column, settings.cu_seqlens_column)
     return batch.memo(("documents",) + key, lambda: _text_documents(batch, settings) if arrangement == TEXT else
                       _token_documents(batch, settings, arrangement))
 
@@ -381,27 +475,40 @@ def _token_documents(batch: Batch, settings, arrangement: str) -> BatchDocuments
     tokens = batch.flat(settings.tokens_column)
     values, offsets = tokens.values, tokens.offsets
     n = values.size
-    real = RealTokens.of(batch, tokens, settings)
+    real = real_tokens(batch, tokens, settings)
     name, marker = _marker(settings)
     nonempty = tokens.lengths > 0
 
     # Document starts (flat indices, sorted).
-    if arrangement == POSITIONS:
+    if arrangement == POSITIONS:  # position_ids restart per document and run on across rows
         restart = _positions(batch, tokens, settings).values == 0
         if real.mask is not None:
             restart &= real.mask
         starts = np.flatnonzero(restart)
-    elif arrangement == SEPARATORS:
-        hits = values == marker
-        if real.mask is not None:
-            hits &= real.mask
-        starts = np.flatnonzero(hits)
-        if name == "eos":
-            starts += 1  # a document starts after each eos
-        ended = tokens.ends[nonempty & (real.per_row < tokens.lengths)]  # padding ends a row's last document
-        if ended.size:
-            starts = np.sort(np.concatenate([starts, ended]))
-            starts = starts[np.r_[True, starts[1:] != starts[:-1]]]
+    elif arrangement in (SEPARATORS, LENGTHS):
+        # Packed rows: a document starts after each eos (at the next row's start when the eos ends a row), at each
+        # bos, where position_ids restart inside a row, where the length column says, and after a padded row. A
+        # row start that none of these marks continues the previous row's document (concatenate-and-chunk).
+        parts = []
+        eos = settings.eos_id if settings.separator in ("eos-after", "both") else None
+        bos = settings.bos_id if settings.separator in ("bos-before", "both") else None
+        if eos is not None:
+            at = np.flatnonzero(values == eos)
+            if real.mask is not None:
+                at = at[real.mask[at]]
+            parts.append(at + 1)
+        if bos is not None:
+            at = np.flatnonzero(values == bos)
+            parts.append(at[real.mask[at]] if real.mask is not None else at)
+        restarts = _inner_restarts(batch, tokens, settings, real)
+        if restarts is not None:
+            parts.append(restarts)
+        if arrangement == LENGTHS:
+            parts.append(length_boundaries(batch, tokens, settings))
+            if eos is None and bos is None:  # nothing says whether a row continues the previous one
+                parts.append(tokens.starts[nonempty])
+        parts.append(tokens.ends[nonempty & (real.per_row < tokens.lengths)])  # padding ends a row's last document
+        starts = np.unique(np.concatenate(parts)) if parts else np.zeros(0, dtype=np.int64)
     else:  # ONE_PER_ROW
         starts = tokens.starts[nonempty]
 
