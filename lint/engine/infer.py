@@ -21,6 +21,8 @@ from corpuscle.settings import Settings
 AGREEMENT = 0.9
 MIN_EVIDENCE = 4
 MAJORITY = 0.6
+#: Without an attention mask, a pad id is inferred only when at least this share of the rows end in a run of it.
+RUN_ROWS = 0.25
 
 
 def _dominant(values: np.ndarray) -> tuple[int | None, float, int]:
@@ -76,6 +78,18 @@ def infer_from_batch(settings: Settings, batch) -> Settings:
             if seen >= MIN_EVIDENCE and share >= AGREEMENT:
                 s.infer("pad_id", pad, f"id under attention_mask 0 at {share:.0%} of {seen:,} masked positions "
                                        f"in {where}")
+    has_mask = batch.has(s.mask_column) and is_integer_list(batch.type_of(s.mask_column))
+    if s.pad_id is None and not has_mask and flat.values.size:
+        # Without a mask: right padding is a run of one id at the end of many rows (a run of two or more: a row
+        # rarely ends in the same content token twice).
+        nonempty = flat.lengths >= 2
+        ends = flat.ends[nonempty]
+        run = values[ends - 1] == values[ends - 2]
+        pad, share, seen = _dominant(values[ends[run] - 1])
+        rows = int(np.count_nonzero(nonempty))
+        if seen >= MIN_EVIDENCE and share >= AGREEMENT and seen >= RUN_ROWS * rows:
+            s.infer("pad_id", pad, f"{seen:,} of {rows:,} rows in {where} end in a run of this id "
+                                   f"({share:.0%} of the rows ending in a run of one id)")
     real = RealTokens.of(batch, flat, s)  # the rules' reading of padding (pad_id as inferred, eos_id not yet)
     has_real = real.per_row > 0
     last = real.last_index(flat)

@@ -400,15 +400,15 @@ def _infer_arrangement(batch: Batch, settings) -> tuple[str, str]:
     if packed:
         return SEPARATORS, (f"{packed_rows:,} {where} hold a document boundary inside them ({what}): packed "
                             f"documents, joined across rows unless a separator or padding ends them")
-    if not what:
+    if marker is None and (restarts is None or not restarts.size):
         lengths = tokens.lengths[with_real]
         common = np.bincount(lengths).max() if lengths.size else 0
         if unpadded and rows and common >= 0.9 * rows:
-            return UNDECIDED, (f"{rows:,} rows of the same length, unpadded, and no eos_id, bos_id, position_ids "
-                               f"or length column to tell documents apart: whether each row is one document or a "
-                               f"window of a packed stream cannot be told")
-        return ONE_PER_ROW, (f"no separator id known and no position_ids: each row is taken as one document "
-                             f"({padded:,} {where} are padded)")
+            return UNDECIDED, (f"{rows:,} rows of the same length, unpadded, and no {name}_id, no position "
+                               f"restart inside a row and no length column to tell documents apart: whether each "
+                               f"row is one document or a window of a packed stream cannot be told")
+        return ONE_PER_ROW, (f"no {name}_id known and no position restart inside a row: each row is taken as one "
+                             f"document ({padded:,} {where} are padded)")
     others = f"; {packed_rows:,} rows that hold a boundary inside are reported as such" if packed_rows else ""
     return ONE_PER_ROW, f"no boundary ({what}) inside {rows - packed_rows:,} {where}: one document per row{others}"
 
