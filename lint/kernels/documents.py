@@ -344,10 +344,13 @@ def _inner_separators(tokens: Flat, real: RealTokens, name: str, marker: int) ->
     return at[at != first]
 
 
-#: A shard is read as packed when at least this share of its first rows hold a document boundary inside them
-#: (or, when almost no row is padded, PACKED_SHARE_UNPADDED): a few rows that disagree do not change the reading.
+#: A shard is read as packed when at least this share of its first rows hold a document boundary inside them (or
+#: PACKED_SHARE_UNPADDED, and at least two rows, when at most MOSTLY_PADDED of the rows are padded: long documents
+#: packed into windows leave few rows with a boundary inside, one padded document per row pads most rows): a few
+#: rows that disagree do not change the reading.
 PACKED_SHARE = 0.10
 PACKED_SHARE_UNPADDED = 0.02
+MOSTLY_PADDED = 0.5
 #: Position_ids run on across rows (a row may start mid-document at a position > 0) when at least this share of
 #: the rows start at a position above 0.
 CARRY_SHARE = 0.10
@@ -384,8 +387,10 @@ def _infer_arrangement(batch: Batch, settings) -> tuple[str, str]:
     packed_rows = int(np.count_nonzero(inside))
     what = " or ".join(w for w, a in (("position restarts", restarts), (f"{name}", marker)) if a is not None)
     unpadded = padded <= max(1, int(rows * 0.01))
+    few = PACKED_SHARE_UNPADDED * rows
     packed = packed_rows > 0 and (packed_rows >= PACKED_SHARE * rows
-                                  or (unpadded and packed_rows >= PACKED_SHARE_UNPADDED * rows))
+                                  or (unpadded and packed_rows >= few)
+                                  or (padded <= MOSTLY_PADDED * rows and packed_rows >= max(2, few)))
     where = f"of the first {rows:,} rows"
     positions = _positions(batch, tokens, settings)
     carry = 0
@@ -402,8 +407,10 @@ def _infer_arrangement(batch: Batch, settings) -> tuple[str, str]:
                             f"documents, joined across rows unless a separator or padding ends them")
     if marker is None and (restarts is None or not restarts.size):
         lengths = tokens.lengths[with_real]
-        common = np.bincount(lengths).max() if lengths.size else 0
-        if unpadded and rows and common >= 0.9 * rows:
+        counts = np.bincount(lengths) if lengths.size else np.zeros(1, dtype=np.int64)
+        common, length = counts.max(), int(counts.argmax())
+        fits = settings.seq_len is None or length <= settings.seq_len  # rows over the window are split anyway
+        if unpadded and rows and common >= 0.9 * rows and fits:
             return UNDECIDED, (f"{rows:,} rows of the same length, unpadded, and no {name}_id, no position "
                                f"restart inside a row and no length column to tell documents apart: whether each "
                                f"row is one document or a window of a packed stream cannot be told")
