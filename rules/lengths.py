@@ -15,11 +15,11 @@ from corpuscle.kernels.documents import (
     QUANTILE_METHOD,
     QUANTILES,
     TEXT,
-    UNDECIDED,
     DocumentTally,
     LengthHistogram,
     documents_of,
     infer_arrangement,
+    undecided,
 )
 from corpuscle.kernels.packing import AsBuilt, compare_layouts, savings
 from corpuscle.kernels.tokens import inferred_facts, inferred_note
@@ -62,8 +62,8 @@ class _DocumentRule(Rule):
 
     def missing(self, batch, settings):
         if _tokenized(batch, settings):
-            arrangement, why = infer_arrangement(batch, settings)
-            if arrangement == UNDECIDED:
+            why = undecided(batch, settings)
+            if why:
                 return f"how documents sit in the rows could not be decided ({why}): give --eos-id (or --bos-id " \
                        "with --separator bos-before), or the position_ids or document-length columns"
             return None

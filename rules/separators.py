@@ -36,7 +36,7 @@ PACKED_PADDED_SHARE = 0.01
 
 class MissingSeparator(Rule):
     """Documents packed into a window must be separated, or the model learns to continue one document with the
-    next and never learns where a document ends (and, at inference, never stops). Four checks, under the shard's
+    next and never learns where a document ends (and, at inference, never stops). Five checks, under the shard's
     separator convention (eos-after, bos-before or both).
 
     (1) Boundaries: with position_ids, every document start after the first in a row (position_ids restart at 0
@@ -56,13 +56,20 @@ class MissingSeparator(Rule):
     both adding one); offset = the second. When pad_id equals eos_id, trailing eos padding is padding, not a
     doubled separator (the attention mask decides when present).
 
+    (5) Document-length columns (``doc_lengths``: the lengths of the documents packed in each row;
+    ``cu_seqlens``: their cumulative offsets, from 0 to the row's real length), when present: each row's lengths
+    must be non-negative (offsets monotonic, starting at 0) and add up to the row's real tokens
+    (``lengths-mismatch``, offset = where the first disagreement is), and every document start they give inside a
+    row must be marked by the separator (``lengths-vs-separators``, offset = the start).
+
     Needs eos_id (eos-after), bos_id (bos-before) or both (both), given or inferred; otherwise the shard is
     skipped with a note. A known bos_id is also checked for doubling under eos-after.
     """
 
     id = "missing-separator"
     level = Level.error
-    summary = "Document boundaries without the separator; shards with no separators at all; doubled separators."
+    summary = ("Document boundaries without the separator; shards with no separators at all; doubled separators; "
+               "document-length columns that contradict the row or its separators.")
     kinds = {
         "boundary-no-eos": "document starts inside a row not preceded by eos",
         "boundary-no-bos": "document starts inside a row that do not begin with bos",

@@ -242,3 +242,19 @@ def test_separator_and_columns_from_the_command_line(matrix, tmp_path):
     for flag in ("--labels-column", "--mask-column", "--text-column", "--doc-lengths-column", "--cu-seqlens-column",
                  "--ignore-index"):
         assert flag in runner.invoke(main, ["scan", "--help"]).output
+
+
+def test_masked_real_tokens_are_not_called_labels_at_padding(tmp_path):
+    """Issue 10 item 6: a mask of 0 over real tokens (not the pad id) is reported as masked real tokens; their
+    labels are not "labels at positions that are padding"."""
+    ids = [[5, 6, 7, L.EOS, 0, 0], [8, 9, 10, 11, L.EOS, 0], [4, 5, L.EOS, 0, 0, 0], [6, 6, 7, 8, 9, L.EOS]]
+    mask = [[int(t != 0) for t in row] for row in ids]
+    mask[1][1] = mask[1][2] = 0  # two real tokens hidden
+    labels = [[v if m else L.IGNORE for v, m in zip(row[1:] + [L.IGNORE], mrow[1:] + [0])]
+              for row, mrow in zip(ids, mask)]
+    labels[1][1] = 10  # trained although its token is masked (it is real: id 9, not the pad id)
+    path = write(tmp_path / "masked.parquet", {"input_ids": ids, "attention_mask": mask, "labels": labels})
+    report = scan([path], Settings(eos_id=L.EOS, pad_id=0, labels="shifted", seq_len=6), jobs=1)
+    (hidden,) = findings(report, "padding-loss", "masked-real-tokens")
+    assert locations(hidden) == [(1, 1)] and hidden.evidence["positions"] == 2
+    assert findings(report, "padding-loss", "trained-padding") == []

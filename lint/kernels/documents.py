@@ -191,7 +191,7 @@ def percentile(sizes: np.ndarray, counts: np.ndarray, percent: float) -> float:
 
 # RealTokens and _running live in corpuscle.kernels.tokens and stay importable from here.
 __all__ = ["RealTokens", "LengthHistogram", "DocumentTally", "BatchDocuments", "documents_of", "infer_arrangement",
-           "length_column", "length_boundaries", "length_column_problems", "percentile", "QUANTILES",
+           "length_column", "length_boundaries", "length_column_problems", "undecided", "percentile", "QUANTILES",
            "QUANTILE_METHOD", "POSITIONS", "SEPARATORS", "ONE_PER_ROW", "TEXT", "LENGTHS", "UNDECIDED"]
 
 
@@ -354,6 +354,15 @@ MOSTLY_PADDED = 0.5
 #: Position_ids run on across rows (a row may start mid-document at a position > 0) when at least this share of
 #: the rows start at a position above 0.
 CARRY_SHARE = 0.10
+
+
+def undecided(batch: Batch, settings) -> str | None:
+    """Why the documents of this token batch cannot be told apart (see :data:`UNDECIDED`), or None; cheap when a
+    separator id is known (then they always can)."""
+    if _marker(settings)[1] is not None or length_column(batch, settings) is not None:
+        return None
+    arrangement, why = infer_arrangement(batch, settings)
+    return why if arrangement == UNDECIDED else None
 
 
 def infer_arrangement(batch: Batch, settings) -> tuple[str, str]:
