@@ -132,8 +132,9 @@ class PaddingLoss(Rule):
     def missing(self, batch, settings):
         reason = super().missing(batch, settings)
         if reason is None and settings.pad_id is None and not _has(batch, settings.mask_column):
-            reason = (f"no {settings.mask_column!r} column and pad_id is not set or inferred: padding cannot be "
-                      "told from real tokens (give --pad-id)")
+            why = settings.undecided.get("pad_id")
+            reason = (f"no {settings.mask_column!r} column and pad_id is not set or inferred"
+                      f"{f' ({why})' if why else ''}: padding cannot be told from real tokens (give --pad-id)")
         return reason
 
     splittable = True

@@ -230,7 +230,7 @@ def one_per_row(docs_ids, side="right", mask=True, pad=PAD, labels=False) -> Lay
         m = [1] * len(doc) + [0] * fill if side == "right" else [0] * fill + [1] * len(doc)
         ids.append(row)
         masks.append(m)
-        lab.append([v if keep else IGNORE for v, keep in zip(shifted(row), shifted(m)[:-1] + [0])])
+        lab.append([v if here and after else IGNORE for v, here, after in zip(shifted(row), m, m[1:] + [0])])
         lengths.append(len(doc))
     cols = {"input_ids": ids}
     if mask:
@@ -339,6 +339,8 @@ def plant(layout: Layout, tokenizer=None) -> Layout:
         r = 12
         t = max(i for i, v in enumerate(ids[r]) if v == EOS and (i == 0 or ids[r][i - 1] != EOS))
         ids[r][t - 1] = EOS
+        if "labels" in cols and cols["labels"][r][t - 2] != IGNORE:  # labels still follow the tokens
+            cols["labels"][r][t - 2] = EOS
         defect = ("missing-separator", "doubled-eos", r, t)
     elif "position_ids" in cols and name.startswith("chunk") and "window" not in name:
         # a missing separator: the eos before an inner document start becomes a content token
@@ -416,11 +418,17 @@ def matrix(tmpdir: str) -> tuple[list[Layout], str]:
     out["best-fit-positions-zero"] = best_fit(ids, "zero")
     out["best-fit-positions-count"] = best_fit(ids, "count")
     out["one-per-row-right"] = one_per_row(ids, "right", labels=True)
-    out["one-per-row-left"] = one_per_row(ids, "left")
-    out["one-per-row-right-no-mask"] = one_per_row(ids, "right", mask=False)
+    out["one-per-row-left"] = one_per_row(ids, "left", labels=True)
+    out["one-per-row-right-no-mask"] = one_per_row(ids, "right", mask=False, labels=True)
     out["one-per-row-pad-is-eos"] = one_per_row(ids, "right", pad=EOS, labels=True)
-    out["one-per-row-pad-is-eos-no-mask"] = one_per_row(ids, "right", mask=False, pad=EOS)
+    out["one-per-row-pad-is-eos-no-mask"] = one_per_row(ids, "right", mask=False, pad=EOS, labels=True)
     out["variable-rows"] = variable_rows(ids)
+    out["chunk-positions-window-labels-shifted-boundary"] = chunked(ids, "window", labels="shifted",
+                                                                    boundary_ignored=True)
+    out["chunk-no-positions-labels-aligned-boundary"] = chunked(ids, None, labels="aligned", boundary_ignored=True)
+    out["chunk-bos-eos-no-positions"] = chunked(ids, None, bos=True, eos=True)
+    out["chunk-bos-before-no-positions"] = chunked(ids, None, bos=True, eos=False)
+    out["chunk-doc_lengths-positions"] = chunked(ids, "document", lengths_column="doc_lengths")
     for kind in ("uint16", "int32", "int64", "large_list", "fixed_size_list"):
         out[f"chunk-{kind}"] = typed(out["chunk-positions-document"], kind)
     out["text-bytes"] = text_layout(docs, None)

@@ -88,8 +88,20 @@ def infer_from_batch(settings: Settings, batch) -> Settings:
         pad, share, seen = _dominant(values[ends[run] - 1])
         rows = int(np.count_nonzero(nonempty))
         if seen >= MIN_EVIDENCE and share >= AGREEMENT and seen >= RUN_ROWS * rows:
-            s.infer("pad_id", pad, f"{seen:,} of {rows:,} rows in {where} end in a run of this id "
-                                   f"({share:.0%} of the rows ending in a run of one id)")
+            # Only with the id before the run agreeing too (the eos): when it varies, the run may begin with the
+            # eos itself (pad id = eos id) or the shard has no eos, and the ids alone cannot tell which.
+            trial = dataclasses.replace(s, pad_id=pad)
+            trial_real = RealTokens.of(batch, flat, trial)
+            padded = (trial_real.per_row > 0) & (trial_real.per_row < flat.lengths)
+            before, agree, _ = _dominant(values[trial_real.last_index(flat)[padded]])
+            if agree >= AGREEMENT:
+                s.infer("pad_id", pad, f"{seen:,} of {rows:,} rows in {where} end in a run of this id "
+                                       f"({share:.0%} of the rows ending in a run of one id), after id {before} "
+                                       f"in {agree:.0%} of them")
+            else:
+                s.undecided["pad_id"] = (f"{seen:,} of {rows:,} rows in {where} end in a run of id {pad}, but the "
+                                         f"ids before it agree at {agree:.0%} at most: {pad} may be the eos id as "
+                                         f"well, or the shard has no eos")
     real = RealTokens.of(batch, flat, s)  # the rules' reading of padding (pad_id as inferred, eos_id not yet)
     has_real = real.per_row > 0
     last = real.last_index(flat)
