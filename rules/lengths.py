@@ -257,7 +257,7 @@ class TruncationWaste(_DocumentRule):
         message = (f"{'at least ' if t.cut else ''}{pct(built['padding'] + built['truncated'], built['slots'])} "
                    f"of this shard's "
                    f"{built['slots']:,} token slots ({t.rows:,} rows) train on nothing (max_waste "
-                   f"{self.opts['max_waste']:.0%}): {built['padding']:,} padding "
+                   f"{self.opts['max_waste']:.0%}): {built['padding']:,} slots of padding "
                    f"({pct(built['padding'], built['slots'])}, in {t.padded_rows:,} rows)")
         if t.cut:
             message += (f" and at least {built['truncated']:,} tokens lost to truncation ({t.cut:,} documents cut "

@@ -152,6 +152,10 @@ def test_planted_defect_is_found_at_its_row_and_offset(matrix, name, run):
         return
     found = findings(report, rule, kind)
     assert len(found) == 1 and locations(found[0]) == [(row, offset)]
+    if run == "no-facts" and kind in ("boundary-no-eos", "boundary-no-bos", "unterminated-row", "doubled-eos",
+                                      "doubled-bos", "lengths-vs-separators"):
+        # the separator id was inferred, and the finding says that it rests on it
+        assert "inferred from the data (heuristic)" in found[0].message
     # nothing else at error level but the defect (and label-alignment's view of the same padded label)
     others = {(f.rule_id, f.kind) for f in report.findings if f.level >= Level.error} - {(rule, kind)}
     assert others <= {("label-alignment", "pad-label")}
