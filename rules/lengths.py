@@ -8,6 +8,8 @@ from __future__ import annotations
 
 import copy
 
+import numpy as np
+
 from corpuscle.findings import Finding, Level
 from corpuscle.io.batch import is_integer_list, is_text
 from corpuscle.kernels.documents import (
@@ -18,11 +20,13 @@ from corpuscle.kernels.documents import (
     DocumentTally,
     LengthHistogram,
     documents_of,
+    stitch_shards,
+    stitched_lengths,
     infer_arrangement,
     undecided,
 )
 from corpuscle.kernels.packing import AsBuilt, compare_layouts, savings
-from corpuscle.kernels.tokens import inferred_facts, inferred_note
+from corpuscle.kernels.tokens import inferred_note
 from corpuscle.rules.api import CorpusResult, Rule, Unmergeable, consistent, pct, share
 
 #: Names of the three layouts in reports (camelCase keys) and in messages.
@@ -146,6 +150,7 @@ class OverlongDocument(_DocumentRule):
     kinds = {
         "longer-than-window": "documents longer than the context window",
         "cut": "documents cut at the window and not continued",
+        "across-shards": "documents that run from one shard into the next and are longer than the window together",
     }
     help = ("Split long documents at natural boundaries (sections, paragraphs) before tokenizing, so that each "
             "piece fits the window; or pack them into full windows plus a remainder (best-fit decreasing) instead "
@@ -163,6 +168,34 @@ class OverlongDocument(_DocumentRule):
         if settings.seq_len is None:
             return "seq_len is not set and could not be inferred (give --seq-len)"
         return None
+
+    def corpus(self, states):
+        """Documents of a packed stream that run from one shard into the next and are longer than the window only
+        together (each piece was measured in its own shard)."""
+        tallies = [st.tally for st in states]
+        over = []
+        for st in stitch_shards(tallies):
+            seq_len = tallies[st.before].seq_len
+            pieces = [st.pieces[0], st.pieces[1]] + [tallies[k].opening[0] for k in range(st.before + 1, st.after)]
+            if seq_len is not None and st.length > seq_len and max(pieces) <= seq_len:
+                over.append(st)
+        if not over:
+            return CorpusResult([], {})
+        seq_len = tallies[over[0].before].seq_len
+        n = len(over)
+        message = (f"{n:,} documents run from the end of one shard into the start of the next (no eos and no "
+                   f"padding ends the first shard's last document, and the next shard's first tokens start no "
+                   f"document) and are longer than the {seq_len:,}-token window together, though each piece fits "
+                   f"(longest {max(st.length for st in over):,} tokens; location = where each starts). Each "
+                   f"continuation window starts mid-document without its context; if the shards are not one "
+                   f"stream, end every shard's last document with eos.")
+        finding = Finding(rule_id=self.id, level=self.level, message=message, uri=None, kind="across-shards",
+                          count=n, rows=np.asarray([st.row for st in over], dtype=np.int64),
+                          offsets=np.asarray([st.offset for st in over], dtype=np.int64),
+                          instance_uris=[states[st.before].uri for st in over],
+                          evidence={"documents": n, "seqLen": seq_len,
+                                    "lengths": [st.length for st in over][:100]})
+        return CorpusResult([finding], {})
 
     def _callbacks(self, state):
         return {"on_overlong": lambda rows, offs: state.hit_at("longer-than-window", rows, offs),
@@ -286,17 +319,21 @@ class TruncationWaste(_DocumentRule):
     def corpus(self, states):
         metrics: dict = {}
         by_unit: dict[str, list] = {}
-        for st in states:
+        tallies = [st.tally for st in states]
+        stitched = stitch_shards(tallies)  # documents of a packed stream that run from one shard into the next
+        for i, st in enumerate(states):
             if st.tally.unit:
-                by_unit.setdefault(st.tally.unit, []).append(st.tally.lengths)
+                by_unit.setdefault(st.tally.unit, []).append(i)
         for unit, key in (("tokens", "documentTokens"), ("bytes", "documentBytes")):
             if unit in by_unit:
-                metrics[key] = {"unit": unit, **length_summary(LengthHistogram.merged(by_unit[unit]))}
+                metrics[key] = {"unit": unit, **length_summary(stitched_lengths(tallies, stitched, by_unit[unit]))}
+                if unit == "tokens" and stitched:
+                    metrics[key]["documentsAcrossShards"] = len(stitched)
         token_states = [st for st in states
                         if st.tally.unit == "tokens" and st.arrangement != TEXT and st.tally.slots]
         if token_states:
             metrics["tokenBudget"] = corpus_budget([st.tally for st in token_states],
-                                                   [st.settings.seq_len for st in token_states])
+                                                   [st.settings.seq_len for st in token_states], stitched=True)
         return CorpusResult([], metrics)
 
 
@@ -340,14 +377,16 @@ def shard_budget(tally: DocumentTally, seq_len: int | None) -> dict:
     return out
 
 
-def corpus_budget(tallies: list[DocumentTally], seq_lens: list[int | None]) -> dict:
+def corpus_budget(tallies: list[DocumentTally], seq_lens: list[int | None], stitched: bool = False) -> dict:
     """The token budget over many shards: as built, summed; the layouts of all documents packed together, per
-    seq_len (shards with different windows are packed separately and the windows added up)."""
+    seq_len (shards with different windows are packed separately and the windows added up).  With ``stitched``,
+    documents that run from one of the (consecutive) shards into the next count once, whole."""
+    joined = stitch_shards(tallies) if stitched else []
     slots = sum(t.slots for t in tallies)
     real = sum(t.real_tokens for t in tallies)
     truncated = sum(t.cut for t in tallies)
     rows = sum(t.rows for t in tallies)
-    merged = LengthHistogram.merged(t.lengths for t in tallies)
+    merged = stitched_lengths(tallies, joined)
     known = sorted({s for s in seq_lens if s is not None})
     out = {"unit": "tokens", "seqLen": known[0] if len(known) == 1 else known, "shards": len(tallies),
            "documents": merged.documents, "documentTokens": merged.tokens,
@@ -362,7 +401,7 @@ def corpus_budget(tallies: list[DocumentTally], seq_lens: list[int | None]) -> d
               for name, key in LAYOUT_KEYS.items()}
     lower = 0
     for seq_len in known:
-        group = LengthHistogram.merged(t.lengths for t, s in with_window if s == seq_len)
+        group = stitched_lengths(tallies, joined, [i for i, s in enumerate(seq_lens) if s == seq_len])
         layouts = compare_layouts(group.sizes, seq_len, group.counts)
         lower += layouts.lower_bound
         for layout in layouts:

@@ -18,7 +18,9 @@ from corpuscle.cli import main
 from corpuscle.findings import Level
 
 from tests import layouts as L
-from tests.shards import findings, locations, write
+from corpuscle.report import sarif
+
+from tests.shards import findings, locations, validate_sarif, write
 
 NAMES = ["chunk-positions-window", "chunk-positions-document", "chunk-positions-carry", "chunk-no-positions",
          "chunk-bos-before", "chunk-bos-eos", "chunk-doc_lengths", "chunk-cu_seqlens", "chunk-labels-shifted",
@@ -272,3 +274,52 @@ def test_masked_real_tokens_are_not_called_labels_at_padding(tmp_path):
     (hidden,) = findings(report, "padding-loss", "masked-real-tokens")
     assert locations(hidden) == [(1, 1)] and hidden.evidence["positions"] == 2
     assert findings(report, "padding-loss", "trained-padding") == []
+
+
+@pytest.mark.parametrize("name", ["chunk-positions-document", "chunk-positions-carry", "chunk-no-positions",
+                                  "chunk-bos-eos"])
+def test_packed_stream_measured_across_shards(matrix, tmp_path, name):
+    """A packed stream written as three consecutive shards reads as the one shard does: documents that run from
+    one shard into the next count once, whole (figures equal to the numpy ones of the single shard)."""
+    layouts, _ = matrix
+    lay = layouts[name]
+    ids = lay.columns["input_ids"]
+    cuts = [19, 37]  # row indices where the stream is cut into shards (each inside a long document or not)
+    paths = []
+    for k, (lo, hi) in enumerate(zip([0] + cuts, cuts + [len(ids)])):
+        paths.append(write(tmp_path / f"part-{k}.parquet", {c: v[lo:hi] for c, v in lay.columns.items()}))
+    report = scan(paths, Settings(**lay.facts), jobs=1)
+    lengths = np.asarray(lay.doc_lengths)
+    figures = report.metrics["documentTokens"]
+    expected = {"documents": lengths.size, "max": int(lengths.max())}
+    expected.update({f"p{p}": float(np.percentile(lengths, p)) for p in (50, 90, 99)})
+    assert {k: figures[k] for k in expected} == expected
+    assert report.metrics["tokenBudget"]["documents"] == lengths.size
+    assert not [f for f in report.findings if f.level >= Level.error]
+    # long documents: the per-shard findings count the pieces over the window, the corpus finding the documents
+    # over it only when joined; none is cut
+    assert findings(report, "overlong-document", "cut") == []
+
+
+def test_document_longer_than_the_window_only_across_two_shards(matrix, tmp_path):
+    """The 66-token document (65 words and its eos) cut by a shard boundary into two pieces that each fit the
+    window: reported once, across the shards, at its start in the first shard."""
+    layouts, _ = matrix
+    lay = layouts["chunk-positions-document"]
+    lengths = np.asarray(lay.doc_lengths)
+    doc = int(np.flatnonzero(lengths == L.WINDOW + 2)[0])
+    start = int(lengths[:doc].sum())
+    cut = start // L.WINDOW + 1  # the first row boundary inside the document
+    assert 0 < cut * L.WINDOW - start <= L.WINDOW and start + lengths[doc] - cut * L.WINDOW <= L.WINDOW
+    ids = lay.columns["input_ids"]
+    paths = [write(tmp_path / f"s{k}.parquet", {c: v[lo:hi] for c, v in lay.columns.items()})
+             for k, (lo, hi) in enumerate([(0, cut), (cut, len(ids))])]
+    report = scan(paths, Settings(**lay.facts), jobs=1)
+    (across,) = findings(report, "overlong-document", "across-shards")
+    assert across.count == 1 and across.evidence["lengths"] == [L.WINDOW + 2]
+    assert across.instances() == [{"row": start // L.WINDOW, "offset": start % L.WINDOW, "uri": paths[0]}]
+    assert report.metrics["documentTokens"]["documents"] == lengths.size
+    log = validate_sarif(json.loads(sarif.render(report)))  # the OASIS SARIF 2.1.0 schema (tests/data)
+    (result,) = [r for r in log["runs"][0]["results"] if r["ruleId"] == "overlong-document"
+                 and r["properties"]["instances"][0].get("uri")]
+    assert result["properties"]["count"] == 1

@@ -42,7 +42,7 @@ from typing import Callable
 
 import numpy as np
 from corpuscle.io.batch import Batch, Flat, is_integer_list
-from corpuscle.kernels.tokens import RealTokens, _real_key, _running, real_tokens
+from corpuscle.kernels.tokens import RealTokens, _real_key, _running, real_tokens  # noqa: F401 (re-exported)
 
 POSITIONS = "position-restarts"
 SEPARATORS = "separators"
@@ -50,6 +50,8 @@ ONE_PER_ROW = "one-per-row"
 TEXT = "text"
 LENGTHS = "length-columns"
 UNDECIDED = "undecided"
+#: Arrangements whose documents run across rows (and shards).
+PACKED = (POSITIONS, SEPARATORS, LENGTHS)
 
 #: Quantiles reported for document lengths (percent), and how they are computed.
 QUANTILES = (50, 90, 99)
@@ -192,7 +194,7 @@ def percentile(sizes: np.ndarray, counts: np.ndarray, percent: float) -> float:
 # RealTokens and _running live in corpuscle.kernels.tokens and stay importable from here.
 __all__ = ["RealTokens", "LengthHistogram", "DocumentTally", "BatchDocuments", "documents_of", "infer_arrangement",
            "length_column", "length_boundaries", "length_column_problems", "undecided", "percentile", "QUANTILES",
-           "QUANTILE_METHOD", "POSITIONS", "SEPARATORS", "ONE_PER_ROW", "TEXT", "LENGTHS", "UNDECIDED"]
+           "QUANTILE_METHOD", "stitch_shards", "stitched_lengths", "Stitched", "PACKED", "POSITIONS", "SEPARATORS", "ONE_PER_ROW", "TEXT", "LENGTHS", "UNDECIDED"]
 
 
 # -- arrangement ------------------------------------------------------------------------------------------------
@@ -613,6 +615,14 @@ class DocumentTally:
         self.lead: list | None = None
         self._on_overlong = on_overlong
         self._on_cut = on_cut
+        # The shard's first document when its first real tokens start no document (they continue a document of
+        # the shard before, in a packed stream), and the document the shard's end left open (no eos, no padding
+        # ended it): [length, row, offset] each, for stitching consecutive shards (:func:`stitch_shards`). Not
+        # kept by a tally joined from parts of a split shard.
+        self.opening: list | None = None
+        self.closing: list | None = None
+        self.stitchable = True
+        self._opening_doc: list | None = None
 
     def expect_lead(self) -> None:
         """This tally's first rows may continue a document of the previous part of the shard: hold them aside."""
@@ -634,6 +644,8 @@ class DocumentTally:
                 row, off = docs.locate(np.zeros(1, dtype=np.int64))
                 if open_doc is None:
                     open_doc = self.carry = [0, int(row[0]), int(off[0]), False]
+                    if self.rows == docs.rows and docs.arrangement in PACKED and self.lead is None:
+                        self._opening_doc = open_doc  # the shard's first tokens continue an earlier document
                 else:
                     open_doc[1:3] = int(row[0]), int(off[0])
             open_doc[0] += docs.head
@@ -653,6 +665,8 @@ class DocumentTally:
         if self.lead is not None and not self.lead[4]:
             self.lead[3], self.lead[4] = False, True  # no document started in this part: the lead ran to the end
         if self.carry is not None:
+            if self.arrangement in PACKED:
+                self.closing = list(self.carry[:3])
             self._close_carry(False)
         self.pause()
 
@@ -672,6 +686,7 @@ class DocumentTally:
                      "padded_rows"):
             setattr(out, name, getattr(self, name) + getattr(later, name))
         out.lengths = LengthHistogram.merged([self.lengths, later.lengths])
+        out.stitchable = False  # the documents at the shard's two ends are not tracked through the parts
         out.lead = None if self.lead is None else list(self.lead)
         carry, lead = self.carry, later.lead or [0, -1, -1, None, True]
         if out.lead is not None and not out.lead[4]:  # no document started in this part: the lead goes on
@@ -697,6 +712,9 @@ class DocumentTally:
         return out
 
     def _close_carry(self, cut: bool) -> None:
+        if self.carry is self._opening_doc:
+            self.opening = list(self.carry[:3])
+            self._opening_doc = None
         length, row, off, _ = self.carry
         self.carry = None
         one = np.asarray([length], dtype=np.int64)
@@ -725,3 +743,68 @@ class DocumentTally:
         state = dict(self.__dict__)
         state["_on_overlong"] = state["_on_cut"] = None
         return state
+
+    def __setstate__(self, state):
+        state.setdefault("opening", None)
+        state.setdefault("closing", None)
+        state.setdefault("stitchable", False)
+        state.setdefault("_opening_doc", None)
+        self.__dict__.update(state)
+
+
+@dataclass
+class Stitched:
+    """A document that runs from the end of one shard into the start of the next (``before`` and ``after`` are
+    the indices of the two tallies): its length, and where it starts (row, offset in the earlier shard)."""
+
+    before: int
+    after: int
+    length: int
+    row: int
+    offset: int
+    pieces: tuple[int, int]
+
+
+def stitch_shards(tallies: list["DocumentTally"]) -> list[Stitched]:
+    """The documents that run from one shard into the next, for consecutive shards of one packed stream (``tallies``
+    in shard order): where a shard ends with its last document left open (no eos, no padding ended it) and the
+    next one begins with tokens that start no document, the two pieces are one document -- the same reading as
+    between two rows.  A shard that is one open document from end to end joins a chain.  Tallies of other
+    arrangements, of another unit or window, or joined from parts of a split shard, are not stitched."""
+    stitched: list[Stitched] = []
+    for i in range(len(tallies) - 1):
+        a, b = tallies[i], tallies[i + 1]
+        if not (a.stitchable and b.stitchable and a.closing and b.opening and a.unit == b.unit == "tokens"
+                and a.seq_len == b.seq_len):
+            continue
+        if stitched and stitched[-1].after == i and a.opening == a.closing:  # a is one open document: extend
+            chain = stitched.pop()
+            stitched.append(Stitched(chain.before, i + 1, chain.length + b.opening[0], chain.row, chain.offset,
+                                     (chain.pieces[0], b.opening[0])))
+        else:
+            stitched.append(Stitched(i, i + 1, a.closing[0] + b.opening[0], a.closing[1], a.closing[2],
+                                     (a.closing[0], b.opening[0])))
+    return stitched
+
+
+def stitched_lengths(tallies: list["DocumentTally"], stitched: list[Stitched],
+                     members: list[int] | None = None) -> LengthHistogram:
+    """The lengths of the documents of ``tallies`` (only those at the indices ``members``, when given), with the
+    pieces of every stitched document among them replaced by the whole document."""
+    members = list(range(len(tallies))) if members is None else members
+    merged = LengthHistogram.merged(tallies[i].lengths for i in members)
+    inside = [st for st in stitched if st.before in members and st.after in members]
+    if not inside:
+        return merged
+    remove = []
+    for st in inside:
+        remove += list(st.pieces)
+        remove += [tallies[k].opening[0] for k in range(st.before + 1, st.after)]  # whole shards in a chain
+    sizes, counts = np.unique(np.asarray(remove, dtype=np.int64), return_counts=True)
+    out = LengthHistogram()
+    out.add_counts(merged.sizes, merged.counts)
+    out.add_counts(sizes, -counts.astype(np.int64))
+    out.add_counts(np.asarray([st.length for st in inside], dtype=np.int64), np.ones(len(inside), dtype=np.int64))
+    keep = out.counts > 0
+    out._sizes, out._counts = out.sizes[keep], out.counts[keep]
+    return out

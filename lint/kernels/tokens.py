@@ -8,7 +8,7 @@ costs next to nothing.
 from __future__ import annotations
 
 import numpy as np
-from corpuscle.io.batch import Batch, Flat, MaskRanks, is_integer_list, spans
+from corpuscle.io.batch import Batch, Flat, MaskRanks, is_integer_list
 
 
 def last_index(flat: Flat, mask: np.ndarray) -> np.ndarray:
