@@ -420,6 +420,7 @@ def matrix(tmpdir: str) -> tuple[list[Layout], str]:
     out["one-per-row-right"] = one_per_row(ids, "right", labels=True)
     out["one-per-row-left"] = one_per_row(ids, "left", labels=True)
     out["one-per-row-right-no-mask"] = one_per_row(ids, "right", mask=False, labels=True)
+    out["one-per-row-left-no-mask"] = one_per_row(ids, "left", mask=False, labels=True)
     out["one-per-row-pad-is-eos"] = one_per_row(ids, "right", pad=EOS, labels=True)
     out["one-per-row-pad-is-eos-no-mask"] = one_per_row(ids, "right", mask=False, pad=EOS, labels=True)
     out["variable-rows"] = variable_rows(ids)

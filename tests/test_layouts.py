@@ -26,7 +26,7 @@ NAMES = ["chunk-positions-window", "chunk-positions-document", "chunk-positions-
          "chunk-bos-before", "chunk-bos-eos", "chunk-doc_lengths", "chunk-cu_seqlens", "chunk-labels-shifted",
          "chunk-labels-shifted-boundary", "chunk-labels-aligned", "chunk-labels-aligned-boundary",
          "best-fit-positions-zero", "best-fit-positions-count", "one-per-row-right", "one-per-row-left",
-         "one-per-row-right-no-mask", "one-per-row-pad-is-eos", "one-per-row-pad-is-eos-no-mask", "variable-rows",
+         "one-per-row-right-no-mask", "one-per-row-left-no-mask", "one-per-row-pad-is-eos", "one-per-row-pad-is-eos-no-mask", "variable-rows",
          "chunk-positions-window-labels-shifted-boundary", "chunk-no-positions-labels-aligned-boundary",
          "chunk-bos-eos-no-positions", "chunk-bos-before-no-positions", "chunk-doc_lengths-positions",
          "chunk-uint16", "chunk-int32", "chunk-int64", "chunk-large_list", "chunk-fixed_size_list", "text-bytes",

@@ -102,6 +102,16 @@ def infer_from_batch(settings: Settings, batch) -> Settings:
                 s.undecided["pad_id"] = (f"{seen:,} of {rows:,} rows in {where} end in a run of id {pad}, but the "
                                          f"ids before it agree at {agree:.0%} at most: {pad} may be the eos id as "
                                          f"well, or the shard has no eos")
+    if s.pad_id is None and not has_mask and flat.values.size and "pad_id" not in s.undecided:
+        # Left padding: a run of one id at the start of many rows.
+        nonempty = flat.lengths >= 2
+        starts = flat.starts[nonempty]
+        run = values[starts] == values[starts + 1]
+        pad, share, seen = _dominant(values[starts[run]])
+        rows = int(np.count_nonzero(nonempty))
+        if seen >= MIN_EVIDENCE and share >= AGREEMENT and seen >= RUN_ROWS * rows:
+            s.infer("pad_id", pad, f"{seen:,} of {rows:,} rows in {where} start with a run of this id "
+                                   f"({share:.0%} of the rows starting with a run of one id: left padding)")
     real = RealTokens.of(batch, flat, s)  # the rules' reading of padding (pad_id as inferred, eos_id not yet)
     has_real = real.per_row > 0
     last = real.last_index(flat)

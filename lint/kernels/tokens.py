@@ -39,8 +39,9 @@ class RealTokens:
 
     The attention mask decides when the batch has one of the token column's shape (real where it is not 0).
     Without it, a run of ``pad_id`` at the end of a row is padding; when ``pad_id`` equals ``eos_id`` the first id
-    of that run is kept as the eos that ends the row's last document, and only the rest is padding.  Without
-    either, every token is real.
+    of that run is kept as the eos that ends the row's last document, and only the rest is padding.  A run of
+    ``pad_id`` at the start of a row is padding too (left padding) unless the pad id is also the eos or bos id.
+    Without either, every token is real.
 
     ``mask`` is None when every position is real (``run`` is then None too: the running count is the index
     itself); ``per_row`` is the real tokens of each row; ``source`` says how padding was told
@@ -102,23 +103,35 @@ class RealTokens:
             return cls(None, lengths)
         padded = np.zeros(lengths.size, dtype=bool)
         padded[nonempty] = tokens.values[tokens.ends[nonempty] - 1] == pad
-        if not padded.any():
+        # left padding: a run of pad ids at a row's start, unless the pad id is also a separator (a packed window
+        # may open with the eos that ends the previous row's document, or with a bos)
+        led = np.zeros(lengths.size, dtype=bool)
+        if pad != settings.eos_id and pad != settings.bos_id:
+            led[nonempty] = tokens.values[tokens.starts[nonempty]] == pad
+        if not padded.any() and not led.any():
             return cls(None, lengths, "pad_id")
         # Past the last non-pad token of each padded row: the first index where the running count of non-pad
         # tokens reaches the row's total (rows-sized binary search over one cumulative count).
         nonpad = _running(tokens.values != pad)
+        first = tokens.starts.copy()
+        if led.any():  # the first non-pad token of each left-padded row (its start when the row is all padding)
+            rows = np.flatnonzero(led)
+            before = nonpad[tokens.starts[rows]]
+            some = nonpad[tokens.ends[rows]] > before
+            first[rows[some]] = np.searchsorted(nonpad, before[some] + 1, side="left") - 1
         rows = np.flatnonzero(padded)
+        end = tokens.ends.copy()
         total = nonpad[tokens.ends[rows]]
-        end = np.maximum(np.searchsorted(nonpad, total, side="left"), tokens.starts[rows])
+        end[rows] = np.maximum(np.searchsorted(nonpad, total, side="left"), tokens.starts[rows])
         has_real = total > nonpad[tokens.starts[rows]]
         if pad == settings.eos_id:  # the first pad is the eos that ends the row's last document
-            end = np.where(has_real, np.minimum(end + 1, tokens.ends[rows]), end)
-        per_row = lengths.copy()
-        per_row[rows] = end - tokens.starts[rows]
-        # Real mask: +1 at each row start, -1 past its last real token, accumulated (int8, one pass).
+            end[rows] = np.where(has_real, np.minimum(end[rows] + 1, tokens.ends[rows]), end[rows])
+        end = np.maximum(end, first)
+        per_row = np.where(nonempty, end - first, 0)
+        # Real mask: +1 at each row's first real token, -1 past its last one, accumulated (int8, one pass).
         step = np.zeros(n + 1, dtype=np.int8)
-        np.add.at(step, tokens.starts[nonempty], 1)
-        np.subtract.at(step, tokens.starts[nonempty] + per_row[nonempty], 1)
+        np.add.at(step, first[nonempty], 1)
+        np.subtract.at(step, end[nonempty], 1)
         real = np.cumsum(step[:-1], dtype=np.int8).view(np.bool_)
         return cls(real, per_row, "pad_id")
 
