@@ -323,3 +323,18 @@ def test_document_longer_than_the_window_only_across_two_shards(matrix, tmp_path
     (result,) = [r for r in log["runs"][0]["results"] if r["ruleId"] == "overlong-document"
                  and r["properties"]["instances"][0].get("uri")]
     assert result["properties"]["count"] == 1
+
+
+def test_length_column_names_are_settings(tmp_path):
+    from corpuscle.settings import SettingsError
+
+    with pytest.raises(SettingsError, match="cu_seqlens_column must be a column name"):
+        Settings(cu_seqlens_column="")
+    ids = [[5, 6, L.EOS, 7, 8, 9, L.EOS, 4], [5, L.EOS, 6, 7, 8, L.EOS, 9, 4]]
+    path = write(tmp_path / "offsets.parquet", {"input_ids": ids, "offsets": [[0, 3, 7, 8], [0, 3, 6, 8]]})
+    out = tmp_path / "r.json"
+    res = CliRunner().invoke(main, ["scan", path, "--cu-seqlens-column", "offsets", "--eos-id", str(L.EOS),
+                                    "--seq-len", "8", "--json", str(out), "--quiet", "--jobs", "1"])
+    assert res.exit_code == 1, res.output  # row 1: the boundary at 3 follows no eos
+    (f,) = [f for f in json.loads(out.read_text())["findings"] if f["kind"] == "lengths-vs-separators"]
+    assert f["instances"] == [{"row": 1, "offset": 3}] and f["evidence"]["column"] == "offsets"
