@@ -313,6 +313,7 @@ class TruncationWaste(_DocumentRule):
             message += " Give --seq-len to see what packing would save. Pack documents instead of padding them."
         if t.cut:
             message += " Do not truncate documents at the window."
+        message += inferred_note(s, ("pad_id", "seq_len", "eos_id"))
         return [Finding(rule_id=self.id, level=self.level, message=message, uri=state.uri, kind="budget",
                         count=n, evidence=budget)]
 

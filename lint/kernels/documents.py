@@ -7,28 +7,44 @@ in each:
     Raw text, one document per row.  Its length is counted in tokens with a tokenizer file (``tokenizer``
     setting, :mod:`corpuscle.kernels.tokenize`), otherwise in UTF-8 bytes; the unit travels with every figure.
 ``position-restarts``
-    Token rows with ``position_ids``: a document starts wherever the position restarts at 0.  A row whose first
-    position is not 0 continues the previous row's last document, so a document can run over several rows (and
-    batches): its length is the sum of its pieces.
+    Packed token rows whose ``position_ids`` restart at 0 at every document start and run on across rows: a row
+    whose first position is not 0 continues the previous row's last document, so a document can run over several
+    rows (and batches, and shards): its length is the sum of its pieces.
 ``separators``
-    Packed token rows without ``position_ids``: a document ends at its separator (``eos`` after each document, or
-    starts at ``bos`` under ``separator = "bos-before"``), joined across rows like above.  A padded row ends its
-    last document at the padding.
+    Packed token rows (with no ``position_ids``, or ones that restart at every window): a document starts after
+    each ``eos`` (at the next row's start when the eos ends a row), at each ``bos`` (``bos-before``, ``both``), where
+    ``position_ids`` restart inside a row, and after a padded row.  A row start that none of these marks continues
+    the previous row's document (concatenate-and-chunk): a restart at a window start says nothing by itself.
+``length-columns``
+    Packed token rows with a document-length column (``doc_lengths``: the lengths of the documents in the row;
+    ``cu_seqlens``: their cumulative offsets): the column gives the starts inside each row, joined across rows like
+    ``separators`` (every row start is a document start when no separator id is known).
 ``one-per-row``
     Token rows that each hold at most one document (typically padded to the window): the row's real tokens are
     the document.
+``undecided``
+    Full, unpadded rows of one length with nothing to tell documents apart (no separator id, no restart inside a
+    row, no length column): whether a row is a document or a window of a stream cannot be told; the length rules
+    skip the shard and say so.
 
-The arrangement of a token shard is inferred once, from its first records (:func:`infer_arrangement`): position_ids
-decide when present; otherwise a separator inside a row (not as its last real token) means packed rows
-(``separators``); else one document per row.  The choice is a heuristic and is reported with its reason.
+The arrangement of a token shard is inferred once, from its first records (:func:`infer_arrangement`), by the clear
+majority of the rows: packed when enough rows hold a document boundary inside them (a separator followed by a real
+token that is not a separator, or a position restart between real tokens), ``position-restarts`` when the
+position_ids also run on across rows; else one document per row, and the few rows that hold a boundary are left to
+the rules that report them.  The choice is a heuristic and is reported with its reason.
 
-Real tokens are told from padding by the attention mask (non-zero) when there is one, else as the row's tokens up
-to its last non-``pad_id`` token (when ``pad_id`` equals ``eos_id``, the first pad is kept as the row's eos),
-else every token is real.
+Real tokens are told from padding by :class:`~corpuscle.kernels.tokens.RealTokens`, the reading every rule and the
+inference of facts share: the attention mask when there is one, else runs of ``pad_id`` at a row's end (keeping
+the eos when ``pad_id`` equals ``eos_id``) and start, else every token is real.
 
-A document is **cut** when its last token is the last token of a full row (no padding, at least ``seq_len``
-tokens), it is not ``eos``, and the next row does not continue it: the document went on beyond the window and the
-rest is not in the row.  This needs ``eos_id`` and a separator convention with ``eos`` after each document.
+A document is **cut** only when the layout shows the rest is gone: its last token is the last token of a full row
+(no padding, at least ``seq_len`` tokens), it is not ``eos``, and the next row begins a new document (one document
+per row, a bos or a position restart at the next row's start).  This needs ``eos_id`` and a separator convention
+with ``eos`` after each document.  In packed streams a document longer than the window is reported as such, never
+as cut.
+
+Consecutive shards of one packed stream are read like consecutive rows (:func:`stitch_shards`): a shard whose last
+document is left open continues into the next shard's first tokens when those start no document.
 
 Everything per batch is a handful of whole-array passes (a comparison, a ``flatnonzero``, at most one cumulative
 count when there is padding); per-document work is on arrays the size of the number of documents, and locations
