@@ -139,8 +139,12 @@ class OverlongDocument(_DocumentRule):
     learned as written. Checks every document's length in tokens against ``seq_len``: documents joined across rows
     by their position_ids or separators, one document per row, or raw text counted with ``--tokenizer``
     (raw text counted in UTF-8 bytes cannot be compared with a window of tokens; the rule is skipped with a note).
-    In rows that hold their window full, end without eos and are not continued by the next row, the document was
-    cut at the window: those are reported separately, with the row where each cut document starts. Each instance
+    In rows that hold their window full, end without eos and are followed by a row that begins a new document (one
+    document per row, or a bos or position restart at the next row's start), the document was cut at the window:
+    those are reported separately, with the row where each cut document starts; in a packed stream a row start
+    that nothing marks continues the document, which is then longer than the window, not cut. Consecutive shards
+    of one packed stream are read like consecutive rows: documents longer than the window only when the end of one
+    shard and the start of the next are joined are reported across shards (kind across-shards). Each instance
     is the start of an offending document (row, token offset; character offset 0 for raw text). Length quantiles
     use linear interpolation between the closest ranks (numpy.percentile's default)."""
 
