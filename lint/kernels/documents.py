@@ -311,7 +311,7 @@ def length_column_problems(batch: Batch, tokens: Flat, settings) -> dict[str, tu
     mismatch = total != per_row
     np.minimum.at(first, np.flatnonzero(mismatch), np.clip(np.minimum(total, per_row)[mismatch], 0, None))
     bad_rows = np.flatnonzero(first != big)
-    out = {"lengths-mismatch": (bad_rows, first[bad_rows])}
+    out = {"lengths-mismatch": (bad_rows, np.minimum(first[bad_rows], tokens.lengths[bad_rows]))}  # inside the row
     name, marker = _marker(settings)
     if marker is None:
         out["lengths-vs-separators"] = empty
