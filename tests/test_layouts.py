@@ -208,7 +208,7 @@ def _lengths_shard(tmp_path, column, values):
     # cumulative offsets: not starting at 0, going down (offset: the value before the drop), ending past the row
     ("cu_seqlens", [[1, 3, 8], [0, 6, 2, 8], [0, 4, 9]], "lengths-mismatch", [(0, 0), (1, 6), (2, 8)]),
     # an offset past the row, then a drop: located at the row's end (offsets stay inside the row)
-    ("cu_seqlens", [[0, 99, 8], [0, 2, 5, 8], [0, 4, 8]], "lengths-mismatch", [(0, 8)]),
+    ("cu_seqlens", [[0, 99, 8], [0, 2, 6, 8], [0, 4, 8]], "lengths-mismatch", [(0, 8)]),
     # a boundary one token late: no eos before it (offset: the boundary the column gives)
     ("cu_seqlens", [[0, 3, 7, 8], [0, 3, 6, 8], [0, 4, 8]], "lengths-vs-separators", [(1, 3)]),
 ])
