@@ -438,7 +438,7 @@ def _infer_arrangement(batch: Batch, settings) -> tuple[str, str]:
         common, length = counts.max(), int(counts.argmax())
         fits = settings.seq_len is None or length <= settings.seq_len  # rows over the window are split anyway
         if unpadded and rows and common >= 0.9 * rows and fits:
-            return UNDECIDED, (f"{rows:,} rows of the same length, unpadded, and no {name}_id, no position "
+            return UNDECIDED, (f"rows of one length ({length:,} tokens), unpadded, and no {name}_id, no position "
                                f"restart inside a row and no length column to tell documents apart: whether each "
                                f"row is one document or a window of a packed stream cannot be told")
         return ONE_PER_ROW, (f"no {name}_id known and no position restart inside a row: each row is taken as one "
