@@ -16,7 +16,7 @@ from corpuscle.io.sources import NoShardsFound, discover
 from corpuscle.report import droplist, sarif, text, write_atomic
 from corpuscle.report import html as html_report
 from corpuscle.report import json as json_report
-from corpuscle.settings import FAIL_AT, LABEL_CONVENTIONS, RULE_LEVELS, SettingsError, build, load_config
+from corpuscle.settings import FAIL_AT, LABEL_CONVENTIONS, RULE_LEVELS, SEPARATORS, SettingsError, build, load_config
 from corpuscle.version import __version__
 
 
@@ -76,6 +76,20 @@ def main():
 @click.option("--seq-len", type=click.IntRange(min=1), help="Context window in tokens.")
 @click.option("--labels", type=click.Choice(LABEL_CONVENTIONS), help="Label convention of the shards.")
 @click.option("--tokenizer", type=click.Path(dir_okay=False), help="Tokenizer JSON file for counting tokens of text shards.")
+# -- shard facts: separator convention, column names, ignore index (one block; see DESIGN.md section 3) ---------
+@click.option("--separator", type=click.Choice(SEPARATORS),
+              help="How documents are marked off: eos after each, bos before each, or both [default: eos-after, or "
+                   "bos-before when inferred].")
+@click.option("--tokens-column", help="Column of token ids [default: input_ids].")
+@click.option("--labels-column", help="Column of labels [default: labels].")
+@click.option("--mask-column", help="Column of the attention mask [default: attention_mask].")
+@click.option("--positions-column", help="Column of position ids [default: position_ids].")
+@click.option("--text-column", help="Column of raw text [default: text].")
+@click.option("--doc-lengths-column", help="Column of the lengths of the documents packed in each row [default: "
+                                           "doc_lengths].")
+@click.option("--cu-seqlens-column", help="Column of the cumulative document offsets of each row, 0 ... the row's "
+                                          "real length [default: cu_seqlens].")
+@click.option("--ignore-index", type=int, help="Label value that is not trained on [default: -100].")
 @click.option("--only", help="Run only these rules (comma-separated ids).")
 @click.option("--skip", help="Do not run these rules (comma-separated ids).")
 @click.option("--sarif", "sarif_path", type=click.Path(dir_okay=False), help="Write a SARIF 2.1.0 report here.")
@@ -207,7 +221,8 @@ def _fill(text: str, indent: str) -> str:
 
 #: Options of ``scan`` that ``repair`` takes as they are: the shard facts.
 _FACT_OPTIONS = ("config_path", "eos_id", "bos_id", "pad_id", "vocab_size", "seq_len", "labels", "separator",
-                 "tokenizer")
+                 "tokenizer", "ignore_index", "tokens_column", "labels_column", "mask_column", "positions_column",
+                 "text_column", "doc_lengths_column", "cu_seqlens_column")
 
 
 @main.command()
@@ -246,15 +261,4 @@ def repair(paths, out, fix, repack, dry_run, jobs, **flags):
     sys.exit(result.exit_code)
 
 
-def _repair_fact_options():
-    """The facts options of ``scan`` (the same objects: one definition), and ``--separator`` when scan has none."""
-    taken = [param for param in scan.params if param.name in _FACT_OPTIONS]
-    if not any(param.name == "separator" for param in taken):
-        from corpuscle.settings import SEPARATORS
-
-        taken.append(click.Option(["--separator"], type=click.Choice(SEPARATORS),
-                                  help="Separator convention: eos-after each document, bos-before, or both."))
-    return taken
-
-
-repair.params.extend(_repair_fact_options())
+repair.params.extend(param for param in scan.params if param.name in _FACT_OPTIONS)

@@ -24,7 +24,8 @@ RULE_LEVELS = ("error", "warning", "note", "off")
 
 #: Shard facts: may differ per path and may be inferred.
 FACTS = ("text_column", "tokens_column", "labels_column", "mask_column", "positions_column", "eos_id", "bos_id",
-         "pad_id", "vocab_size", "seq_len", "labels", "ignore_index", "separator", "tokenizer")
+         "pad_id", "vocab_size", "seq_len", "labels", "ignore_index", "separator", "tokenizer",
+         "doc_lengths_column", "cu_seqlens_column")
 #: Run options: one value for the whole scan.
 OPTIONS = ("only", "skip", "fail_at", "instance_cap", "rule", "html", "levels", "suppress")
 
@@ -47,6 +48,8 @@ class Settings:
     ignore_index: int = -100  # common practice: PyTorch's cross-entropy ignore_index default
     separator: str = "eos-after"
     tokenizer: str | None = None
+    doc_lengths_column: str = "doc_lengths"  # per-row lengths of the documents packed in the row
+    cu_seqlens_column: str = "cu_seqlens"  # per-row cumulative document offsets, 0 ... the row's real length
     only: tuple[str, ...] = ()
     skip: tuple[str, ...] = ()
     fail_at: str = "error"
@@ -59,13 +62,15 @@ class Settings:
     path_tables: dict = field(default_factory=dict, repr=False)
     origin: dict = field(default_factory=dict, repr=False)  # key -> "default" | "inferred" | "config" | "flag"
     evidence: dict = field(default_factory=dict, repr=False)  # key -> why an inferred value was chosen
+    undecided: dict = field(default_factory=dict, repr=False)  # key -> why the data did not settle it
 
     def __post_init__(self):
         self.validate()
 
     # -- construction -------------------------------------------------------------------------------------
     def validate(self) -> None:
-        for key in ("text_column", "tokens_column", "labels_column", "mask_column", "positions_column"):
+        for key in ("text_column", "tokens_column", "labels_column", "mask_column", "positions_column",
+                    "doc_lengths_column", "cu_seqlens_column"):
             if not isinstance(getattr(self, key), str) or not getattr(self, key):
                 raise SettingsError(f"{key} must be a column name (a string), got {getattr(self, key)!r}")
         if not isinstance(self.ignore_index, int) or isinstance(self.ignore_index, bool):

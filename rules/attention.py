@@ -3,7 +3,9 @@ from __future__ import annotations
 
 import numpy as np
 from corpuscle.findings import Level
+from corpuscle.kernels.documents import length_column
 from corpuscle.kernels.tokens import (
+    inferred_note,
     inner_starts,
     missing_ids,
     padding_free,
@@ -28,7 +30,9 @@ class DocumentAttention(Rule):
     eos followed by another real token (separator = eos-after), bos after the row's first real token
     (bos-before), either (both). A row is affected when it holds several documents and the shard has
     no position_ids column, or the row's position_ids never restart (0..L-1 in every row). Padded rows holding one
-    document each, rows whose position_ids restart, and text shards give no finding. One finding per shard;
+    document each, rows whose position_ids restart, shards with a document-length column (``doc_lengths`` or
+    ``cu_seqlens``: variable-length attention kernels stop attention at those edges), a doubled eos at a row's end
+    (an empty document, which missing-separator reports) and text shards give no finding. One finding per shard;
     instances are the affected rows, offset = the first inner separator.
 
     This is a warning about the training setup, not a defect of the data: whether attention across documents is
@@ -66,6 +70,7 @@ class DocumentAttention(Rule):
         if s.separator in ("eos-after", "both") and s.eos_id is not None:
             after = token_positions(batch, tokens, s, s.eos_id) + 1
             after = inner_starts(batch, tokens, s, after[after < tokens.values.size])
+            after = after[tokens.values[after] != s.eos_id]  # a doubled eos starts no document
             starts.append(after)
             separators.append(after - 1)
         if s.separator in ("bos-before", "both") and s.bos_id is not None:
@@ -85,7 +90,10 @@ class DocumentAttention(Rule):
         packed = documents > 1
 
         restarts = position_restarts(batch, tokens, s)
-        if restarts is None:
+        if length_column(batch, s) is not None:  # document lengths per row: the kernel stops attention there
+            affected = np.zeros_like(packed)
+            state.count(rows_with_lengths=int(packed.sum()))
+        elif restarts is None:
             affected = packed
             state.count(rows_without_positions=int(packed.sum()))
         else:
@@ -113,7 +121,8 @@ class DocumentAttention(Rule):
             f"{n:,} of {rows:,} rows ({pct(n, rows)}) hold several documents (mean {mean_docs:.2f} per affected row) "
             f"and {cause}: under a plain causal mask each document attends to the ones packed before it "
             "(offset = the first inner separator). If that is not intended, emit position_ids restarting per "
-            "document and use a document-aware attention mask; if it is, skip this rule.",
+            "document and use a document-aware attention mask; if it is, skip this rule."
+            + inferred_note(state.settings, ("eos_id", "bos_id", "pad_id")),
             rowsAffected=n, rows=int(rows), share=share(n, rows), meanDocumentsPerAffectedRow=mean_docs,
             packedRows=int(st["packed_rows"]), separator=state.settings.separator)]
 

@@ -20,9 +20,13 @@ from corpuscle.kernels.documents import (
     LengthHistogram,
     documents_of,
     infer_arrangement,
+    stitch_shards,
+    stitched_lengths,
+    undecided,
 )
 from corpuscle.kernels.histogram import histogram, log_edges
 from corpuscle.kernels.packing import AsBuilt, compare_layouts, savings
+from corpuscle.kernels.tokens import inferred_note
 from corpuscle.rules.api import CorpusResult, Rule, Unmergeable, consistent, pct, share
 
 #: Names of the three layouts in reports (camelCase keys) and in messages.
@@ -61,7 +65,13 @@ class _DocumentRule(Rule):
     splittable = True
 
     def missing(self, batch, settings):
-        if _tokenized(batch, settings) or _textual(batch, settings):
+        if _tokenized(batch, settings):
+            why = undecided(batch, settings)
+            if why:
+                return f"how documents sit in the rows could not be decided ({why}): give --eos-id (or --bos-id " \
+                       "with --separator bos-before), or the position_ids or document-length columns"
+            return None
+        if _textual(batch, settings):
             return None
         return f"no {settings.tokens_column!r} token column and no {settings.text_column!r} text column"
 
@@ -129,8 +139,12 @@ class OverlongDocument(_DocumentRule):
     learned as written. Checks every document's length in tokens against ``seq_len``: documents joined across rows
     by their position_ids or separators, one document per row, or raw text counted with ``--tokenizer``
     (raw text counted in UTF-8 bytes cannot be compared with a window of tokens; the rule is skipped with a note).
-    In rows that hold their window full, end without eos and are not continued by the next row, the document was
-    cut at the window: those are reported separately, with the row where each cut document starts. Each instance
+    In rows that hold their window full, end without eos and are followed by a row that begins a new document (one
+    document per row, or a bos or position restart at the next row's start), the document was cut at the window:
+    those are reported separately, with the row where each cut document starts; in a packed stream a row start
+    that nothing marks continues the document, which is then longer than the window, not cut. Consecutive shards
+    of one packed stream are read like consecutive rows: documents longer than the window only when the end of one
+    shard and the start of the next are joined are reported across shards (kind across-shards). Each instance
     is the start of an offending document (row, token offset; character offset 0 for raw text). Length quantiles
     use linear interpolation between the closest ranks (numpy.percentile's default)."""
 
@@ -140,6 +154,7 @@ class OverlongDocument(_DocumentRule):
     kinds = {
         "longer-than-window": "documents longer than the context window",
         "cut": "documents cut at the window and not continued",
+        "across-shards": "documents that run from one shard into the next and are longer than the window together",
     }
     help = ("Split long documents at natural boundaries (sections, paragraphs) before tokenizing, so that each "
             "piece fits the window; or pack them into full windows plus a remainder (best-fit decreasing) instead "
@@ -157,6 +172,34 @@ class OverlongDocument(_DocumentRule):
         if settings.seq_len is None:
             return "seq_len is not set and could not be inferred (give --seq-len)"
         return None
+
+    def corpus(self, states):
+        """Documents of a packed stream that run from one shard into the next and are longer than the window only
+        together (each piece was measured in its own shard)."""
+        tallies = [st.tally for st in states]
+        over = []
+        for st in stitch_shards(tallies):
+            seq_len = tallies[st.before].seq_len
+            pieces = [st.pieces[0], st.pieces[1]] + [tallies[k].opening[0] for k in range(st.before + 1, st.after)]
+            if seq_len is not None and st.length > seq_len and max(pieces) <= seq_len:
+                over.append(st)
+        if not over:
+            return CorpusResult([], {})
+        seq_len = tallies[over[0].before].seq_len
+        n = len(over)
+        message = (f"{n:,} documents run from the end of one shard into the start of the next (no eos and no "
+                   f"padding ends the first shard's last document, and the next shard's first tokens start no "
+                   f"document) and are longer than the {seq_len:,}-token window together, though each piece fits "
+                   f"(longest {max(st.length for st in over):,} tokens; location = where each starts). Each "
+                   f"continuation window starts mid-document without its context; if the shards are not one "
+                   f"stream, end every shard's last document with eos.")
+        finding = Finding(rule_id=self.id, level=self.level, message=message, uri=None, kind="across-shards",
+                          count=n, rows=np.asarray([st.row for st in over], dtype=np.int64),
+                          offsets=np.asarray([st.offset for st in over], dtype=np.int64),
+                          instance_uris=[states[st.before].uri for st in over],
+                          evidence={"documents": n, "seqLen": seq_len,
+                                    "lengths": [st.length for st in over][:100]})
+        return CorpusResult([finding], {})
 
     def _callbacks(self, state):
         return {"on_overlong": lambda rows, offs: state.hit_at("longer-than-window", rows, offs),
@@ -188,18 +231,21 @@ class OverlongDocument(_DocumentRule):
                 f"window; they hold {pct(t.overlong_tokens, tokens)} of the {tokens:,} document tokens, "
                 f"{t.beyond_window:,} of them past the first window. {fate}. Document lengths ({t.unit}): "
                 f"{figures}. Split long documents at natural boundaries before tokenizing, or train with a longer "
-                f"window.",
+                f"window." + inferred_note(s, ("seq_len", "eos_id", "bos_id", "pad_id")),
                 overlong=n, documentShare=share(n, documents), tokenShare=share(t.overlong_tokens, tokens),
                 overlongTokens=t.overlong_tokens, tokensBeyondWindow=t.beyond_window, **common))
         if state.hits.get("cut"):
             n = t.cut
+            shows = ("each row holds one document" if state.arrangement == ONE_PER_ROW
+                     else "the next row begins a new document")
             out.append(self.finding(
                 state, "cut",
-                f"{n:,} of {documents:,} documents ({pct(n, documents)}) fill their {s.seq_len:,}-token window, "
-                f"end without eos (id {s.eos_id}) and are not continued by the next row: they were cut at the "
-                f"window, and the rest of each (at least {n:,} tokens in all) was lost; if the pipeline put the rest "
+                f"{n:,} of {documents:,} documents ({pct(n, documents)}) fill their {s.seq_len:,}-token window and "
+                f"end without eos (id {s.eos_id}), and {shows}: they were cut at the window, and the rest of each "
+                f"(at least {n:,} tokens in all, a lower bound) is not in the shard; if the pipeline put the rest "
                 f"in another row, that row starts mid-document without its context. Rebuild the shard without "
-                f"truncating documents at the window (split them at natural boundaries, or pack them).",
+                f"truncating documents at the window (split them at natural boundaries, or pack them)."
+                + inferred_note(s, ("eos_id", "seq_len", "pad_id")),
                 cut=n, documentShare=share(n, documents), **common))
         return out
 
@@ -245,9 +291,10 @@ class TruncationWaste(_DocumentRule):
         budget = shard_budget(t, s.seq_len)
         built = budget["asBuilt"]
         n = t.padded_rows + t.cut
-        message = (f"{pct(built['padding'] + built['truncated'], built['slots'])} of this shard's "
+        message = (f"{'at least ' if t.cut else ''}{pct(built['padding'] + built['truncated'], built['slots'])} "
+                   f"of this shard's "
                    f"{built['slots']:,} token slots ({t.rows:,} rows) train on nothing (max_waste "
-                   f"{self.opts['max_waste']:.0%}): {built['padding']:,} padding "
+                   f"{self.opts['max_waste']:.0%}): {built['padding']:,} slots of padding "
                    f"({pct(built['padding'], built['slots'])}, in {t.padded_rows:,} rows)")
         if t.cut:
             message += (f" and at least {built['truncated']:,} tokens lost to truncation ({t.cut:,} documents cut "
@@ -270,19 +317,24 @@ class TruncationWaste(_DocumentRule):
             message += " Give --seq-len to see what packing would save. Pack documents instead of padding them."
         if t.cut:
             message += " Do not truncate documents at the window."
+        message += inferred_note(s, ("pad_id", "seq_len", "eos_id"))
         return [Finding(rule_id=self.id, level=self.level, message=message, uri=state.uri, kind="budget",
                         count=n, evidence=budget)]
 
     def corpus(self, states):
         metrics: dict = {}
         by_unit: dict[str, list] = {}
-        for st in states:
+        tallies = [st.tally for st in states]
+        stitched = stitch_shards(tallies)  # documents of a packed stream that run from one shard into the next
+        for i, st in enumerate(states):
             if st.tally.unit:
-                by_unit.setdefault(st.tally.unit, []).append(st.tally.lengths)
+                by_unit.setdefault(st.tally.unit, []).append(i)
         for unit, key in (("tokens", "documentTokens"), ("bytes", "documentBytes")):
             if unit in by_unit:
-                metrics[key] = {"unit": unit, **length_summary(LengthHistogram.merged(by_unit[unit]))}
-        histograms = {unit: length_histogram([st for st in states if st.tally.unit == unit], unit)
+                metrics[key] = {"unit": unit, **length_summary(stitched_lengths(tallies, stitched, by_unit[unit]))}
+                if unit == "tokens" and stitched:
+                    metrics[key]["documentsAcrossShards"] = len(stitched)
+        histograms = {unit: length_histogram(states, by_unit[unit], unit, stitched)
                       for unit in ("tokens", "bytes") if unit in by_unit}
         if histograms:
             metrics["documentLengthHistogram"] = histograms
@@ -290,26 +342,43 @@ class TruncationWaste(_DocumentRule):
                         if st.tally.unit == "tokens" and st.arrangement != TEXT and st.tally.slots]
         if token_states:
             metrics["tokenBudget"] = corpus_budget([st.tally for st in token_states],
-                                                   [st.settings.seq_len for st in token_states])
+                                                   [st.settings.seq_len for st in token_states], stitched=True)
         return CorpusResult([], metrics)
 
 
-def length_histogram(states, unit: str) -> dict:
-    """The document lengths of ``states`` (one unit) on log-spaced bins (:mod:`corpuscle.kernels.histogram`; bin i
-    holds ``edges[i] <= length < edges[i + 1]``), with ``seq_len + 1`` an edge for every window in force, and,
-    for tokens, how many documents are longer than their shard's window: what the report plots."""
+def length_histogram(all_states, members: list[int], unit: str, stitched=()) -> dict:
+    """The document lengths of the states at ``members`` (one unit) on log-spaced bins
+    (:mod:`corpuscle.kernels.histogram`; bin i holds ``edges[i] <= length < edges[i + 1]``), with ``seq_len + 1`` an
+    edge for every window in force, and, for tokens, how many documents are longer than their shard's window: what
+    the report plots. Documents that run from one shard into the next (``stitched``) count once, whole, as in the
+    corpus figures."""
+    states = [all_states[i] for i in members]
+    inside = [st for st in stitched if st.before in members and st.after in members]
+    pieces = [[*st.pieces, *(all_states[k].tally.opening[0] for k in range(st.before + 1, st.after))]
+              for st in inside]
     windows = sorted({st.settings.seq_len for st in states if st.settings.seq_len is not None})
     marks = [w + 1 for w in windows] if unit == "tokens" else []
-    edges = log_edges(max(st.tally.lengths.max for st in states), per_octave=2, marks=marks)
-    # Binned shard by shard and added up: no merge of the shards' histograms (slow for many shards).
+    longest = max([st.tally.lengths.max for st in states] + [st.length for st in inside])
+    edges = log_edges(longest, per_octave=2, marks=marks)
+    # Binned shard by shard and added up: no merge of the shards' histograms (slow for many shards); the pieces of
+    # a stitched document leave their bins and the whole document enters its own.
     counts = sum((histogram(st.tally.lengths.sizes, st.tally.lengths.counts, edges) for st in states),
                  np.zeros(len(edges) - 1, dtype=np.int64))
+    if inside:
+        split = np.sort(np.asarray([n for chain in pieces for n in chain], dtype=np.int64))
+        whole = np.sort(np.asarray([st.length for st in inside], dtype=np.int64))
+        counts = counts - histogram(split, np.ones(split.size, np.int64), edges)
+        counts = counts + histogram(whole, np.ones(whole.size, np.int64), edges)
     documents = int(counts.sum())
     out = {"unit": unit, "documents": documents, "edges": edges.tolist(), "counts": counts.tolist()}
     if marks:
         out["seqLen"] = windows
         beyond = sum(int(st.tally.lengths.counts[st.tally.lengths.sizes > st.settings.seq_len].sum())
                      for st in states if st.settings.seq_len is not None)
+        for st, chain in zip(inside, pieces):
+            seq_len = all_states[st.before].settings.seq_len
+            if seq_len is not None:
+                beyond += int(st.length > seq_len) - sum(int(n > seq_len) for n in chain)
         out["longerThanWindow"] = beyond
         out["longerThanWindowFraction"] = share(beyond, documents)
     return out
@@ -321,7 +390,8 @@ def _as_built(slots: int, real: int, truncated: int, rows: int) -> dict:
     padding = slots - real
     return {"windows": rows, "slots": slots, "realTokens": real, "padding": padding, "truncated": truncated,
             "truncatedIsLowerBound": True, "paddingPct": 100.0 * share(padding, slots),
-            "truncatedPct": 100.0 * share(truncated, real + truncated),
+            # a share of a lower bound would read like a measurement: given only when nothing was cut
+            "truncatedPct": None if truncated else 0.0,
             "wastedFraction": share(padding + truncated, slots)}
 
 
@@ -354,14 +424,16 @@ def shard_budget(tally: DocumentTally, seq_len: int | None) -> dict:
     return out
 
 
-def corpus_budget(tallies: list[DocumentTally], seq_lens: list[int | None]) -> dict:
+def corpus_budget(tallies: list[DocumentTally], seq_lens: list[int | None], stitched: bool = False) -> dict:
     """The token budget over many shards: as built, summed; the layouts of all documents packed together, per
-    seq_len (shards with different windows are packed separately and the windows added up)."""
+    seq_len (shards with different windows are packed separately and the windows added up).  With ``stitched``,
+    documents that run from one of the (consecutive) shards into the next count once, whole."""
+    joined = stitch_shards(tallies) if stitched else []
     slots = sum(t.slots for t in tallies)
     real = sum(t.real_tokens for t in tallies)
     truncated = sum(t.cut for t in tallies)
     rows = sum(t.rows for t in tallies)
-    merged = LengthHistogram.merged(t.lengths for t in tallies)
+    merged = stitched_lengths(tallies, joined)
     known = sorted({s for s in seq_lens if s is not None})
     out = {"unit": "tokens", "seqLen": known[0] if len(known) == 1 else known, "shards": len(tallies),
            "documents": merged.documents, "documentTokens": merged.tokens,
@@ -376,7 +448,7 @@ def corpus_budget(tallies: list[DocumentTally], seq_lens: list[int | None]) -> d
               for name, key in LAYOUT_KEYS.items()}
     lower = 0
     for seq_len in known:
-        group = LengthHistogram.merged(t.lengths for t, s in with_window if s == seq_len)
+        group = stitched_lengths(tallies, joined, [i for i, s in enumerate(seq_lens) if s == seq_len])
         layouts = compare_layouts(group.sizes, seq_len, group.counts)
         lower += layouts.lower_bound
         for layout in layouts:

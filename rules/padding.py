@@ -19,7 +19,7 @@ import numpy as np
 from corpuscle.findings import Finding, Level
 from corpuscle.io.batch import Flat, MaskRanks, is_integer_list, spans
 from corpuscle.kernels.histogram import POW2_BINS, pow2_bin, pow2_edges
-from corpuscle.kernels.tokens import padding_positions, real_per_row, real_positions, real_ranks
+from corpuscle.kernels.tokens import inferred_note, padding_positions, real_per_row, real_positions, real_ranks
 from corpuscle.rules.api import CorpusResult, Rule, consistent, pct, share
 
 # -- per-row arithmetic over flat arrays --------------------------------------------------------------------------
@@ -133,8 +133,9 @@ class PaddingLoss(Rule):
     def missing(self, batch, settings):
         reason = super().missing(batch, settings)
         if reason is None and settings.pad_id is None and not _has(batch, settings.mask_column):
-            reason = (f"no {settings.mask_column!r} column and pad_id is not set or inferred: padding cannot be "
-                      "told from real tokens (give --pad-id)")
+            why = settings.undecided.get("pad_id")
+            reason = (f"no {settings.mask_column!r} column and pad_id is not set or inferred"
+                      f"{f' ({why})' if why else ''}: padding cannot be told from real tokens (give --pad-id)")
         return reason
 
     splittable = True
@@ -181,6 +182,10 @@ class PaddingLoss(Rule):
             return
         labels = batch.flat(s.labels_column).values
         ignored = labels == s.ignore_index
+        if real is not None and runs is not None:
+            # mask 0 on a token that is not the pad id is a real token hidden from attention (masked-real-tokens),
+            # not padding: its label is not a label "at padding"
+            padding = padding & ~runs.non_pad
         if pads:
             trained_padding = np.greater(padding, ignored)  # padding whose label is trained
             if s.labels == "shifted":  # ... or whose target, the next position in the row, is padding
@@ -256,7 +261,8 @@ class PaddingLoss(Rule):
                 f"{pads:,} padding positions). The loss is spent predicting filler. Set labels to {s.ignore_index} "
                 "wherever attention_mask is 0" + (" and at the last real position of a padded row"
                                                    if s.labels == "shifted" else "") + ". (Where these labels are "
-                "the pad id, label-alignment, when it runs, reports the same rows as pad-label: one fix for both.)",
+                "the pad id, label-alignment, when it runs, reports the same rows as pad-label: one fix for both.)"
+                + inferred_note(s, ("pad_id", "labels")),
                 positions=positions, paddingPositions=pads, paddingFrom=told,
                 labelConvention=s.labels or "unknown"))
         side_hits = self._side(state)
@@ -278,7 +284,8 @@ class PaddingLoss(Rule):
                 state, "attended-padding",
                 f"{hits.count:,} rows where attention_mask is 1 on {positions:,} pad-id ({s.pad_id}) tokens of "
                 "the padding run: real tokens attend to padding and the result depends on how much padding a row "
-                "has. Set attention_mask to 0 on padding.", positions=positions, padId=s.pad_id))
+                "has. Set attention_mask to 0 on padding." + inferred_note(s, ("pad_id", "eos_id")),
+                positions=positions, padId=s.pad_id))
         hits = state.hits.get("masked-real-tokens")
         if hits:
             positions = int(st["masked-real-tokens_positions"])
@@ -300,7 +307,7 @@ class PaddingLoss(Rule):
                 f"({pct(hits.count, real_eos)}) have the ignore index {s.ignore_index} as their label ({s.labels} "
                 f"labels: the label at {where}): the model never learns to end a document. Labels were likely "
                 "ignored by token id (every label equal to the pad id). Ignore labels by attention mask or "
-                "position, or give padding its own id.",
+                "position, or give padding its own id." + inferred_note(s, ("pad_id", "eos_id", "labels")),
                 eosId=s.eos_id, realEos=real_eos, share=share(hits.count, real_eos), labelConvention=s.labels))
         return out
 

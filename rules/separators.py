@@ -7,7 +7,9 @@ from __future__ import annotations
 
 import numpy as np
 from corpuscle.findings import Finding, Level
+from corpuscle.kernels.documents import length_column, length_column_problems
 from corpuscle.kernels.tokens import (
+    inferred_note,
     missing_ids,
     padding_free,
     parallel_columns,
@@ -34,7 +36,7 @@ PACKED_PADDED_SHARE = 0.01
 
 class MissingSeparator(Rule):
     """Documents packed into a window must be separated, or the model learns to continue one document with the
-    next and never learns where a document ends (and, at inference, never stops). Four checks, under the shard's
+    next and never learns where a document ends (and, at inference, never stops). Five checks, under the shard's
     separator convention (eos-after, bos-before or both).
 
     (1) Boundaries: with position_ids, every document start after the first in a row (position_ids restart at 0
@@ -54,13 +56,20 @@ class MissingSeparator(Rule):
     both adding one); offset = the second. When pad_id equals eos_id, trailing eos padding is padding, not a
     doubled separator (the attention mask decides when present).
 
+    (5) Document-length columns (``doc_lengths``: the lengths of the documents packed in each row;
+    ``cu_seqlens``: their cumulative offsets, from 0 to the row's real length), when present: each row's lengths
+    must be non-negative (offsets monotonic, starting at 0) and add up to the row's real tokens
+    (``lengths-mismatch``, offset = where the first disagreement is), and every document start they give inside a
+    row must be marked by the separator (``lengths-vs-separators``, offset = the start).
+
     Needs eos_id (eos-after), bos_id (bos-before) or both (both), given or inferred; otherwise the shard is
     skipped with a note. A known bos_id is also checked for doubling under eos-after.
     """
 
     id = "missing-separator"
     level = Level.error
-    summary = "Document boundaries without the separator; shards with no separators at all; doubled separators."
+    summary = ("Document boundaries without the separator; shards with no separators at all; doubled separators; "
+               "document-length columns that contradict the row or its separators.")
     kinds = {
         "boundary-no-eos": "document starts inside a row not preceded by eos",
         "boundary-no-bos": "document starts inside a row that do not begin with bos",
@@ -69,6 +78,10 @@ class MissingSeparator(Rule):
         "no-bos": "packed windows with no bos at all",
         "doubled-eos": "eos directly followed by another eos",
         "doubled-bos": "bos directly followed by another bos",
+        "lengths-mismatch": "rows whose document-length column does not describe the row (negative, not "
+                            "monotonic, or not adding up to the row's real length)",
+        "lengths-vs-separators": "document starts given by the document-length column that the separator does "
+                                 "not mark",
     }
     help = ("Append eos after every document (or prepend bos, per your convention) before packing, exactly once: "
             "check that the tokenizer's add_eos/add_bos setting and the packing step agree, so that neither both "
@@ -148,6 +161,15 @@ class MissingSeparator(Rule):
                 inside = offsets > 0
                 state.hit(f"doubled-{name}", batch, rows[inside], offsets[inside])
 
+        # a document-length column (doc_lengths / cu_seqlens) must describe the row and agree with the separators
+        found = length_column(batch, s)
+        if found is not None:
+            state.length_column = found[1]
+            problems = length_column_problems(batch, tokens, s)
+            state.count(length_rows=tokens.lengths.size)
+            for kind, (rows, offsets) in problems.items():
+                state.hit(kind, batch, rows, offsets)
+
     def report(self, state):
         s, st, out = state.settings, state.stats, []
         ids = {"eos": s.eos_id, "bos": s.bos_id}
@@ -164,7 +186,7 @@ class MissingSeparator(Rule):
                     state, kind,
                     f"{n:,} of {total:,} document boundaries ({pct(n, total)}) {verb} (id {ids[name]}) under "
                     f"separator = {s.separator}: one document runs into the next and the model never learns where "
-                    f"a document ends. {fix[name]}",
+                    f"a document ends. {fix[name]}" + inferred_note(s, (f"{name}_id", "pad_id")),
                     boundaries=int(total), missing=n, share=share(n, total), separator=s.separator,
                     separatorId=ids[name]))
         if hits.get("unterminated-row"):
@@ -173,7 +195,7 @@ class MissingSeparator(Rule):
                 state, "unterminated-row",
                 f"{n:,} of {total:,} padded rows ({pct(n, total)}) end their last document without eos (id "
                 f"{s.eos_id}) although the row is not full (offset = the last real token): the document stops, but "
-                f"the model is never shown its end. {fix['eos']}",
+                f"the model is never shown its end. {fix['eos']}" + inferred_note(s, ("eos_id", "pad_id")),
                 paddedRows=int(total), missing=n, share=share(n, total), separator=s.separator, separatorId=s.eos_id))
         if not st["boundaries"] and st["padded_rows"] <= max(1, int(st["rows"] * PACKED_PADDED_SHARE)):
             out += self._glued(state, ids, fix)
@@ -183,11 +205,34 @@ class MissingSeparator(Rule):
                 n, total = hits[kind].count, st[name]
                 out.append(self.finding(
                     state, kind,
-                    f"{n:,} places where {name} (id {ids[name]}) directly follows another {name} (offset = the "
-                    f"second; {pct(n, total)} of {total:,} real {name} tokens): usually the tokenizer and a "
-                    f"template or the packing step both add it, which trains the model on empty documents. Let "
-                    f"exactly one step add the separator.",
+                    f"{n:,} pairs of adjacent {name} tokens (id {ids[name]}; offset = the second of each pair; "
+                    f"{pct(n, total)} of {total:,} real {name} tokens): usually the tokenizer and a template or "
+                    f"the packing step both add it, which trains the model on empty documents. Let exactly one step "
+                    f"add the separator." + inferred_note(s, (f"{name}_id", "pad_id")),
                     doubled=n, separatorCount=int(total), separatorId=ids[name]))
+        column = getattr(state, "length_column", None) or "document-length"
+        if hits.get("lengths-mismatch"):
+            n, total = hits["lengths-mismatch"].count, st["length_rows"]
+            out.append(self.finding(
+                state, "lengths-mismatch",
+                f"{n:,} of {total:,} rows ({pct(n, total)}) have a {column} column that does not describe the "
+                f"row: a negative length, offsets that do not start at 0 or go down, or lengths that do not add up "
+                f"to the row's real tokens (offset = where the first disagreement is). A variable-length attention "
+                f"kernel given these lengths attends across documents or over padding. Write the column from the "
+                f"same step that packs the tokens, after truncation.",
+                rows=n, lengthRows=int(total), column=column))
+        if hits.get("lengths-vs-separators"):
+            n = hits["lengths-vs-separators"].count
+            what = "not preceded by eos" if s.separator == "eos-after" else \
+                "not a bos" if s.separator == "bos-before" else "not an eos followed by bos"
+            sep_id = s.bos_id if s.separator == "bos-before" else s.eos_id
+            out.append(self.finding(
+                state, "lengths-vs-separators",
+                f"{n:,} document starts that the {column} column gives inside rows are {what} (id {sep_id}) under "
+                f"separator = {s.separator} (offset = the start): the lengths and the tokens disagree on where "
+                f"documents meet, so one of them is off. Rebuild the column from the packed tokens, or fix the "
+                f"separators." + inferred_note(s, ("eos_id", "bos_id", "pad_id")),
+                boundaries=n, column=column, separator=s.separator, separatorId=sep_id))
         return out
 
     def _glued(self, state, ids, fix) -> list[Finding]:
@@ -209,7 +254,8 @@ class MissingSeparator(Rule):
                 f"{s.seq_len:,} tokens (heuristic: fewer than one per {per:,} tokens; {state.hits[kind].count:,} "
                 f"windows hold none, listed): documents appear glued together with nothing to mark where one ends. "
                 f"{fix[name]} If each row is instead one long document cut at seq_len, or the windows really hold "
-                "single long documents, raise tokens_per_separator.",
+                "single long documents, raise tokens_per_separator; if the shard marks documents with bos instead, "
+                "give --separator bos-before (or both) and --bos-id." + inferred_note(s, (f"{name}_id",)),
                 windows=int(st["windows"]), windowTokens=int(tokens), separatorCount=int(seen),
                 tokensPerSeparator=per, separatorId=ids[name], heuristic=True))
         return out

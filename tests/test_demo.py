@@ -135,8 +135,11 @@ def test_stats_adds_the_corpus_figures_and_the_token_budget(tmp_path):
     assert f"  rows: {report['metrics']['rows']:,}" in block and f"  tokens: {report['metrics']['tokens']:,}" in block
     assert (f"Token budget (tokens; seq_len 128; {budget['documents']:,} documents, {budget['documentTokens']:,} "
             "document tokens)") in block
-    assert (budget["documents"], budget["documentTokens"]) == (700, 32607)
-    assert len(block) == 29  # blank, heading, 19 lines of figures (wrapped at 100 columns), blank, 7 of the budget
+    # 699: the last document of pantry_missing_eos (no eos: its planted defect) is read as running on into the
+    # next shard, whose first row starts with nothing that marks a document start (a heuristic, in the metrics)
+    assert (budget["documents"], budget["documentTokens"], report["metrics"]["documentTokens"]["documentsAcrossShards"]) == \
+        (699, 32607, 1)
+    assert len(block) == 30  # blank, heading, 20 lines of figures (wrapped at 100 columns), blank, 7 of the budget
 
 
 def test_the_long_format_keeps_every_message_in_full(tmp_path):

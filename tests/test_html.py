@@ -276,7 +276,7 @@ def test_the_demo_report_names_every_rule_with_a_result_and_draws_its_figures(tm
 
 def test_overlong_documents_are_counted_beyond_the_window(tmp_path):
     # Packed rows of 8 with position restarts; documents of these lengths (plus eos each).
-    docs = [[5] * n for n in (3, 9, 20, 6, 7, 11, 1)]  # 64 tokens with their eos: 8 full rows, no padding
+    docs = [list(range(10, 10 + n)) for n in (3, 9, 20, 6, 7, 11, 1)]  # 64 tokens with their eos: 8 full rows
     shard = write(tmp_path / "packed.parquet", pack(docs, 8, eos=EOS))
     report = run(shard, eos_id=EOS, seq_len=8)
     h = report.metrics["documentLengthHistogram"]["tokens"]

@@ -436,11 +436,20 @@ def test_pad_id_as_ignore_marker(tmp_path):
     path = write(tmp_path / "pad2.parquet", {"input_ids": ids, "labels": labels})
     found = label_findings(run(path, only=(RULE,), labels="shifted", pad_id=PAD))
     assert [f.kind for f in found] == ["pad-label"] and locations(found[0]) == expected
-    # pad_id unknown and no mask: nothing says which positions are padding, so the pad label of a padded row's
-    # last position reads as a trained last label
+    # pad_id not given and no mask: most rows end in a run of 0, so 0 is inferred as the pad id (issue 10) and the
+    # same positions are read as padding, with the finding saying that the pad id was inferred
+    found = label_findings(run(path, only=(RULE,), labels="shifted"))
+    assert [f.kind for f in found] == ["pad-label"] and locations(found[0]) == expected
+    assert "pad id 0 (pad_id inferred)" in found[0].message
+    # with fewer padded rows than the inference needs (a quarter), nothing says which positions are padding, so
+    # the pad label of a padded row's last position reads as a trained last label
+    few = [r for r, mrow in enumerate(mask) if 0 in mrow][:2]
+    keep = [r for r, mrow in enumerate(mask) if 0 not in mrow] + few
+    path = write(tmp_path / "pad3.parquet", {"input_ids": [ids[r] for r in keep],
+                                             "labels": [labels[r] for r in keep]})
     found = label_findings(run(path, only=(RULE,), labels="shifted"))
     assert [f.kind for f in found] == ["last-label"]
-    assert locations(found[0]) == [(r, len(ids[r]) - 1) for r, mrow in enumerate(mask) if 0 in mrow]
+    assert locations(found[0]) == [(keep.index(r), len(ids[r]) - 1) for r in few]
 
 
 def test_labels_beyond_the_vocabulary(tmp_path):

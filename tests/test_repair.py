@@ -22,11 +22,11 @@ import pytest
 from click.testing import CliRunner
 from corpuscle import Settings
 from corpuscle.cli import main
+from corpuscle.io.sources import discover
 from corpuscle.kernels.packing import best_fit_decreasing_fills
 from corpuscle.repair import repair
 from corpuscle.repair.repack import best_fit_assign
 from corpuscle.repair.rewrite import ShardJob, rewrite_shard
-from corpuscle.io.sources import discover
 
 from tests.shards import pack, run, write
 from tests.test_packing import opt_windows
@@ -694,10 +694,9 @@ def test_round_trip_of_a_shard_with_several_defects_equals_the_shard_built_right
 def test_memory_of_a_repair_does_not_grow_with_the_shard(tmp_path, monkeypatch, repack):
     import tracemalloc
 
+    import corpuscle.io.batch as batch_module
     import corpuscle.io.sources as sources
     import corpuscle.repair.repack as repack_module
-
-    import corpuscle.io.batch as batch_module
 
     # small batches, buffers and first records (facts are inferred from them, as a scan does), so that both
     # shards are many of each

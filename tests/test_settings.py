@@ -249,23 +249,37 @@ def test_eos_and_bos_from_position_restarts():
     restarts = [(r, t) for r, row in enumerate(cols["position_ids"]) for t, p in enumerate(row) if p == 0 and t > 0]
     assert len(restarts) == 5 and all(cols["input_ids"][r][t - 1] == 2 for r, t in restarts)
     s = infer(cols)
-    assert (s.eos_id, s.bos_id) == (2, 1)
+    # bos is inferred only when no eos is found: an id at every document start may be a content word (issue 10)
+    assert (s.eos_id, s.bos_id) == (2, None)
     assert s.evidence["eos_id"] == "id before 100% of 5 position restarts in the first 5 rows"
-    assert s.evidence["bos_id"] == "id at 100% of 5 position restarts in the first 5 rows"
+    s = infer(cols, separator="both")  # the convention asks for bos: the id at every restart, found nowhere else
+    assert (s.eos_id, s.bos_id) == (2, 1)
+    assert s.evidence["bos_id"] == ("id at 100% of 5 position restarts in the first 5 rows, and 100% of its "
+                                    "occurrences are there")
 
 
 def test_eos_from_the_last_real_token_of_padded_rows_with_a_known_pad_id():
     ids = [[5, 6, 2, 0, 0], [7, 2, 0, 0, 0], [8, 9, 9, 2, 0], [3, 2, 0, 0, 0], [4, 4, 4, 4, 2]]
     s = infer({"input_ids": ids}, pad_id=0)  # no attention mask: the trailing pad ids are not real tokens
-    assert (s.eos_id, s.evidence["eos_id"]) == (2, "last real token of 100% of the first 5 rows")
+    assert (s.eos_id, s.evidence["eos_id"]) == (2, "last real token of 100% of 4 padded rows in the first 5 rows")
     assert infer({"input_ids": ids}).eos_id is None  # unknown pad: the last tokens are 0 (4 rows) and 2: 80%
 
 
 def test_bos_from_the_first_token_when_documents_open_with_bos():
     ids = [[1, 5, 6, 2], [1, 7, 2, 3], [1, 8, 8, 2], [1, 9, 2, 4], [1, 3, 3, 2]]
-    assert infer({"input_ids": ids}).bos_id is None  # separator eos-after: the first token is not evidence
+    # No eos: 3 of 5 rows (60%) end in 2, under the 90% bar. bos 1 opens every row and occurs nowhere else, so the
+    # convention is inferred as bos-before (issue 10), each with its evidence.
+    s = infer({"input_ids": ids})
+    assert (s.eos_id, s.bos_id, s.separator) == (None, 1, "bos-before")
+    assert s.source("separator") == "inferred" and "no eos was found" in s.evidence["separator"]
+    assert "agree at 60% at most" in s.undecided["eos_id"]
     s = infer({"input_ids": ids}, separator="bos-before")
-    assert (s.bos_id, s.evidence["bos_id"]) == (1, "first token of 100% of the first 5 rows")
+    assert (s.bos_id, s.evidence["bos_id"]) == (1, "id at 100% of 5 rows (their first real token) in the first 5 "
+                                                   "rows, and 100% of its occurrences are there")
+    # An id that opens every row but also occurs inside them is a content word, not a bos.
+    words = [[7, 5, 6, 7], [7, 8, 9, 3], [7, 8, 8, 4], [7, 9, 5, 4], [7, 3, 3, 5]]
+    s = infer({"input_ids": words})
+    assert (s.bos_id, s.separator) == (None, "eos-after") and "83% of its occurrences" in s.undecided["bos_id"]
 
 
 def test_no_eos_when_fewer_than_nine_in_ten_rows_agree():

@@ -7,28 +7,44 @@ in each:
     Raw text, one document per row.  Its length is counted in tokens with a tokenizer file (``tokenizer``
     setting, :mod:`corpuscle.kernels.tokenize`), otherwise in UTF-8 bytes; the unit travels with every figure.
 ``position-restarts``
-    Token rows with ``position_ids``: a document starts wherever the position restarts at 0.  A row whose first
-    position is not 0 continues the previous row's last document, so a document can run over several rows (and
-    batches): its length is the sum of its pieces.
+    Packed token rows whose ``position_ids`` restart at 0 at every document start and run on across rows: a row
+    whose first position is not 0 continues the previous row's last document, so a document can run over several
+    rows (and batches, and shards): its length is the sum of its pieces.
 ``separators``
-    Packed token rows without ``position_ids``: a document ends at its separator (``eos`` after each document, or
-    starts at ``bos`` under ``separator = "bos-before"``), joined across rows like above.  A padded row ends its
-    last document at the padding.
+    Packed token rows (with no ``position_ids``, or ones that restart at every window): a document starts after
+    each ``eos`` (at the next row's start when the eos ends a row), at each ``bos`` (``bos-before``, ``both``), where
+    ``position_ids`` restart inside a row, and after a padded row.  A row start that none of these marks continues
+    the previous row's document (concatenate-and-chunk): a restart at a window start says nothing by itself.
+``length-columns``
+    Packed token rows with a document-length column (``doc_lengths``: the lengths of the documents in the row;
+    ``cu_seqlens``: their cumulative offsets): the column gives the starts inside each row, joined across rows like
+    ``separators`` (every row start is a document start when no separator id is known).
 ``one-per-row``
     Token rows that each hold at most one document (typically padded to the window): the row's real tokens are
     the document.
+``undecided``
+    Full, unpadded rows of one length with nothing to tell documents apart (no separator id, no restart inside a
+    row, no length column): whether a row is a document or a window of a stream cannot be told; the length rules
+    skip the shard and say so.
 
-The arrangement of a token shard is inferred once, from its first records (:func:`infer_arrangement`): position_ids
-decide when present; otherwise a separator inside a row (not as its last real token) means packed rows
-(``separators``); else one document per row.  The choice is a heuristic and is reported with its reason.
+The arrangement of a token shard is inferred once, from its first records (:func:`infer_arrangement`), by the clear
+majority of the rows: packed when enough rows hold a document boundary inside them (a separator followed by a real
+token that is not a separator, or a position restart between real tokens), ``position-restarts`` when the
+position_ids also run on across rows; else one document per row, and the few rows that hold a boundary are left to
+the rules that report them.  The choice is a heuristic and is reported with its reason.
 
-Real tokens are told from padding by the attention mask (non-zero) when there is one, else as the row's tokens up
-to its last non-``pad_id`` token (when ``pad_id`` equals ``eos_id``, the first pad is kept as the row's eos),
-else every token is real.
+Real tokens are told from padding by :class:`~corpuscle.kernels.tokens.RealTokens`, the reading every rule and the
+inference of facts share: the attention mask when there is one, else runs of ``pad_id`` at a row's end (keeping
+the eos when ``pad_id`` equals ``eos_id``) and start, else every token is real.
 
-A document is **cut** when its last token is the last token of a full row (no padding, at least ``seq_len``
-tokens), it is not ``eos``, and the next row does not continue it: the document went on beyond the window and the
-rest is not in the row.  This needs ``eos_id`` and a separator convention with ``eos`` after each document.
+A document is **cut** only when the layout shows the rest is gone: its last token is the last token of a full row
+(no padding, at least ``seq_len`` tokens), it is not ``eos``, and the next row begins a new document (one document
+per row, a bos or a position restart at the next row's start).  This needs ``eos_id`` and a separator convention
+with ``eos`` after each document.  In packed streams a document longer than the window is reported as such, never
+as cut.
+
+Consecutive shards of one packed stream are read like consecutive rows (:func:`stitch_shards`): a shard whose last
+document is left open continues into the next shard's first tokens when those start no document.
 
 Everything per batch is a handful of whole-array passes (a comparison, a ``flatnonzero``, at most one cumulative
 count when there is padding); per-document work is on arrays the size of the number of documents, and locations
@@ -42,11 +58,16 @@ from typing import Callable
 
 import numpy as np
 from corpuscle.io.batch import Batch, Flat, is_integer_list
+from corpuscle.kernels.tokens import RealTokens, _real_key, real_tokens  # noqa: F401 (re-exported)
 
 POSITIONS = "position-restarts"
 SEPARATORS = "separators"
 ONE_PER_ROW = "one-per-row"
 TEXT = "text"
+LENGTHS = "length-columns"
+UNDECIDED = "undecided"
+#: Arrangements whose documents run across rows (and shards).
+PACKED = (POSITIONS, SEPARATORS, LENGTHS)
 
 #: Quantiles reported for document lengths (percent), and how they are computed.
 QUANTILES = (50, 90, 99)
@@ -184,80 +205,12 @@ def percentile(sizes: np.ndarray, counts: np.ndarray, percent: float) -> float:
     return float(b - diff * (1 - t)) if t >= 0.5 else float(a + diff * t)
 
 
-# -- real tokens ----------------------------------------------------------------------------------------------
+# -- real tokens (one reading, shared with every rule: corpuscle.kernels.tokens) -----------------------------------
 
-def _running(mask: np.ndarray) -> np.ndarray:
-    """``out[i]`` = set positions in ``mask[:i]`` (length N+1), int32 when it fits."""
-    dtype = np.int32 if mask.size < np.iinfo(np.int32).max else np.int64
-    out = np.zeros(mask.size + 1, dtype=dtype)
-    np.cumsum(mask, dtype=dtype, out=out[1:])
-    return out
-
-
-class RealTokens:
-    """Which flat positions of a token column hold real tokens, not padding.
-
-    ``mask`` is None when every position is real; ``run`` is then None too (the running count is the index
-    itself).  ``per_row`` is the real tokens of each row.
-    """
-
-    def __init__(self, mask: np.ndarray | None, run: np.ndarray | None, per_row: np.ndarray):
-        self.mask = mask
-        self.run = run
-        self.per_row = per_row
-
-    @property
-    def total(self) -> int:
-        return int(self.per_row.sum())
-
-    def upto(self, index: np.ndarray) -> np.ndarray:
-        """Real tokens before each flat index."""
-        return np.asarray(index, dtype=np.int64) if self.run is None else self.run[index].astype(np.int64)
-
-    def first_from(self, index: np.ndarray) -> np.ndarray:
-        """The first real position at or after each flat index (few indices: binary search)."""
-        if self.run is None:
-            return np.asarray(index, dtype=np.int64)
-        return np.searchsorted(self.run, self.run[index] + 1, side="left") - 1
-
-    @classmethod
-    def of(cls, batch: Batch, tokens: Flat, settings) -> "RealTokens":
-        n = tokens.values.size
-        name = settings.mask_column
-        if batch.has(name) and is_integer_list(batch.type_of(name)):
-            mask_col = batch.flat(name)
-            if np.array_equal(mask_col.lengths, tokens.lengths):
-                real = mask_col.values != 0
-                if np.count_nonzero(real) == n:
-                    return cls(None, None, tokens.lengths)
-                run = _running(real)
-                return cls(real, run, (run[tokens.ends] - run[tokens.starts]).astype(np.int64))
-        pad = settings.pad_id
-        lengths = tokens.lengths
-        nonempty = lengths > 0
-        if pad is None or n == 0:
-            return cls(None, None, lengths)
-        padded = np.zeros(lengths.size, dtype=bool)
-        padded[nonempty] = tokens.values[tokens.ends[nonempty] - 1] == pad
-        if not padded.any():
-            return cls(None, None, lengths)
-        # Past the last non-pad token of each padded row: the first index where the running count of non-pad
-        # tokens reaches the row's total (rows-sized binary search over one cumulative count).
-        nonpad = _running(tokens.values != pad)
-        rows = np.flatnonzero(padded)
-        total = nonpad[tokens.ends[rows]]
-        end = np.maximum(np.searchsorted(nonpad, total, side="left"), tokens.starts[rows])
-        has_real = total > nonpad[tokens.starts[rows]]
-        if pad == settings.eos_id:  # the first pad is the eos that ends the row's last document
-            end = np.where(has_real, np.minimum(end + 1, tokens.ends[rows]), end)
-        per_row = lengths.copy()
-        per_row[rows] = end - tokens.starts[rows]
-        # Real mask: +1 at each row start, -1 past its last real token, accumulated (int8, one pass).
-        step = np.zeros(n + 1, dtype=np.int8)
-        np.add.at(step, tokens.starts[nonempty], 1)
-        np.subtract.at(step, tokens.starts[nonempty] + per_row[nonempty], 1)
-        real = np.cumsum(step[:-1], dtype=np.int8).view(np.bool_)
-        return cls(real, _running(real), per_row)
+# RealTokens and _running live in corpuscle.kernels.tokens and stay importable from here.
+__all__ = ["RealTokens", "LengthHistogram", "DocumentTally", "BatchDocuments", "documents_of", "infer_arrangement",
+           "length_column", "length_boundaries", "length_column_problems", "undecided", "percentile", "QUANTILES",
+           "QUANTILE_METHOD", "stitch_shards", "stitched_lengths", "Stitched", "PACKED", "POSITIONS", "SEPARATORS", "ONE_PER_ROW", "TEXT", "LENGTHS", "UNDECIDED"]
 
 
 # -- arrangement ------------------------------------------------------------------------------------------------
@@ -278,11 +231,164 @@ def _marker(settings) -> tuple[str, int | None]:
     return "eos", settings.eos_id
 
 
+def length_column(batch: Batch, settings) -> tuple[str, str, Flat] | None:
+    """The batch's document-length column, if it has one: ``(kind, column name, flat values)`` with kind
+    ``"doc_lengths"`` (lengths of the documents of each row) or ``"cu_seqlens"`` (their cumulative offsets, 0 ...
+    the row's real length)."""
+    for kind, name in (("doc_lengths", settings.doc_lengths_column), ("cu_seqlens", settings.cu_seqlens_column)):
+        if batch.has(name) and is_integer_list(batch.type_of(name)):
+            return kind, name, batch.flat(name)
+    return None
+
+
+def _piece_ends(kind: str, column: Flat) -> tuple[np.ndarray, np.ndarray]:
+    """Per entry of a length column: its row and the offset within the row where a document ends (doc_lengths:
+    the running sum within the row; cu_seqlens: the value itself)."""
+    rows = column.row_of
+    values = column.values.astype(np.int64)
+    if kind == "cu_seqlens":
+        return rows, values
+    total = np.cumsum(values)
+    before = np.concatenate([[0], total])[column.starts]  # sum of the earlier rows' entries
+    return rows, total - before[rows]
+
+
+def length_boundaries(batch: Batch, tokens: Flat, settings) -> np.ndarray:
+    """Sorted flat indices where the batch's length column starts a document inside a row (strictly between the
+    row's start and the end of its real tokens; shared per batch).  Empty without a length column."""
+    found = length_column(batch, settings)
+    if found is None:
+        return np.zeros(0, dtype=np.int64)
+    kind, name, column = found
+
+    def make():
+        if column.lengths.size != tokens.lengths.size:
+            return np.zeros(0, dtype=np.int64)
+        rows, ends = _piece_ends(kind, column)
+        per_row = real_tokens(batch, tokens, settings).per_row
+        inside = (ends > 0) & (ends < per_row[rows])
+        return np.unique(tokens.starts[rows[inside]] + ends[inside])
+    return batch.memo(("length-boundaries", name, kind) + _real_key(settings)[1:], make)
+
+
+def length_column_problems(batch: Batch, tokens: Flat, settings) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """Where the batch's length column contradicts its token rows, as batch-local ``(rows, offsets)`` per kind:
+
+    ``lengths-mismatch``: rows whose lengths do not describe the row: a negative length, cumulative offsets that
+    do not start at 0 or go down, or a total that is not the row's real length (offset: where the first problem
+    is, the smaller of the total and the real length for a wrong total);
+    ``lengths-vs-separators``: document starts the column gives inside a row that the separator does not mark
+    (under eos-after and both: the token before is not eos; under bos-before: the token is not bos; offset: the
+    start).  Needs the separator id; without it only the first kind is checked."""
+    found = length_column(batch, settings)
+    empty = (np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64))
+    if found is None:
+        return {}
+    kind, _, column = found
+    if column.lengths.size != tokens.lengths.size:
+        return {}
+    per_row = real_tokens(batch, tokens, settings).per_row
+    rows, ends = _piece_ends(kind, column)
+    values = column.values.astype(np.int64)
+    n_rows = tokens.lengths.size
+    big = np.iinfo(np.int64).max
+    first = np.full(n_rows, big, dtype=np.int64)  # per row: offset of its first problem
+    if kind == "doc_lengths":
+        bad = values < 0
+        np.minimum.at(first, rows[bad], np.maximum(ends[bad] - values[bad], 0))
+        total = np.zeros(n_rows, dtype=np.int64)
+        np.add.at(total, rows, values)
+    else:
+        lead = column.starts[column.lengths > 0]
+        wrong_start = values[lead] != 0
+        np.minimum.at(first, rows[lead[wrong_start]], 0)
+        down = np.flatnonzero(values[1:] < values[:-1]) + 1
+        down = down[~column.is_first[down]]
+        np.minimum.at(first, rows[down], np.maximum(values[down - 1], 0))
+        total = np.zeros(n_rows, dtype=np.int64)
+        has = column.lengths > 0
+        total[has] = values[column.ends[has] - 1]
+    mismatch = total != per_row
+    np.minimum.at(first, np.flatnonzero(mismatch), np.clip(np.minimum(total, per_row)[mismatch], 0, None))
+    bad_rows = np.flatnonzero(first != big)
+    out = {"lengths-mismatch": (bad_rows, np.minimum(first[bad_rows], tokens.lengths[bad_rows]))}  # inside the row
+    name, marker = _marker(settings)
+    if marker is None:
+        out["lengths-vs-separators"] = empty
+        return out
+    starts = length_boundaries(batch, tokens, settings)
+    starts = starts[~np.isin(tokens.rows_at(starts), bad_rows)]  # a row whose lengths are wrong is reported once
+    if settings.separator in ("eos-after", "both"):
+        unmarked = tokens.values[starts - 1] != settings.eos_id
+        if settings.separator == "both" and settings.bos_id is not None:
+            unmarked |= tokens.values[starts] != settings.bos_id
+    else:
+        unmarked = tokens.values[starts] != marker
+    r, off = tokens.locate(starts[unmarked])
+    out["lengths-vs-separators"] = (r, off)
+    return out
+
+
+def _inner_restarts(batch: Batch, tokens: Flat, settings, real: RealTokens) -> np.ndarray | None:
+    """Flat indices where position_ids restart at 0 inside a row between two real tokens (None without a usable
+    position_ids column)."""
+    positions = _positions(batch, tokens, settings)
+    if positions is None:
+        return None
+    at = np.flatnonzero(positions.values == 0)
+    at = at[~tokens.is_first[at]]
+    if real.mask is not None:
+        at = at[real.mask[at] & real.mask[at - 1]]
+    return at
+
+
+def _inner_separators(tokens: Flat, real: RealTokens, name: str, marker: int) -> np.ndarray:
+    """Flat indices of the document starts a separator marks inside a row: after an eos that a real token other
+    than eos follows in the same row (a doubled eos starts no document), or at a bos that is not its row's first
+    real token."""
+    values = tokens.values
+    at = np.flatnonzero(values == marker)
+    if real.mask is not None:
+        at = at[real.mask[at]]
+    if name == "eos":
+        at = at + 1
+        at = at[at < values.size]
+        at = at[~tokens.is_first[at]]
+        keep = values[at] != marker
+        if real.mask is not None:
+            keep &= real.mask[at]
+        return at[keep]
+    first = real.first_from(tokens.starts[tokens.rows_at(at)])
+    return at[at != first]
+
+
+#: A shard is read as packed when at least this share of its first rows hold a document boundary inside them (or
+#: PACKED_SHARE_UNPADDED, and at least two rows, when at most MOSTLY_PADDED of the rows are padded: long documents
+#: packed into windows leave few rows with a boundary inside, one padded document per row pads most rows): a few
+#: rows that disagree do not change the reading.
+PACKED_SHARE = 0.10
+PACKED_SHARE_UNPADDED = 0.02
+MOSTLY_PADDED = 0.5
+#: Position_ids run on across rows (a row may start mid-document at a position > 0) when at least this share of
+#: the rows start at a position above 0.
+CARRY_SHARE = 0.10
+
+
+def undecided(batch: Batch, settings) -> str | None:
+    """Why the documents of this token batch cannot be told apart (see :data:`UNDECIDED`), or None; cheap when a
+    separator id is known (then they always can)."""
+    if _marker(settings)[1] is not None or length_column(batch, settings) is not None:
+        return None
+    arrangement, why = infer_arrangement(batch, settings)
+    return why if arrangement == UNDECIDED else None
+
+
 def infer_arrangement(batch: Batch, settings) -> tuple[str, str]:
-    """How documents sit in a shard's rows, from its first records: ``(arrangement, why)`` (a heuristic; cached
-    on the batch)."""
+    """How documents sit in a shard's rows, from its first records: ``(arrangement, why)`` (a heuristic decided
+    by the clear majority of the rows; cached on the batch)."""
     key = ("arrangement", settings.tokens_column, settings.mask_column, settings.positions_column,
-           settings.separator, settings.eos_id, settings.bos_id, settings.pad_id)
+           settings.separator, settings.eos_id, settings.bos_id, settings.pad_id, settings.doc_lengths_column,
+           settings.cu_seqlens_column)
     return batch.memo(key, lambda: _infer_arrangement(batch, settings))
 
 
@@ -291,32 +397,54 @@ def _infer_arrangement(batch: Batch, settings) -> tuple[str, str]:
     if not (batch.has(tok) and is_integer_list(batch.type_of(tok))):
         return TEXT, "raw text, one document per row"
     tokens = batch.flat(tok)
-    if _positions(batch, tokens, settings) is not None:
-        return POSITIONS, "position_ids restart at 0 at each document start"
+    found = length_column(batch, settings)
+    if found is not None:
+        return LENGTHS, f"the {found[1]} column gives the documents of each row"
+    real = real_tokens(batch, tokens, settings)
+    with_real = real.per_row > 0
+    rows = int(np.count_nonzero(with_real))
+    padded = int(np.count_nonzero(with_real & (real.per_row < tokens.lengths)))
+    restarts = _inner_restarts(batch, tokens, settings, real)
     name, marker = _marker(settings)
-    if marker is None:
-        return ONE_PER_ROW, f"no {name}_id known, so each row is taken as one document"
-    real = RealTokens.of(batch, tokens, settings)
-    hits = tokens.values == marker
-    if real.mask is not None:
-        hits &= real.mask
-    inside = int(np.count_nonzero(hits))
-    nonempty = real.per_row > 0
-    if name == "eos":  # an eos that is not the last real token of its row separates two documents in the row
-        edge = _last_real_index(tokens, real)[nonempty]
-    else:  # a bos that is not the first real token of its row
-        edge = real.first_from(tokens.starts[nonempty])
-    inside -= int(np.count_nonzero(tokens.values[edge] == marker))
-    if inside > 0:
-        return SEPARATORS, f"{inside:,} {name} tokens inside rows of the first {len(batch):,} rows: packed documents"
-    return ONE_PER_ROW, f"no {name} inside any of the first {len(batch):,} rows: one document per row"
-
-
-def _last_real_index(tokens: Flat, real: RealTokens) -> np.ndarray:
-    """Per row, the flat index of its last real token (rows without one: its start - 1, to be masked out)."""
-    if real.run is None:
-        return tokens.ends - 1
-    return np.searchsorted(real.run, real.run[tokens.ends], side="left") - 1
+    marks = [a for a in (restarts, None if marker is None else _inner_separators(tokens, real, name, marker))
+             if a is not None and a.size]
+    inside = np.zeros(tokens.lengths.size, dtype=bool)
+    for at in marks:
+        inside[tokens.rows_at(at)] = True
+    packed_rows = int(np.count_nonzero(inside))
+    what = " or ".join(w for w, a in (("position restarts", restarts), (f"{name}", marker)) if a is not None)
+    unpadded = padded <= max(1, int(rows * 0.01))
+    few = PACKED_SHARE_UNPADDED * rows
+    packed = packed_rows > 0 and (packed_rows >= PACKED_SHARE * rows
+                                  or (unpadded and packed_rows >= few)
+                                  or (padded <= MOSTLY_PADDED * rows and packed_rows >= max(2, few)))
+    where = f"of the first {rows:,} rows"
+    positions = _positions(batch, tokens, settings)
+    carry = 0
+    if positions is not None and rows and (packed or unpadded):
+        # rows that start mid-document: their first real position is above 0 (left padding aside: unpadded rows)
+        first = real.first_from(tokens.starts[with_real])
+        carry = int(np.count_nonzero(positions.values[first] > 0))
+    if carry and carry >= CARRY_SHARE * rows:
+        return POSITIONS, (f"{carry:,} {where} start at a position above 0 and {packed_rows:,} hold a document "
+                           f"boundary inside them: packed documents whose position_ids restart per document and "
+                           f"run on across rows")
+    if packed:
+        return SEPARATORS, (f"{packed_rows:,} {where} hold a document boundary inside them ({what}): packed "
+                            f"documents, joined across rows unless a separator or padding ends them")
+    if marker is None and (restarts is None or not restarts.size):
+        lengths = tokens.lengths[with_real]
+        counts = np.bincount(lengths) if lengths.size else np.zeros(1, dtype=np.int64)
+        common, length = counts.max(), int(counts.argmax())
+        fits = settings.seq_len is None or length <= settings.seq_len  # rows over the window are split anyway
+        if unpadded and rows and common >= 0.9 * rows and fits:
+            return UNDECIDED, (f"rows of one length ({length:,} tokens), unpadded, and no {name}_id, no position "
+                               f"restart inside a row and no length column to tell documents apart: whether each "
+                               f"row is one document or a window of a packed stream cannot be told")
+        return ONE_PER_ROW, (f"no {name}_id known and no position restart inside a row: each row is taken as one "
+                             f"document ({padded:,} {where} are padded)")
+    others = f"; {packed_rows:,} rows that hold a boundary inside are reported as such" if packed_rows else ""
+    return ONE_PER_ROW, f"no boundary ({what}) inside {rows - packed_rows:,} {where}: one document per row{others}"
 
 
 # -- documents of one batch -------------------------------------------------------------------------------------
@@ -354,7 +482,7 @@ def documents_of(batch: Batch, settings, arrangement: str) -> BatchDocuments:
     """The documents of ``batch`` under ``arrangement`` (cached on the batch, so rules sharing it pay once)."""
     key = (arrangement, settings.tokens_column, settings.text_column, settings.mask_column,
            settings.positions_column, settings.eos_id, settings.bos_id, settings.pad_id, settings.seq_len,
-           settings.separator, settings.tokenizer)
+           settings.separator, settings.tokenizer, settings.doc_lengths_column, settings.cu_seqlens_column)
     return batch.memo(("documents",) + key, lambda: _text_documents(batch, settings) if arrangement == TEXT else
                       _token_documents(batch, settings, arrangement))
 
@@ -381,27 +509,40 @@ def _token_documents(batch: Batch, settings, arrangement: str) -> BatchDocuments
     tokens = batch.flat(settings.tokens_column)
     values, offsets = tokens.values, tokens.offsets
     n = values.size
-    real = RealTokens.of(batch, tokens, settings)
+    real = real_tokens(batch, tokens, settings)
     name, marker = _marker(settings)
     nonempty = tokens.lengths > 0
 
     # Document starts (flat indices, sorted).
-    if arrangement == POSITIONS:
+    if arrangement == POSITIONS:  # position_ids restart per document and run on across rows
         restart = _positions(batch, tokens, settings).values == 0
         if real.mask is not None:
             restart &= real.mask
         starts = np.flatnonzero(restart)
-    elif arrangement == SEPARATORS:
-        hits = values == marker
-        if real.mask is not None:
-            hits &= real.mask
-        starts = np.flatnonzero(hits)
-        if name == "eos":
-            starts += 1  # a document starts after each eos
-        ended = tokens.ends[nonempty & (real.per_row < tokens.lengths)]  # padding ends a row's last document
-        if ended.size:
-            starts = np.sort(np.concatenate([starts, ended]))
-            starts = starts[np.r_[True, starts[1:] != starts[:-1]]]
+    elif arrangement in (SEPARATORS, LENGTHS):
+        # Packed rows: a document starts after each eos (at the next row's start when the eos ends a row), at each
+        # bos, where position_ids restart inside a row, where the length column says, and after a padded row. A
+        # row start that none of these marks continues the previous row's document (concatenate-and-chunk).
+        parts = []
+        eos = settings.eos_id if settings.separator in ("eos-after", "both") else None
+        bos = settings.bos_id if settings.separator in ("bos-before", "both") else None
+        if eos is not None:
+            at = np.flatnonzero(values == eos)
+            if real.mask is not None:
+                at = at[real.mask[at]]
+            parts.append(at + 1)
+        if bos is not None:
+            at = np.flatnonzero(values == bos)
+            parts.append(at[real.mask[at]] if real.mask is not None else at)
+        restarts = _inner_restarts(batch, tokens, settings, real)
+        if restarts is not None:
+            parts.append(restarts)
+        if arrangement == LENGTHS:
+            parts.append(length_boundaries(batch, tokens, settings))
+            if eos is None and bos is None:  # nothing says whether a row continues the previous one
+                parts.append(tokens.starts[nonempty])
+        parts.append(tokens.ends[nonempty & (real.per_row < tokens.lengths)])  # padding ends a row's last document
+        starts = np.unique(np.concatenate(parts)) if parts else np.zeros(0, dtype=np.int64)
     else:  # ONE_PER_ROW
         starts = tokens.starts[nonempty]
 
@@ -490,6 +631,14 @@ class DocumentTally:
         self.lead: list | None = None
         self._on_overlong = on_overlong
         self._on_cut = on_cut
+        # The shard's first document when its first real tokens start no document (they continue a document of
+        # the shard before, in a packed stream), and the document the shard's end left open (no eos, no padding
+        # ended it): [length, row, offset] each, for stitching consecutive shards (:func:`stitch_shards`). Not
+        # kept by a tally joined from parts of a split shard.
+        self.opening: list | None = None
+        self.closing: list | None = None
+        self.stitchable = True
+        self._opening_doc: list | None = None
 
     def expect_lead(self) -> None:
         """This tally's first rows may continue a document of the previous part of the shard: hold them aside."""
@@ -511,6 +660,8 @@ class DocumentTally:
                 row, off = docs.locate(np.zeros(1, dtype=np.int64))
                 if open_doc is None:
                     open_doc = self.carry = [0, int(row[0]), int(off[0]), False]
+                    if self.rows == docs.rows and docs.arrangement in PACKED and self.lead is None:
+                        self._opening_doc = open_doc  # the shard's first tokens continue an earlier document
                 else:
                     open_doc[1:3] = int(row[0]), int(off[0])
             open_doc[0] += docs.head
@@ -530,6 +681,8 @@ class DocumentTally:
         if self.lead is not None and not self.lead[4]:
             self.lead[3], self.lead[4] = False, True  # no document started in this part: the lead ran to the end
         if self.carry is not None:
+            if self.arrangement in PACKED:
+                self.closing = list(self.carry[:3])
             self._close_carry(False)
         self.pause()
 
@@ -549,6 +702,7 @@ class DocumentTally:
                      "padded_rows"):
             setattr(out, name, getattr(self, name) + getattr(later, name))
         out.lengths = LengthHistogram.merged([self.lengths, later.lengths])
+        out.stitchable = False  # the documents at the shard's two ends are not tracked through the parts
         out.lead = None if self.lead is None else list(self.lead)
         carry, lead = self.carry, later.lead or [0, -1, -1, None, True]
         if out.lead is not None and not out.lead[4]:  # no document started in this part: the lead goes on
@@ -574,6 +728,9 @@ class DocumentTally:
         return out
 
     def _close_carry(self, cut: bool) -> None:
+        if self.carry is self._opening_doc:
+            self.opening = list(self.carry[:3])
+            self._opening_doc = None
         length, row, off, _ = self.carry
         self.carry = None
         one = np.asarray([length], dtype=np.int64)
@@ -602,3 +759,68 @@ class DocumentTally:
         state = dict(self.__dict__)
         state["_on_overlong"] = state["_on_cut"] = None
         return state
+
+    def __setstate__(self, state):
+        state.setdefault("opening", None)
+        state.setdefault("closing", None)
+        state.setdefault("stitchable", False)
+        state.setdefault("_opening_doc", None)
+        self.__dict__.update(state)
+
+
+@dataclass
+class Stitched:
+    """A document that runs from the end of one shard into the start of the next (``before`` and ``after`` are
+    the indices of the two tallies): its length, and where it starts (row, offset in the earlier shard)."""
+
+    before: int
+    after: int
+    length: int
+    row: int
+    offset: int
+    pieces: tuple[int, int]
+
+
+def stitch_shards(tallies: list["DocumentTally"]) -> list[Stitched]:
+    """The documents that run from one shard into the next, for consecutive shards of one packed stream (``tallies``
+    in shard order): where a shard ends with its last document left open (no eos, no padding ended it) and the
+    next one begins with tokens that start no document, the two pieces are one document -- the same reading as
+    between two rows.  A shard that is one open document from end to end joins a chain.  Tallies of other
+    arrangements, of another unit or window, or joined from parts of a split shard, are not stitched."""
+    stitched: list[Stitched] = []
+    for i in range(len(tallies) - 1):
+        a, b = tallies[i], tallies[i + 1]
+        if not (a.stitchable and b.stitchable and a.closing and b.opening and a.unit == b.unit == "tokens"
+                and a.seq_len == b.seq_len):
+            continue
+        if stitched and stitched[-1].after == i and a.opening == a.closing:  # a is one open document: extend
+            chain = stitched.pop()
+            stitched.append(Stitched(chain.before, i + 1, chain.length + b.opening[0], chain.row, chain.offset,
+                                     (chain.pieces[0], b.opening[0])))
+        else:
+            stitched.append(Stitched(i, i + 1, a.closing[0] + b.opening[0], a.closing[1], a.closing[2],
+                                     (a.closing[0], b.opening[0])))
+    return stitched
+
+
+def stitched_lengths(tallies: list["DocumentTally"], stitched: list[Stitched],
+                     members: list[int] | None = None) -> LengthHistogram:
+    """The lengths of the documents of ``tallies`` (only those at the indices ``members``, when given), with the
+    pieces of every stitched document among them replaced by the whole document."""
+    members = list(range(len(tallies))) if members is None else members
+    merged = LengthHistogram.merged(tallies[i].lengths for i in members)
+    inside = [st for st in stitched if st.before in members and st.after in members]
+    if not inside:
+        return merged
+    remove = []
+    for st in inside:
+        remove += list(st.pieces)
+        remove += [tallies[k].opening[0] for k in range(st.before + 1, st.after)]  # whole shards in a chain
+    sizes, counts = np.unique(np.asarray(remove, dtype=np.int64), return_counts=True)
+    out = LengthHistogram()
+    out.add_counts(merged.sizes, merged.counts)
+    out.add_counts(sizes, -counts.astype(np.int64))
+    out.add_counts(np.asarray([st.length for st in inside], dtype=np.int64), np.ones(len(inside), dtype=np.int64))
+    keep = out.counts > 0
+    out._sizes, out._counts = out.sizes[keep], out.counts[keep]
+    return out

@@ -17,8 +17,17 @@ from corpuscle.engine.executors import LocalExecutor
 from corpuscle.engine.registry import registry
 from corpuscle.engine.scan import Report, run
 from corpuscle.io.sources import discover
-from corpuscle.repair.plan import (FIXABLE, REPACK, RepairUsage, addressed, check_out, check_shards_outside,
-                                   output_names, parse_fixes, plan_fixes)
+from corpuscle.repair.plan import (
+    FIXABLE,
+    REPACK,
+    RepairUsage,
+    addressed,
+    check_out,
+    check_shards_outside,
+    output_names,
+    parse_fixes,
+    plan_fixes,
+)
 from corpuscle.repair.rewrite import DUPLICATES, ShardJob, ShardOutcome, rewrite_shard
 from corpuscle.report import write_atomic
 from corpuscle.settings import FACTS, Settings

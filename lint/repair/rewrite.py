@@ -20,8 +20,15 @@ from corpuscle.kernels.documents import ONE_PER_ROW, POSITIONS, SEPARATORS, infe
 from corpuscle.kernels.packing import compare_layouts
 from corpuscle.kernels.tokens import real_positions
 from corpuscle.repair import fixes as fx
-from corpuscle.repair.repack import (LENGTHS, BestFitPacker, ChunkPacker, DocumentStream, Documents, length_column,
-                                     window_table)
+from corpuscle.repair.repack import (
+    LENGTHS,
+    BestFitPacker,
+    ChunkPacker,
+    Documents,
+    DocumentStream,
+    length_column,
+    window_table,
+)
 from corpuscle.repair.write import InputLayout, NullWriter, ShardWriter, copy_atomic
 from corpuscle.settings import Settings
 
