@@ -23,7 +23,7 @@ FAIL_AT = ("error", "warning", "note", "never")
 FACTS = ("text_column", "tokens_column", "labels_column", "mask_column", "positions_column", "eos_id", "bos_id",
          "pad_id", "vocab_size", "seq_len", "labels", "ignore_index", "separator", "tokenizer")
 #: Run options: one value for the whole scan.
-OPTIONS = ("only", "skip", "fail_at", "instance_cap", "rule")
+OPTIONS = ("only", "skip", "fail_at", "instance_cap", "rule", "eval")
 
 
 class SettingsError(Exception):
@@ -51,6 +51,7 @@ class Settings:
     fail_at: str = "error"
     instance_cap: int = DEFAULT_INSTANCE_CAP
     rule: dict = field(default_factory=dict)  # per-rule options: {"near-duplicate": {"threshold": 0.8}}
+    eval: tuple[str, ...] = ()  # evaluation sets compared with the training data (rule eval-overlap)
     path_tables: dict = field(default_factory=dict, repr=False)
     origin: dict = field(default_factory=dict, repr=False)  # key -> "default" | "inferred" | "config" | "flag"
     evidence: dict = field(default_factory=dict, repr=False)  # key -> why an inferred value was chosen
@@ -91,6 +92,7 @@ class Settings:
             raise SettingsError(f"fail_at must be one of {', '.join(FAIL_AT)}, got {self.fail_at!r}")
         if not isinstance(self.instance_cap, int) or isinstance(self.instance_cap, bool) or self.instance_cap < 0:
             raise SettingsError(f"instance_cap must be a whole number >= 0, got {self.instance_cap!r}")
+        _check_eval(self.eval)
         if not isinstance(self.rule, dict) or not all(isinstance(v, dict) for v in self.rule.values()):
             raise SettingsError("rule options go in tables, e.g. [rule.near-duplicate] threshold = 0.8")
 
@@ -106,6 +108,10 @@ class Settings:
         values = dict(values)
         tables = dict(self.path_tables)
         tables.update(_check_path_tables(values.pop("paths", {}) or {}))
+        if isinstance(values.get("eval"), str):
+            values["eval"] = (values["eval"],)
+        elif isinstance(values.get("eval"), list):
+            values["eval"] = tuple(values["eval"])
         for key in ("only", "skip"):
             if key in values and isinstance(values[key], str):
                 values[key] = tuple(v.strip() for v in values[key].split(",") if v.strip())
@@ -147,6 +153,16 @@ class Settings:
     @property
     def fail_level(self) -> Level | None:
         return None if self.fail_at == "never" else Level.parse(self.fail_at)
+
+
+def _check_eval(paths) -> None:
+    """Evaluation sets must be existing files (a usage error otherwise, before any shard is read)."""
+    if not isinstance(paths, tuple) or not all(isinstance(p, str) and p for p in paths):
+        raise SettingsError(f'eval takes paths of evaluation sets, e.g. eval = ["eval/qa.jsonl"], got {paths!r}')
+    for path in paths:
+        if "://" not in path and not os.path.isfile(path):
+            raise SettingsError(f"evaluation set {path} does not exist: give a JSON Lines, Parquet or Arrow file "
+                                "with one item per record (--eval FILE)")
 
 
 def _check_path_tables(tables) -> dict:

@@ -12,7 +12,7 @@ from corpuscle.rules.api import Rule
 
 #: Built-in rule families, one module each, in the order their rules are listed.
 FAMILIES = ("integrity", "separators", "attention", "token_range", "padding", "labels", "text", "lengths",
-            "duplicates")
+            "duplicates", "eval_overlap", "tokenizer_mismatch")
 
 ENTRY_POINT_GROUP = "corpuscle.rules"
 
