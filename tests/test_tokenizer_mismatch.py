@@ -1,0 +1,90 @@
+"""tokenizer-mismatch: a shard checked against the tokenizer file given with --tokenizer.
+
+Outside truth: the ``tokenizers`` library itself (two byte-level BPE tokenizers trained here on different invented
+text, same vocabulary size and special ids); the shard is made with one of them by the library's own encoder.
+"""
+from __future__ import annotations
+
+import pytest
+from corpuscle import Settings, scan
+from corpuscle.report import sarif
+
+from tests.shards import findings, pack, validate_sarif, write
+
+pytest.importorskip("tokenizers")
+from tests.tiny_tokenizers import BOS, EOS, PAD, invented_words, sentences, train_bpe  # noqa: E402
+
+RULE = "tokenizer-mismatch"
+SIZE = 600
+
+
+@pytest.fixture(scope="module")
+def made(tmp_path_factory):
+    """A corpus tokenized with tokenizer A, and the files of A and of B (same size and special ids, trained on
+    other text)."""
+    folder = tmp_path_factory.mktemp("tok")
+    words_a, words_b = invented_words(1500, seed=21), invented_words(1500, seed=22)
+    text_a = sentences(words_a, 3000, seed=1)
+    text_b = sentences(words_b, 3000, seed=2)
+    a, b = train_bpe(text_a, SIZE), train_bpe(text_b, SIZE)
+    assert a.get_vocab_size() == b.get_vocab_size() == SIZE
+    assert a.get_vocab() != b.get_vocab()
+    a.save(str(folder / "a.json"))
+    b.save(str(folder / "b.json"))
+    docs = [" ".join(sentences(words_a, 8, seed=100 + d)) for d in range(80)]
+    ids = [e.ids for e in a.encode_batch(docs, add_special_tokens=False)]
+    shard = write(folder / "shard.parquet", pack(ids, 128, eos=EOS, pad=PAD))
+    return folder, shard, ids
+
+
+def run(shard, tokenizer, **facts):
+    return scan([shard], Settings(only=(RULE,), tokenizer=tokenizer, **facts), jobs=1)
+
+
+def test_the_right_tokenizer_is_clean_and_the_wrong_one_is_reported(made):
+    folder, shard, _ = made
+    right = run(shard, str(folder / "a.json"), eos_id=EOS, pad_id=PAD, bos_id=BOS, vocab_size=SIZE)
+    assert findings(right, RULE) == []
+    wrong = run(shard, str(folder / "b.json"), eos_id=EOS, pad_id=PAD, bos_id=BOS, vocab_size=SIZE)
+    [found] = findings(wrong, RULE)
+    assert (found.kind, found.level.name) == ("round-trip", "error")
+    evidence = found.evidence
+    assert evidence["mismatchRate"] > evidence["baselineRate"] + 0.1 and evidence["baselineRate"] == 0.0
+    assert evidence["segments"] > 0 and evidence["comparedTokens"] > 0
+    assert 1 <= len(evidence["examples"]) <= 3
+    assert all(len(e["text"]) <= 80 for e in evidence["examples"])
+    assert "heuristic" in found.message
+    validate_sarif(sarif.to_sarif(wrong))
+
+
+def test_vocab_size_and_special_ids_against_the_tokenizer(made):
+    folder, shard, _ = made
+    tok = str(folder / "a.json")
+    report = run(shard, tok, eos_id=EOS, vocab_size=SIZE - 88)
+    [small] = findings(report, RULE, "vocab-size-smaller")
+    assert small.level.name == "error" and small.evidence["tokenizerSize"] == SIZE
+    report = run(shard, tok, eos_id=EOS, vocab_size=640)
+    [large] = findings(report, RULE, "vocab-size-larger")
+    assert large.level.name == "note"
+    # An eos id that is an ordinary token of the tokenizer (given: an error).
+    report = run(shard, tok, eos_id=7, vocab_size=SIZE)
+    [special] = findings(report, RULE, "special-eos")
+    assert special.level.name == "error" and special.evidence["specialTokens"] == {0: "<pad>", 1: "<s>", 2: "</s>"}
+
+
+def test_ids_the_tokenizer_never_produces(tmp_path, made):
+    folder, _, ids = made
+    rows = pack(ids[:5], 64, eos=EOS, pad=PAD)
+    rows["input_ids"][1][10] = SIZE + 5  # beyond the tokenizer
+    rows["input_ids"][3][0] = SIZE + 40
+    shard = write(tmp_path / "s.parquet", rows)
+    report = run(shard, str(folder / "a.json"), eos_id=EOS, pad_id=PAD)
+    [unknown] = findings(report, RULE, "unknown-id")
+    assert unknown.count == 2
+    assert list(zip(unknown.rows.tolist(), unknown.offsets.tolist())) == [(1, 10), (3, 0)]
+
+
+def test_without_a_tokenizer_the_rule_is_skipped(made):
+    _, shard, _ = made
+    report = scan([shard], Settings(only=(RULE,)), jobs=1)
+    assert [n.message for n in report.notes if n.rule_id == RULE] == ["skipped: no tokenizer given (--tokenizer FILE)"]
