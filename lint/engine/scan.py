@@ -17,7 +17,7 @@ import time
 from dataclasses import dataclass, field
 from typing import Iterable
 
-from corpuscle.engine import split
+from corpuscle.engine import excerpts, split
 from corpuscle.engine.executors import LocalExecutor, shuffle_here
 from corpuscle.engine.infer import infer_from_batch
 from corpuscle.engine.progress import Progress
@@ -478,6 +478,7 @@ def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], se
             if estimate is not None:
                 f.evidence["sampleEstimate"] = estimate
         notes.append(Note(Level.note, _sample_note(sampled)))
+    excerpts.attach(findings, results, rules, settings)  # decoded text at token-level findings (--tokenizer)
     findings.sort(key=Finding.sort_key)
     return Report(findings, [r.shard for r in results], rules, metrics, notes, settings, outputs)
 
