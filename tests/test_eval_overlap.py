@@ -291,3 +291,45 @@ def test_cli_eval_is_repeatable_and_a_missing_file_is_a_usage_error(tmp_path, pl
     result = CliRunner().invoke(main, ["scan", "a.jsonl", "--only", RULE, "--json", "r.json", "--jobs", "1"])
     report = json.loads((tmp_path / "r.json").read_text())
     assert {f["uri"] for f in report["findings"]} == {"one.jsonl"}
+
+
+def test_split_shards_and_a_dask_cluster_report_what_one_local_scan_reports(tmp_path, planted, monkeypatch):
+    from corpuscle.engine import split
+    from corpuscle.engine.registry import registry
+    from corpuscle.engine.scan import run, select_rules
+    from corpuscle.io import sources
+    from corpuscle.io.sources import discover
+
+    docs, items, expected, _ = planted
+    write(tmp_path / "train" / "a.jsonl", {"text": docs[:40]})
+    write(tmp_path / "train" / "b.parquet", {"text": docs[40:]}, row_group_size=4)
+    ev = write_eval(tmp_path / "qa.jsonl", items)
+    settings = Settings(eval=(ev,), only=(RULE,))
+    paths = discover([str(tmp_path / "train")])
+    whole = run(paths, settings, select_rules(settings, registry()), jobs=1)
+
+    class SerialPair:  # says it has two processes, runs the parts here one after the other
+        jobs = 2
+
+        def map(self, fn, items):
+            return map(fn, list(items))
+
+    monkeypatch.setattr(split, "SPLIT_BYTES", 0)
+    monkeypatch.setattr(sources, "DEFAULT_BATCH_BYTES", 2000)
+    planned = []
+    plan = split.plan
+    monkeypatch.setattr(split, "plan", lambda *a, **k: planned.append(plan(*a, **k)) or planned[-1])
+    parted = run(paths, settings, select_rules(settings, registry()), executor=SerialPair())
+    assert any(p and len(p) > 1 for p in planned)  # the shards were scanned in parts
+    assert overlap(parted).evidence == overlap(whole).evidence
+    assert droplist.entries(parted) == droplist.entries(whole)
+    assert set(overlap(whole).rows.tolist()) == expected
+
+    pytest.importorskip("distributed", reason="the cluster extra is not installed: pip install '.[cluster]'")
+    from corpuscle.engine.executors import DaskExecutor
+
+    monkeypatch.undo()
+    with DaskExecutor("local", jobs=2) as executor:
+        on_cluster = run(paths, settings, select_rules(settings, registry()), executor=executor)
+    assert overlap(on_cluster).evidence == overlap(whole).evidence
+    assert droplist.entries(on_cluster) == droplist.entries(whole)
