@@ -43,6 +43,7 @@ from dataclasses import dataclass, field
 from functools import lru_cache
 
 import numpy as np
+import pyarrow as pa
 from corpuscle.findings import Finding, Level
 from corpuscle.io.batch import Shard, is_integer_list, is_text
 from corpuscle.io.sources import open_shard, shard_format
@@ -109,7 +110,7 @@ def load_eval_sets(paths, n: int, text_field: str, tokens_field: str, tokenizer:
 
 @lru_cache(maxsize=2)
 def _load(keys, n, text_field, tokens_field, tok_key) -> EvalSets:
-    texts, files, first = [], [], 0
+    texts, files, first = [], [], 0  # texts: one Arrow array per file
     tokenizer = tok_key[0] if tok_key else None
     for key in keys:
         file = EvalFile(key[0], np.zeros(0, np.int64), first)
@@ -117,13 +118,16 @@ def _load(keys, n, text_field, tokens_field, tok_key) -> EvalSets:
             lines, items = _read_items(file, text_field, tokens_field, tokenizer)
         except EvalSetError as exc:
             file.error = str(exc)
-            lines, items = [], []
+            lines, items = [], pa.array([], type=pa.large_string())
         file.lines = np.asarray(lines, dtype=np.int64)
         file.items_read = len(items)
-        texts += items
+        texts.append(items)
         first += len(items)
         files.append(file)
-    words = ngrams.split_words(texts)
+    joined = pa.concat_arrays(texts) if texts else pa.array([], type=pa.large_string())
+    del texts
+    words = ngrams.split_words_chunked(joined)
+    del joined
     grams = ngrams.NgramSet(words, n)
     counts = np.diff(words.texts)
     item_file = np.repeat(np.arange(len(files)), [f.items_read for f in files])
@@ -158,8 +162,8 @@ def _read_items(file: EvalFile, text_field: str, tokens_field: str, tokenizer: s
                 fields_seen = True
                 column = batch.column(text_field)
                 valid = np.asarray(column.is_valid(), dtype=bool)
-                texts += [t for t in column.to_pylist() if t is not None]
-                lines += batch.rows[valid].tolist()
+                texts.append(column.filter(pa.array(valid)).cast(pa.large_string()))
+                lines.append(batch.rows[valid])
                 for row in batch.rows[~valid].tolist():
                     file.problems.append((row, f"no {text_field!r} text"))
             elif batch.has(tokens_field) and is_integer_list(batch.type_of(tokens_field)):
@@ -171,15 +175,16 @@ def _read_items(file: EvalFile, text_field: str, tokens_field: str, tokenizer: s
 
                 flat = batch.flat(tokens_field)
                 decoded = decode_spans(load_tokenizer(tokenizer), flat.values, flat.offsets[:-1], flat.offsets[1:])
-                texts += decoded
-                lines += batch.rows.tolist()
+                texts.append(pa.array(decoded, type=pa.large_string()))
+                lines.append(batch.rows)
             else:
                 for row in batch.rows.tolist():
                     file.problems.append((row, f"no {text_field!r} text and no {tokens_field!r} token ids"))
     if not fields_seen:
         raise EvalSetError(f"has no item with a {text_field!r} text field or {tokens_field!r} token ids: set "
                            "text_field (or tokens_field) under [rule.eval-overlap] to the field that holds the items")
-    return lines, texts
+    lines = np.concatenate(lines) if lines else np.zeros(0, np.int64)
+    return lines, pa.concat_arrays(texts) if texts else pa.array([], type=pa.large_string())
 
 
 class EvalOverlapState(ShardState):

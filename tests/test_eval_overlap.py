@@ -333,3 +333,13 @@ def test_split_shards_and_a_dask_cluster_report_what_one_local_scan_reports(tmp_
         on_cluster = run(paths, settings, select_rules(settings, registry()), executor=executor)
     assert overlap(on_cluster).evidence == overlap(whole).evidence
     assert droplist.entries(on_cluster) == droplist.entries(whole)
+
+
+def test_ascii_and_unicode_texts_split_alike_in_any_mix():
+    texts = ["Plain ASCII, words: 12ab!", None, "Ünïcode Grüße, ÆTHER", "", "--", "Mixed ASCII again; x_y"] * 3
+    words = ngrams.split_words(texts)
+    got = [[bytes(words.data[a:b]).decode() for a, b in zip(words.offsets[lo:hi].tolist(),
+                                                             words.offsets[lo + 1:hi + 1].tolist())]
+           for lo, hi in zip(words.texts[:-1].tolist(), words.texts[1:].tolist())]
+    assert got == [reference_words(t or "") for t in texts]
+    assert words.ids.tolist() == [ngrams.word_id(w) for t in texts for w in reference_words(t or "")]
