@@ -4,8 +4,10 @@ What counts as overlap
     The method of Brown et al. 2020, *Language Models are Few-Shot Learners*, Appendix C: an evaluation item is
     flagged when it shares an n-gram of words with a training document, with ``n = 13`` by default (``[rule.
     eval-overlap] n``), after lowercasing and splitting on non-alphanumeric characters (see
-    :mod:`corpuscle.kernels.ngrams` for the exact normalization). Items shorter than ``n`` words are not checked and
-    are counted as such. This is a published heuristic: a shared 13-gram is neither proof of contamination (a
+    :mod:`corpuscle.kernels.ngrams` for the exact normalization). As in that method, an item shorter than ``n``
+    words is flagged when all of its words appear in a training document in a row, down to ``min_words`` words
+    (default 8, the lower bound the paper uses against spurious matches -- from memory); shorter items are not
+    checked and are counted as such. This is a published heuristic: a shared 13-gram is neither proof of contamination (a
     common phrase, a quotation both copied) nor its absence proof of a clean benchmark (a paraphrase, a translation,
     a re-tokenized copy), and the findings say so.
 
@@ -85,7 +87,13 @@ class EvalSets:
     grams: ngrams.NgramSet
     item_file: np.ndarray  # index into files of each global item
     item_line: np.ndarray  # record index of each global item in its file
-    checked: np.ndarray  # bool per global item: long enough to hold an n-gram
+    checked: np.ndarray  # bool per global item: long enough to be checked (min_words)
+    #: Items shorter than n words (but of min_words or more) are matched whole: their words as one k-gram, by k.
+    whole: dict = field(default_factory=dict)
+
+    def tables(self):
+        """``(k, NgramSet)`` for every span length looked up: n first, then the lengths of the short items."""
+        return [(self.grams.n, self.grams)] + sorted(self.whole.items())
 
     @property
     def items(self) -> int:
@@ -101,15 +109,17 @@ def _file_key(path: str) -> tuple:
         return path, real, -1, -1
 
 
-def load_eval_sets(paths, n: int, text_field: str, tokens_field: str, tokenizer: str | None) -> EvalSets:
+def load_eval_sets(paths, n: int, text_field: str, tokens_field: str, tokenizer: str | None,
+                   min_words: int | None = None) -> EvalSets:
     """The evaluation sets named by ``paths``, read once per process (cached by path, size and modification time of
     each file and of the tokenizer, and by the options)."""
     tok_key = _file_key(tokenizer) if tokenizer else None
-    return _load(tuple(_file_key(p) for p in paths), n, text_field, tokens_field, tok_key)
+    min_words = n if min_words is None else min(n, min_words)
+    return _load(tuple(_file_key(p) for p in paths), n, text_field, tokens_field, tok_key, min_words)
 
 
 @lru_cache(maxsize=2)
-def _load(keys, n, text_field, tokens_field, tok_key) -> EvalSets:
+def _load(keys, n, text_field, tokens_field, tok_key, min_words) -> EvalSets:
     texts, files, first = [], [], 0  # texts: one Arrow array per file
     tokenizer = tok_key[0] if tok_key else None
     for key in keys:
@@ -128,14 +138,17 @@ def _load(keys, n, text_field, tokens_field, tok_key) -> EvalSets:
     del texts
     words = ngrams.split_words_chunked(joined)
     del joined
-    grams = ngrams.NgramSet(words, n)
     counts = np.diff(words.texts)
+    whole = {}
+    for k in np.unique(counts[(counts >= min_words) & (counts < n)]).tolist():  # short items, matched whole
+        whole[k] = ngrams.NgramSet(words, k, starts=words.texts[:-1][counts == k])
+    grams = ngrams.NgramSet(words, n)
     item_file = np.repeat(np.arange(len(files)), [f.items_read for f in files])
     item_line = np.concatenate([f.lines for f in files]) if files else np.zeros(0, np.int64)
-    checked = counts >= n
+    checked = counts >= min_words
     for f_index, file in enumerate(files):
         file.short = int((~checked[item_file == f_index]).sum())
-    return EvalSets(files, grams, item_file, item_line, checked)
+    return EvalSets(files, grams, item_file, item_line, checked, whole)
 
 
 def _read_items(file: EvalFile, text_field: str, tokens_field: str, tokenizer: str | None):
@@ -205,8 +218,8 @@ class EvalOverlap(Rule):
     file): JSON Lines, Parquet or Arrow with a text field per item, or token ids decoded with --tokenizer. Text
     shards are compared directly; tokenized shards are decoded with --tokenizer (segments between special tokens)
     and compared as words, so an overlap cut by a window boundary is found when one side still holds n words.
-    Every hash match is verified word by word. N-gram overlap is a published heuristic: it neither proves nor
-    excludes contamination."""
+    Items shorter than n words are matched whole, down to min_words (8) words. Every hash match is verified word by
+    word. N-gram overlap is a published heuristic: it neither proves nor excludes contamination."""
 
     id = "eval-overlap"
     level = Level.error
@@ -214,7 +227,8 @@ class EvalOverlap(Rule):
     help = ("Drop the training documents that contain evaluation text (`--drop-list FILE` writes one JSON line "
             "{\"uri\", \"row\"} per contaminated training row) and rebuild the shards, or report the benchmark on "
             "its items that are not listed. Check a few listed overlaps by eye first: a shared n-gram can be a "
-            "common phrase or a quotation. Options: n (words per n-gram), text_field / tokens_field (where the "
+            "common phrase or a quotation. Options: n (words per n-gram), min_words (shorter items are not "
+            "checked; items of min_words to n - 1 words are matched whole), text_field / tokens_field (where the "
             "items are), max_locations (training rows listed per item).")
     kinds = {
         "contaminated": "evaluation items of one file that share an n-gram with the training data",
@@ -223,7 +237,7 @@ class EvalOverlap(Rule):
     }
     needs = {"text_column": "text", "tokens_column": "int-list"}
     needs_any = True
-    options = {"n": 13, "text_field": "text", "tokens_field": "input_ids", "max_locations": 20}
+    options = {"n": 13, "min_words": 8, "text_field": "text", "tokens_field": "input_ids", "max_locations": 20}
     outputs = (DROP_LIST,)
     State = EvalOverlapState
     splittable = True
@@ -237,6 +251,10 @@ class EvalOverlap(Rule):
         for key in ("text_field", "tokens_field"):
             if not isinstance(self.opts[key], str) or not self.opts[key]:
                 raise ValueError(f"rule {self.id}: {key} must be a field name, got {self.opts[key]!r}")
+        low = self.opts["min_words"]
+        if isinstance(low, bool) or not isinstance(low, int) or not 1 <= low:
+            raise ValueError(f"rule {self.id}: min_words must be a whole number >= 1, got {low!r}; hint: 8, the "
+                             "published lower bound")
         cap = self.opts["max_locations"]
         if isinstance(cap, bool) or not isinstance(cap, int) or cap < 0:
             raise ValueError(f"rule {self.id}: max_locations must be a whole number >= 0, got {cap!r}")
@@ -257,7 +275,7 @@ class EvalOverlap(Rule):
 
     def _sets(self, settings) -> EvalSets:
         return load_eval_sets(tuple(settings.eval), self.opts["n"], self.opts["text_field"],
-                              self.opts["tokens_field"], settings.tokenizer)
+                              self.opts["tokens_field"], settings.tokenizer, self.opts["min_words"])
 
     def begin(self, shard, settings):
         state = super().begin(shard, settings)
@@ -271,7 +289,7 @@ class EvalOverlap(Rule):
     def feed(self, state, batch):
         settings = state.settings
         sets = self._sets(settings)
-        if len(sets.grams) == 0:
+        if sets.items == 0:
             return
         n = sets.grams.n
         if batch.has(settings.text_column) and is_text(batch.type_of(settings.text_column)):
@@ -291,15 +309,23 @@ class EvalOverlap(Rule):
             lo, hi, text_row = segments(flat.values, flat.offsets, np.array(sorted(stop), dtype=np.int64))
             words = ngrams.split_words(decode_spans(tokenizer, flat.values, lo, hi))
             spans = (tokenizer, flat, lo, hi, text_row)
-        starts = ngrams.ngram_starts(words, n)
-        which, eval_start = sets.grams.lookup(ngrams.ngram_hashes(words, starts, n))
-        state.count(ngrams=len(starts), candidates=len(which))
-        if len(which) == 0:
+        found_train, found_eval = [], []
+        for k, table in sets.tables():
+            starts = ngrams.ngram_starts(words, k)
+            which, eval_start = table.lookup(ngrams.ngram_hashes(words, starts, k))
+            if k == n:
+                state.count(ngrams=len(starts))
+            state.count(candidates=len(which))
+            if len(which) == 0:
+                continue
+            train_start = starts[which].astype(np.int64)
+            good = ngrams.verify(words, train_start, table.words, eval_start, k)
+            state.count(verified=int(good.sum()), collisions=int((~good).sum()))
+            found_train.append(train_start[good])
+            found_eval.append(eval_start[good])
+        if not found_train:
             return
-        train_start = starts[which]
-        good = ngrams.verify(words, train_start, sets.grams.words, eval_start, n)
-        state.count(verified=int(good.sum()), collisions=int((~good).sum()))
-        train_start, eval_start = train_start[good], eval_start[good]
+        train_start, eval_start = np.concatenate(found_train), np.concatenate(found_eval)
         if len(train_start) == 0:
             return
         text = np.searchsorted(words.texts, train_start, side="right") - 1
@@ -385,11 +411,13 @@ class EvalOverlap(Rule):
         totals = {key: int(sum(s.stats.get(key, 0) for s in states))
                   for key in ("ngrams", "candidates", "verified", "collisions")}
         metrics = {"evalOverlap": {
-            "n": sets.grams.n, "files": len(sets.files), "items": sets.items,
+            "n": sets.grams.n, "minWords": min(sets.grams.n, self.opts["min_words"]), "files": len(sets.files), "items": sets.items,
             "itemsChecked": int(sets.checked.sum()), "itemsTooShort": int((~sets.checked).sum()),
             "contaminatedItems": int(hits.sum()),
             "contaminatedShare": round(float(hits.sum()) / max(1, int(sets.checked.sum())), 6),
-            "evalNgrams": len(sets.grams), "evalSetBytes": sets.grams.nbytes,
+            "evalNgrams": sum(len(t) for _, t in sets.tables()),
+            "evalSetBytes": sets.grams.nbytes + sum(t.hashes.nbytes + t.starts.nbytes + t.filter.nbytes
+                                                    for _, t in sets.whole.items()),
             "trainingNgrams": totals["ngrams"], "hashMatches": totals["candidates"],
             "verifiedMatches": totals["verified"], "hashCollisions": totals["collisions"],
             "contaminatedTrainingRows": len(drop), "method": "heuristic (n-gram overlap)",
@@ -436,9 +464,11 @@ class EvalOverlap(Rule):
             loc = example["locations"][0]
             at = f" at offset {loc['offset']:,}" if "offset" in loc else ""
             place = f" (e.g. record {example['line']:,} overlaps {loc['uri']} row {loc['row']:,}{at})"
-        short = f"; {file.short:,} item(s) shorter than {n} words were not checked" if file.short else ""
+        low = min(n, self.opts["min_words"])
+        short = f"; {file.short:,} item(s) shorter than {low} words were not checked" if file.short else ""
+        whole = f" (items of {low} to {n - 1} words: all of their words)" if low < n else ""
         message = (f"{len(items):,} of {checked:,} checked evaluation items of {file.uri} ({pct(len(items), checked)}) "
-                   f"share a {n}-word n-gram with the training data{place}{short}. Method: {METHOD}. Drop the "
+                   f"share a {n}-word n-gram with the training data{whole}{place}{short}. Method: {METHOD}. Drop the "
                    "contaminated training rows (--drop-list FILE lists them) or report the benchmark without these "
                    "items.")
         out.append(Finding(

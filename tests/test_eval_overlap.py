@@ -218,20 +218,32 @@ def test_tokenized_and_packed_corpus_gives_the_same_items(tmp_path, planted):
             assert tuple(words[:N]) in item_grams
 
 
-def test_short_items_are_counted_not_checked_and_bad_records_are_findings(tmp_path, planted):
+def test_short_items_are_matched_whole_and_bad_records_are_findings(tmp_path, planted):
     docs, items, _, _ = planted
     write(tmp_path / "a.jsonl", {"text": docs})
-    short = " ".join(docs[0].split(" ")[:10])  # 10 words copied verbatim: shorter than n
+    pieces = docs[0].split(" ")
+    short = " ".join(pieces[3:13])  # 10 words copied verbatim: shorter than n, matched whole (Brown et al. 2020)
+    shuffled = " ".join(pieces[13:23][::-1])  # 10 words of the document, not in a row
+    tiny = " ".join(pieces[:5])  # 5 words: below min_words, not checked
+    assert 8 <= len(reference_words(short)) < N and len(reference_words(tiny)) < 8
     ev = tmp_path / "qa.jsonl"
-    ev.write_text(json.dumps({"text": short}) + "\n\n{broken\n" + json.dumps({"question": "x"}) + "\n" +
-                  json.dumps({"text": items[0]}) + "\n")
+    ev.write_text("\n".join([json.dumps({"text": short}), "", "{broken", json.dumps({"question": "x"}),
+                             json.dumps({"text": items[0]}), json.dumps({"text": shuffled}),
+                             json.dumps({"text": tiny})]) + "\n")
     report = scan([str(tmp_path / "a.jsonl")], Settings(eval=(str(ev),), only=(RULE,)), jobs=1)
     found = overlap(report)
-    assert found.rows.tolist() == [4] and found.start_line == 5  # 0-based line 4 (blank line 1 counted)
-    assert "1 item(s) shorter than 13 words were not checked" in found.message
+    assert found.rows.tolist() == [0, 4] and found.start_line == 1  # 0-based lines (the blank line 1 counted)
+    assert found.evidence["itemsChecked"] == 3
+    assert "1 item(s) shorter than 8 words were not checked" in found.message
+    [loc] = found.evidence["overlaps"][0]["locations"]
+    assert (loc["row"], loc["offset"]) == (0, word_starts(docs[0])[3])
     [bad] = findings(report, RULE, "unreadable-items")
     assert bad.level.name == "warning" and bad.rows.tolist() == [2, 3]
     assert report.metrics["evalOverlap"]["itemsTooShort"] == 1
+    # min_words = 13: only n-grams, as many items as are long enough
+    report = scan([str(tmp_path / "a.jsonl")], Settings(eval=(str(ev),), only=(RULE,), rule={RULE: {"min_words": 13}}),
+                  jobs=1)
+    assert overlap(report).rows.tolist() == [4]
 
 
 def test_option_n_changes_the_span(tmp_path, planted):

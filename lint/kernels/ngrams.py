@@ -293,10 +293,11 @@ class NgramSet:
     are the texts' words, kept to verify candidates. Built once per process and shared by every shard it scans.
     """
 
-    def __init__(self, words: Words, n: int):
+    def __init__(self, words: Words, n: int, starts: np.ndarray | None = None):
+        """The n-grams of ``words``: all of them, or only those starting at ``starts`` (e.g. whole short texts)."""
         self.n = n
         self.words = words
-        starts = ngram_starts(words, n)
+        starts = ngram_starts(words, n) if starts is None else starts
         hashes = ngram_hashes(words, starts, n)
         order = np.argsort(hashes, kind="stable")
         hashes = hashes[order]  # the unsorted arrays are let go one at a time
