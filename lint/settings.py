@@ -92,6 +92,8 @@ class Settings:
             raise SettingsError(f"fail_at must be one of {', '.join(FAIL_AT)}, got {self.fail_at!r}")
         if not isinstance(self.instance_cap, int) or isinstance(self.instance_cap, bool) or self.instance_cap < 0:
             raise SettingsError(f"instance_cap must be a whole number >= 0, got {self.instance_cap!r}")
+        if isinstance(self.eval, (list, str)):  # eval = "qa.jsonl" or a list, from Python or a settings file
+            self.eval = (self.eval,) if isinstance(self.eval, str) else tuple(self.eval)
         _check_eval(self.eval)
         if not isinstance(self.rule, dict) or not all(isinstance(v, dict) for v in self.rule.values()):
             raise SettingsError("rule options go in tables, e.g. [rule.near-duplicate] threshold = 0.8")
@@ -108,10 +110,6 @@ class Settings:
         values = dict(values)
         tables = dict(self.path_tables)
         tables.update(_check_path_tables(values.pop("paths", {}) or {}))
-        if isinstance(values.get("eval"), str):
-            values["eval"] = (values["eval"],)
-        elif isinstance(values.get("eval"), list):
-            values["eval"] = tuple(values["eval"])
         for key in ("only", "skip"):
             if key in values and isinstance(values[key], str):
                 values[key] = tuple(v.strip() for v in values[key].split(",") if v.strip())
