@@ -50,7 +50,7 @@ from corpuscle.findings import Finding, Level
 from corpuscle.io.batch import Shard, is_integer_list, is_text
 from corpuscle.io.sources import open_shard, shard_format
 from corpuscle.kernels import ngrams
-from corpuscle.kernels.decode import decode_spans, first_token_of_word, segments, special_ids
+from corpuscle.kernels.decode import decode_spans, first_token_of_word, id_limit, segments, special_ids
 from corpuscle.kernels.text import document_text
 from corpuscle.rules.api import CorpusResult, Rule, ShardState, pct
 
@@ -187,7 +187,12 @@ def _read_items(file: EvalFile, text_field: str, tokens_field: str, tokenizer: s
                 from corpuscle.kernels.tokenize import load_tokenizer
 
                 flat = batch.flat(tokens_field)
-                decoded = decode_spans(load_tokenizer(tokenizer), flat.values, flat.offsets[:-1], flat.offsets[1:])
+                loaded = load_tokenizer(tokenizer)
+                lo, hi, row = segments(flat.values, flat.offsets, special_ids(loaded), id_limit(loaded))
+                pieces = decode_spans(loaded, flat.values, lo, hi)  # an item's pieces between special tokens
+                decoded = [""] * len(batch)
+                for r, piece in zip(row.tolist(), pieces):  # one entry per piece, joined by a space
+                    decoded[r] = f"{decoded[r]} {piece}" if decoded[r] else piece
                 texts.append(pa.array(decoded, type=pa.large_string()))
                 lines.append(batch.rows)
             else:
@@ -306,7 +311,8 @@ class EvalOverlap(Rule):
             flat = batch.flat(settings.tokens_column)
             stop = set(special_ids(tokenizer).tolist())
             stop |= {v for v in (settings.eos_id, settings.bos_id, settings.pad_id) if v is not None}
-            lo, hi, text_row = segments(flat.values, flat.offsets, np.array(sorted(stop), dtype=np.int64))
+            lo, hi, text_row = segments(flat.values, flat.offsets, np.array(sorted(stop), dtype=np.int64),
+                                        id_limit(tokenizer))
             words = ngrams.split_words(decode_spans(tokenizer, flat.values, lo, hi))
             spans = (tokenizer, flat, lo, hi, text_row)
         found_train, found_eval = [], []
@@ -386,7 +392,7 @@ class EvalOverlap(Rule):
 
     # -- the report -------------------------------------------------------------------------------------------
     def corpus(self, states):
-        states = [s for s in states if s.items]
+        states = [s for s in states if getattr(s.settings, "eval", ())]
         if not states:
             return CorpusResult([], {})
         sets = self._sets(states[0].settings)

@@ -145,7 +145,7 @@ class TokenizerMismatch(Rule):
         stop = set(facts.specials.tolist()) | {getattr(settings, k) for k in _SPECIAL_KEYS if getattr(settings, k)
                                                is not None}
         stop |= set(np.flatnonzero(~facts.known).tolist())
-        lo, hi, seg_row = segments(values, flat.offsets, np.array(sorted(stop), dtype=np.int64))
+        lo, hi, seg_row = segments(values, flat.offsets, np.array(sorted(stop), dtype=np.int64), len(facts.known))
         edge = self.opts["edge"]
         take = np.isin(seg_row, sampled) & (hi - lo > 2 * edge)
         lo, hi, seg_row = lo[take], hi[take], seg_row[take]

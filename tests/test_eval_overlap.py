@@ -355,3 +355,33 @@ def test_ascii_and_unicode_texts_split_alike_in_any_mix():
            for lo, hi in zip(words.texts[:-1].tolist(), words.texts[1:].tolist())]
     assert got == [reference_words(t or "") for t in texts]
     assert words.ids.tolist() == [ngrams.word_id(w) for t in texts for w in reference_words(t or "")]
+
+
+def test_tokenized_evaluation_items_and_ids_a_tokenizer_cannot_decode(tmp_path, planted):
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    docs, items, expected, _ = planted
+    tokenizer = train_bpe(docs, 600)
+    tok = str(tmp_path / "tok.json")
+    tokenizer.save(tok)
+    ids = [enc.ids for enc in tokenizer.encode_batch(docs, add_special_tokens=False)]
+    cols = pack(ids, 64, eos=EOS)
+    for row in (0, 5, 9):  # ids no tokenizer can decode: negative, beyond its vocabulary, beyond 32 bits
+        cols["input_ids"][row][30:33] = [-5, 700, 2 ** 40]
+    pq.write_table(pa.table({"input_ids": pa.array(cols["input_ids"], pa.list_(pa.int64()))}),
+                   str(tmp_path / "train.parquet"))
+    # The evaluation set as token ids, each item between <s> and </s> (ids 1 and 2 of the tiny tokenizers).
+    item_ids = [[1] + enc.ids + [EOS] for enc in tokenizer.encode_batch(items, add_special_tokens=False)]
+    pq.write_table(pa.table({"input_ids": item_ids}), str(tmp_path / "qa.parquet"))
+    report = scan([str(tmp_path / "train.parquet")],
+                  Settings(eval=(str(tmp_path / "qa.parquet"),), only=(RULE,), tokenizer=tok, eos_id=EOS), jobs=1)
+    assert not [n for n in report.notes if n.level.name == "error"]
+    found = overlap(report)
+    assert set(found.rows.tolist()) == expected
+    assert found.start_line is None  # Parquet: record indices, no lines
+    # Without --tokenizer a tokenized evaluation set cannot be read: a finding on that file, not a crash.
+    write(tmp_path / "text.jsonl", {"text": docs})
+    report = scan([str(tmp_path / "text.jsonl")], Settings(eval=(str(tmp_path / "qa.parquet"),), only=(RULE,)), jobs=1)
+    [unusable] = findings(report, RULE, "unusable-eval-file")
+    assert unusable.level.name == "error" and "give --tokenizer FILE" in unusable.message

@@ -15,6 +15,21 @@ from __future__ import annotations
 import numpy as np
 
 
+_LIMITS: dict = {}
+
+
+def id_limit(tokenizer) -> int:
+    """One more than the largest id the tokenizer has a token for (ids at or above it cannot be decoded); remembered
+    per tokenizer object (loaded tokenizers are cached per process)."""
+    key = id(tokenizer)
+    if key in _LIMITS and _LIMITS[key][0] is tokenizer:
+        return _LIMITS[key][1]
+    limit = max(max(tokenizer.get_vocab(with_added_tokens=True).values(), default=-1) + 1,
+                tokenizer.get_vocab_size(with_added_tokens=True))
+    _LIMITS[key] = (tokenizer, limit)
+    return limit
+
+
 def special_ids(tokenizer) -> np.ndarray:
     """Ids of the tokenizer's special tokens (added tokens marked special), ascending."""
     try:
@@ -24,15 +39,19 @@ def special_ids(tokenizer) -> np.ndarray:
     return np.array(sorted(i for i, tok in added.items() if getattr(tok, "special", False)), dtype=np.int64)
 
 
-def segments(values: np.ndarray, offsets: np.ndarray, stop_ids) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def segments(values: np.ndarray, offsets: np.ndarray, stop_ids, limit: int | None = None
+             ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """``(lo, hi, row)``: the flat positions ``[lo, hi)`` of every segment -- a maximal run of tokens whose id is
-    not in ``stop_ids`` within one row (row ``i`` being ``values[offsets[i]:offsets[i + 1]]``) -- and its row."""
+    not in ``stop_ids`` (nor negative, nor ``limit`` or more when given: ids a tokenizer cannot decode) within one
+    row (row ``i`` being ``values[offsets[i]:offsets[i + 1]]``) -- and its row."""
     n = len(values)
     if n == 0:
         empty = np.zeros(0, dtype=np.int64)
         return empty, empty, empty
     stop = np.asarray(list(stop_ids) if not isinstance(stop_ids, np.ndarray) else stop_ids, dtype=np.int64)
     keep = ~np.isin(values, stop) if len(stop) else np.ones(n, dtype=bool)
+    if limit is not None:
+        keep &= (values >= 0) & (values < limit)
     row_start = np.zeros(n, dtype=bool)
     row_end = np.zeros(n, dtype=bool)
     lengths = np.diff(offsets)
@@ -78,6 +97,7 @@ def excerpt(tokenizer, ids: list[int], at: int, before: int = 8, after: int = 8,
     """A short decoded context around token ``at`` of ``ids``: ``before`` tokens, the token in brackets, ``after``
     tokens (special tokens shown as themselves), at most ``limit`` characters on each side."""
     def text(part):
+        part = [i for i in part if 0 <= i < 1 << 32]  # at most a few dozen ids; others cannot be decoded
         return tokenizer.decode(part, skip_special_tokens=False) if part else ""
 
     head = text(ids[max(0, at - before):at])[-limit:]
