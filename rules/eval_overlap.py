@@ -472,7 +472,7 @@ class EvalOverlap(Rule):
             place = f" (e.g. record {example['line']:,} overlaps {loc['uri']} row {loc['row']:,}{at})"
         low = min(n, self.opts["min_words"])
         short = f"; {file.short:,} item(s) shorter than {low} words were not checked" if file.short else ""
-        whole = f" (items of {low} to {n - 1} words: all of their words)" if low < n else ""
+        whole = f" (or, for items of {low} to {n - 1} words, all of their words in a row)" if low < n else ""
         message = (f"{len(items):,} of {checked:,} checked evaluation items of {file.uri} ({pct(len(items), checked)}) "
                    f"share a {n}-word n-gram with the training data{whole}{place}{short}. Method: {METHOD}. Drop the "
                    "contaminated training rows (--drop-list FILE lists them) or report the benchmark without these "

@@ -1,7 +1,7 @@
 """Benchmark: eval-overlap with an evaluation set of 100k items against a text corpus.
 
     python tests/perf/bench_eval_overlap.py [--items 100000] [--item-words 60] [--docs 20000] [--doc-words 400]
-                                            [--keep DIR]
+                                            [--tokenized] [--keep DIR]
 
 Writes an evaluation set (JSON Lines, ``--items`` items of about ``--item-words`` invented words) and a training
 corpus (one Parquet file of ``--docs`` documents of about ``--doc-words`` words; 1% of the documents hold a
@@ -11,7 +11,8 @@ verbatim 40-word span of an item). Then measures in this one run, each in a chil
       with the peak resident memory of that process (VmHWM) and the set's own size;
   (b) a scan with ``--only empty-document`` (reads the text, a trivial rule): the cost of reading;
   (c) a scan with ``--only eval-overlap --eval FILE``: the whole rule, building the set included;
-  (d) the ratios c / b and (c - a) / b: what the comparison adds per byte of training text once the set is built.
+  (d) the ratios c / b and (c - a) / b: what the comparison adds per byte of training text once the set is built;
+  (e) with ``--tokenized``: the same corpus tokenized and packed, scanned with ``--tokenizer`` (rows decoded).
 """
 from __future__ import annotations
 
@@ -90,6 +91,9 @@ def main() -> None:
     parser.add_argument("--item-words", type=int, default=60)
     parser.add_argument("--docs", type=int, default=20_000)
     parser.add_argument("--doc-words", type=int, default=400)
+    parser.add_argument("--tokenized", action="store_true",
+                        help="also tokenize the corpus with a byte-level BPE tokenizer of 4,096 tokens trained here "
+                             "(needs the tokenizers library), pack it into 2,048-token windows and scan that")
     parser.add_argument("--keep", help="folder to write the files to (kept); default a temporary folder")
     parser.add_argument("--child-build", help=argparse.SUPPRESS)
     args = parser.parse_args()
@@ -131,6 +135,33 @@ def main() -> None:
     print(f"(c) scan with eval-overlap: {full:.2f} s")
     print(f"(d) c / b = {full / read:.2f}x; (c - a) / b = {(full - build['seconds']) / read:.2f}x "
           f"({words / max(1e-9, full - build['seconds']) / 1e6:.1f}M training words/s past the set's build)")
+    if args.tokenized:
+        tokenized(folder, docs, eval_path, words, build["seconds"], full)
+
+
+def tokenized(folder: str, docs: list[str], eval_path: str, words: int, build: float, text_scan: float) -> None:
+    """(e) the same corpus tokenized and packed, scanned with --tokenizer (its rows decoded to words)."""
+    from tokenizers import Tokenizer, decoders, models, pre_tokenizers, trainers
+
+    tok = Tokenizer(models.BPE())
+    tok.pre_tokenizer = pre_tokenizers.ByteLevel(add_prefix_space=False)
+    tok.decoder = decoders.ByteLevel()
+    tok.train_from_iterator(docs[:2000], trainers.BpeTrainer(vocab_size=4096, special_tokens=["<pad>", "<s>", "</s>"],
+                                                             show_progress=False))
+    tok_path = os.path.join(folder, "tokenizer.json")
+    tok.save(tok_path)
+    flat = np.concatenate([np.append(np.asarray(e.ids, dtype=np.int32), np.int32(2))
+                           for e in tok.encode_batch(docs, add_special_tokens=False)])
+    windows = len(flat) // 2048
+    offsets = pa.array(np.arange(0, windows * 2048 + 1, 2048, dtype=np.int32))
+    shard = os.path.join(folder, "train_tokens.parquet")
+    pq.write_table(pa.table({"input_ids": pa.ListArray.from_arrays(offsets, pa.array(flat[:windows * 2048]))}),
+                   shard, row_group_size=256)
+    seconds = timed_scan([shard, "--only", "eval-overlap", "--eval", eval_path, "--tokenizer", tok_path,
+                          "--eos-id", "2"], folder)
+    print(f"(e) the corpus tokenized ({len(flat):,} tokens in {windows:,} windows of 2,048), scanned with "
+          f"--tokenizer: {seconds:.2f} s, {words / max(1e-9, seconds - build) / 1e6:.1f}M words/s past the set's "
+          f"build; {(seconds - build) / max(1e-9, text_scan - build):.2f}x the text scan past the build")
 
 
 if __name__ == "__main__":
