@@ -209,8 +209,13 @@ class EvalOverlapState(ShardState):
     def __init__(self, shard, settings, cap, kinds=()):
         super().__init__(shard, settings, cap, kinds)
         self.items = 0
-        self.counts = np.zeros(0, np.int64)  # training rows overlapping each evaluation item (in full)
-        self.stored = np.zeros(0, np.int64)  # locations kept per item
+        # While the shard is fed (from the first overlap on): per evaluation item, the training rows that overlap it
+        # (in full) and the locations kept; at the end only the items with overlaps are kept (``hit_items`` and
+        # ``hit_counts``), so that a state stays small however large the evaluation set.
+        self.counts: np.ndarray | None = None
+        self.stored: np.ndarray | None = None
+        self.hit_items = np.zeros(0, np.int64)
+        self.hit_counts = np.zeros(0, np.int64)
         self.located: list[np.ndarray] = []  # (item, row, offset) rows, at most max_locations per item
         self.rows: list[np.ndarray] = []  # contaminated training rows (for the drop list)
 
@@ -286,8 +291,6 @@ class EvalOverlap(Rule):
         state = super().begin(shard, settings)
         if getattr(settings, "eval", ()):
             state.items = self._sets(settings).items
-            state.counts = np.zeros(state.items, np.int64)
-            state.stored = np.zeros(state.items, np.int64)
         return state
 
     # -- the scan ---------------------------------------------------------------------------------------------
@@ -343,6 +346,9 @@ class EvalOverlap(Rule):
         first = np.ones(len(row), dtype=bool)
         first[1:] = (row[1:] != row[:-1]) | (item[1:] != item[:-1])
         row, item, text, train_start = row[first], item[first], text[first], train_start[first]
+        if state.counts is None:
+            state.counts = np.zeros(state.items, np.int64)
+            state.stored = np.zeros(state.items, np.int64)
         np.add.at(state.counts, item, 1)
         state.rows.append(batch.rows[np.unique(row)])
         # Locations kept: the first rows of each item, up to max_locations per item in the shard.
@@ -377,16 +383,22 @@ class EvalOverlap(Rule):
         return out
 
     def end(self, state):
+        if state.counts is not None:
+            state.hit_items = np.flatnonzero(state.counts)
+            state.hit_counts = state.counts[state.hit_items]
+        state.counts = state.stored = None
         state.located = [np.concatenate(state.located)] if state.located else []
         state.rows = [np.unique(np.concatenate(state.rows))] if state.rows else []
         return state
 
     def merge(self, first, second):
         merged = super().merge(first, second)
-        merged.counts = first.counts + second.counts
+        items = np.concatenate([first.hit_items, second.hit_items])
+        merged.hit_items, where = np.unique(items, return_inverse=True)
+        merged.hit_counts = np.bincount(where, weights=np.concatenate([first.hit_counts, second.hit_counts]),
+                                        minlength=len(merged.hit_items)).astype(np.int64)
         located = [a for a in (first.located + second.located)]
         merged.located = [_capped(np.concatenate(located), self.opts["max_locations"])] if located else []
-        merged.stored = np.minimum(first.stored + second.stored, self.opts["max_locations"])
         merged.rows = [np.concatenate(first.rows + second.rows)] if (first.rows or second.rows) else []
         return merged
 
@@ -401,7 +413,7 @@ class EvalOverlap(Rule):
         located, uris = [], []
         drop = []
         for s_index, state in enumerate(states):
-            counts += state.counts
+            np.add.at(counts, state.hit_items, state.hit_counts)
             if state.located:
                 located.append(np.concatenate(
                     [state.located[0], np.full((len(state.located[0]), 1), s_index, np.int64)], axis=1))

@@ -272,6 +272,18 @@ def test_parallel_scan_and_pickled_rule_give_the_same_report(tmp_path, planted):
 
     rule = registry()[RULE]()
     assert len(pickle.dumps(rule)) < 2000  # the evaluation set stays out of the rule: loaded once per process
+    # A shard's state keeps only the items it overlaps, whatever the size of the evaluation set.
+    from corpuscle.engine.scan import scan_shard
+    from corpuscle.io.sources import discover
+
+    shard = discover([str(tmp_path / "train" / "s0.jsonl")])[0]
+    state = scan_shard(shard, settings, [rule]).states[RULE]
+    sources = {loc["row"] for e in overlap(one).evidence["overlaps"] for loc in e["locations"]
+               if loc["uri"].endswith("s0.jsonl")}
+    assert state.counts is None and len(state.hit_items) == sum(
+        1 for e in overlap(one).evidence["overlaps"] if any(loc["uri"].endswith("s0.jsonl") for loc in e["locations"]))
+    assert sorted(np.concatenate(state.rows).tolist()) == sorted(sources)
+    assert len(pickle.dumps(state)) < 20_000
 
 
 def test_without_eval_sets_the_rule_is_skipped_with_a_reason(tmp_path):
