@@ -117,3 +117,34 @@ def test_token_level_findings_get_a_decoded_excerpt_outside_the_fingerprint(tmp_
     assert after.fingerprint == before.fingerprint
     fingerprints = [r["partialFingerprints"] for r in validate_sarif(sarif.to_sarif(decoded))["runs"][0]["results"]]
     assert fingerprints == [r["partialFingerprints"] for r in sarif.to_sarif(plain)["runs"][0]["results"]]
+
+
+def test_a_shard_scanned_in_parts_samples_the_same_rows(tmp_path, made, monkeypatch):
+    from corpuscle.engine import split
+    from corpuscle.engine.registry import registry
+    from corpuscle.engine.scan import run as run_rules
+    from corpuscle.engine.scan import select_rules
+    from corpuscle.io import sources
+    from corpuscle.io.sources import discover
+
+    folder, _, ids = made
+    shard = write(tmp_path / "s.parquet", pack(ids, 128, eos=EOS, pad=PAD), row_group_size=16)
+    settings = Settings(only=(RULE,), tokenizer=str(folder / "b.json"), eos_id=EOS, pad_id=PAD)
+    whole = run_rules(discover([shard]), settings, select_rules(settings, registry()), jobs=1)
+
+    class SerialPair:
+        jobs = 2
+
+        def map(self, fn, items):
+            return map(fn, list(items))
+
+    monkeypatch.setattr(split, "SPLIT_BYTES", 0)
+    monkeypatch.setattr(sources, "DEFAULT_BATCH_TOKENS", 2000)
+    planned = []
+    plan = split.plan
+    monkeypatch.setattr(split, "plan", lambda *a, **k: planned.append(plan(*a, **k)) or planned[-1])
+    parted = run_rules(discover([shard]), settings, select_rules(settings, registry()), executor=SerialPair())
+    assert planned and planned[0] and len(planned[0]) > 1
+    [a], [b] = findings(whole, RULE), findings(parted, RULE)
+    assert (a.kind, a.count, a.evidence, a.rows.tolist(), a.offsets.tolist()) == \
+        (b.kind, b.count, b.evidence, b.rows.tolist(), b.offsets.tolist())
