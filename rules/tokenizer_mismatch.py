@@ -38,7 +38,7 @@ import numpy as np
 from corpuscle.findings import Finding, Level
 from corpuscle.kernels.decode import decode_spans, segments, special_ids
 from corpuscle.kernels.minhash import mix64
-from corpuscle.rules.api import Rule, ShardState, pct
+from corpuscle.rules.api import CorpusResult, Rule, ShardState, pct
 
 _SPECIAL_KEYS = ("eos_id", "bos_id", "pad_id")
 _EXAMPLES = 3
@@ -183,35 +183,6 @@ class TokenizerMismatch(Rule):
         facts = _Facts.of(tokenizer)
         out = []
         size = facts.size
-        if settings.vocab_size is not None and settings.vocab_size != size:
-            smaller = settings.vocab_size < size
-            kind = "vocab-size-smaller" if smaller else "vocab-size-larger"
-            hits = state.hit_at(kind, np.zeros(1, np.int64))
-            message = (f"vocab_size is {settings.vocab_size:,} but the tokenizer {settings.tokenizer} has "
-                       f"{size:,} tokens (with its added tokens). ")
-            message += ("It makes ids the model has no embedding for: set vocab_size to at least the tokenizer's "
-                        "size, or give the tokenizer the model was built for." if smaller else
-                        "Padding the embedding matrix to a round size is common practice; if that is not the "
-                        "intent, set vocab_size to the tokenizer's size.")
-            out.append(Finding.from_hits(self.id, Level.error if smaller else Level.note, message, state.uri, hits,
-                                         kind=kind, vocabSize=settings.vocab_size, tokenizerSize=size))
-        specials = {int(i): tokenizer.id_to_token(int(i)) for i in facts.specials.tolist()}
-        for key in _SPECIAL_KEYS:
-            value = getattr(settings, key)
-            if value is None or value in specials:
-                continue
-            token = tokenizer.id_to_token(int(value)) if value >= 0 else None
-            what = f"the ordinary token {token!r}" if token is not None else "no token at all"
-            guessed = settings.source(key) == "inferred"
-            listed = ", ".join(f"{t!r} = {i}" for i, t in specials.items()) or "none"
-            message = (f"{key} = {value} ({'inferred, a heuristic' if guessed else settings.source(key)}) is {what} "
-                       f"in the tokenizer {settings.tokenizer}, not one of its special tokens ({listed}). Set "
-                       f"{key} to the id of the tokenizer's special token, or give the tokenizer the shard was made "
-                       "with.")
-            hits = state.hit_at(f"special-{key.removesuffix('_id')}", np.zeros(1, np.int64))
-            out.append(Finding.from_hits(self.id, Level.warning if guessed else Level.error, message, state.uri,
-                                         hits, kind=f"special-{key.removesuffix('_id')}", setting=key,
-                                         value=int(value), token=token, specialTokens=specials))
         if "unknown-id" in state.hits:
             hits = state.hits["unknown-id"]
             message = (f"{hits.count:,} token(s) have an id with no token in the tokenizer {settings.tokenizer} "
@@ -241,6 +212,64 @@ class TokenizerMismatch(Rule):
                            f"{self.opts['tolerance']:g}). This is a heuristic. Mismatching spans: {shown}. Re-tokenize "
                            "the shard with this tokenizer, or give the tokenizer it was made with.")
                 out.append(self.finding(state, "round-trip", message, **evidence))
+        return out
+
+
+    def corpus(self, states):
+        """The settings against the tokenizer: one finding per disagreement, listing every shard it applies to
+        (the facts may differ per folder), instead of one per shard."""
+        groups: dict[tuple, dict] = {}
+        for state in states:
+            settings = state.settings
+            if settings.tokenizer is None or not getattr(state, "fed", False):
+                continue
+            for kind, level, message, evidence in self._fact_checks(settings):
+                group = groups.setdefault((kind, message), {"level": level, "evidence": evidence, "uris": []})
+                group["uris"].append(state.uri)
+        findings = []
+        cap = states[0].cap if states else 0
+        for (kind, message), group in groups.items():
+            uris = group["uris"]
+            where = f" ({len(uris):,} shards)" if len(uris) > 1 else ""
+            findings.append(Finding(self.id, group["level"], message + where, uris[0] if len(uris) == 1 else None,
+                                    kind=kind, count=len(uris), instance_uris=uris[:cap],
+                                    truncated=len(uris) > cap, evidence={**group["evidence"], "shards": len(uris)}))
+        return CorpusResult(findings, {})
+
+    @staticmethod
+    def _fact_checks(settings) -> list[tuple]:
+        """``(kind, level, message, evidence)`` of every disagreement between the shard's facts (vocab_size,
+        eos_id, bos_id, pad_id) and the tokenizer."""
+        tokenizer = _tokenizer(settings)
+        facts = _Facts.of(tokenizer)
+        size = facts.size
+        out = []
+        if settings.vocab_size is not None and settings.vocab_size != size:
+            smaller = settings.vocab_size < size
+            message = (f"vocab_size is {settings.vocab_size:,} but the tokenizer {settings.tokenizer} has "
+                       f"{size:,} tokens (with its added tokens). ")
+            message += ("It makes ids the model has no embedding for: set vocab_size to at least the tokenizer's "
+                        "size, or give the tokenizer the model was built for." if smaller else
+                        "Padding the embedding matrix to a round size is common practice; if that is not the "
+                        "intent, set vocab_size to the tokenizer's size.")
+            out.append(("vocab-size-smaller" if smaller else "vocab-size-larger",
+                        Level.error if smaller else Level.note, message,
+                        {"vocabSize": settings.vocab_size, "tokenizerSize": size}))
+        specials = {int(i): tokenizer.id_to_token(int(i)) for i in facts.specials.tolist()}
+        for key in _SPECIAL_KEYS:
+            value = getattr(settings, key)
+            if value is None or value in specials:
+                continue
+            token = tokenizer.id_to_token(int(value)) if 0 <= value < 1 << 32 else None
+            what = f"the ordinary token {token!r}" if token is not None else "no token at all"
+            guessed = settings.source(key) == "inferred"
+            listed = ", ".join(f"{t!r} = {i}" for i, t in specials.items()) or "none"
+            message = (f"{key} = {value} ({'inferred, a heuristic' if guessed else settings.source(key)}) is {what} "
+                       f"in the tokenizer {settings.tokenizer}, not one of its special tokens ({listed}). Set "
+                       f"{key} to the id of the tokenizer's special token, or give the tokenizer the shard was made "
+                       "with.")
+            out.append((f"special-{key.removesuffix('_id')}", Level.warning if guessed else Level.error, message,
+                        {"setting": key, "value": int(value), "token": token, "specialTokens": specials}))
         return out
 
 

@@ -148,3 +148,15 @@ def test_a_shard_scanned_in_parts_samples_the_same_rows(tmp_path, made, monkeypa
     [a], [b] = findings(whole, RULE), findings(parted, RULE)
     assert (a.kind, a.count, a.evidence, a.rows.tolist(), a.offsets.tolist()) == \
         (b.kind, b.count, b.evidence, b.rows.tolist(), b.offsets.tolist())
+
+
+def test_a_setting_that_disagrees_is_one_finding_for_all_its_shards(tmp_path, made):
+    folder, _, ids = made
+    for k in range(3):
+        write(tmp_path / f"s{k}.parquet", pack(ids[k * 10:(k + 1) * 10], 128, eos=EOS, pad=PAD))
+    report = scan([str(tmp_path)], Settings(only=(RULE,), tokenizer=str(folder / "a.json"), eos_id=EOS,
+                                            vocab_size=SIZE - 88), jobs=1)
+    [small] = findings(report, RULE, "vocab-size-smaller")
+    assert small.uri is None and small.count == 3 and len(small.instance_uris) == 3
+    assert small.evidence["shards"] == 3
+    validate_sarif(sarif.to_sarif(report))
