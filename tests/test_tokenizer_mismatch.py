@@ -102,19 +102,20 @@ def test_token_level_findings_get_a_decoded_excerpt_outside_the_fingerprint(tmp_
     cols = pack(ids[:6], 64, eos=EOS, pad=PAD)
     cols["input_ids"][2][20] = 900  # out of range for vocab_size 600
     cols["labels"][2][19] = 900
-    shard = write(tmp_path / "s.parquet", cols)
-    settings = dict(only=("token-range",), eos_id=EOS, pad_id=PAD, vocab_size=SIZE)
-    plain = scan([shard], Settings(**settings), jobs=1)
-    decoded = scan([shard], Settings(tokenizer=tok_path, **settings), jobs=1)
-    [before], [after] = findings(plain, "token-range"), findings(decoded, "token-range")
-    assert "decodedExcerpt" not in before.evidence
     row = cols["input_ids"][2]
     # The context as the tokenizers library decodes it: 12 tokens each side, at most 48 characters each side.
     expected = (tok.decode(row[8:20], skip_special_tokens=False)[-48:] + "[<id 900>]" +
                 tok.decode(row[21:33], skip_special_tokens=False)[:48])
-    assert after.evidence["decodedExcerpt"] == {"row": 2, "offset": 20, "text": expected}
-    assert after.message.endswith(f"Decoded at row 2 @20: {expected!r}.")
-    assert after.fingerprint == before.fingerprint
+    settings = dict(only=("token-range",), eos_id=EOS, pad_id=PAD, vocab_size=SIZE)
+    for name in ("s.parquet", "s.jsonl"):  # a row group read by the metadata; lines read up to the row
+        shard = write(tmp_path / name, cols, row_group_size=2)
+        plain = scan([shard], Settings(**settings), jobs=1)
+        decoded = scan([shard], Settings(tokenizer=tok_path, **settings), jobs=1)
+        [before], [after] = findings(plain, "token-range"), findings(decoded, "token-range")
+        assert "decodedExcerpt" not in before.evidence
+        assert after.evidence["decodedExcerpt"] == {"row": 2, "offset": 20, "text": expected}
+        assert after.message.endswith(f"Decoded at row 2 @20: {expected!r}.")
+        assert after.fingerprint == before.fingerprint
     fingerprints = [r["partialFingerprints"] for r in validate_sarif(sarif.to_sarif(decoded))["runs"][0]["results"]]
     assert fingerprints == [r["partialFingerprints"] for r in sarif.to_sarif(plain)["runs"][0]["results"]]
 

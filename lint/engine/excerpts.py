@@ -12,6 +12,7 @@ reads, a tokenizer that cannot decode an id) leaves the finding as it was.
 """
 from __future__ import annotations
 
+import itertools
 import logging
 
 import numpy as np
@@ -79,9 +80,28 @@ def attach(findings: list, results: list, rules, settings) -> None:
 
 
 def _read_rows(shard, tokens_column: str, wanted: set[int]) -> dict[int, list[int]]:
-    """The token ids of the ``wanted`` rows of a shard, reading it in order up to the last of them."""
+    """The token ids of the ``wanted`` rows of a shard: for Parquet, from the row groups that hold them (the file's
+    metadata says which); otherwise reading the shard in order up to the last of them."""
     from corpuscle.io.batch import is_integer_list
-    from corpuscle.io.sources import open_shard
+    from corpuscle.io.sources import is_uri, open_shard
+
+    if shard.format == "parquet":
+        import pyarrow.parquet as pq
+        from corpuscle.io.sources import _open_input
+
+        source = _open_input(shard.path) if is_uri(shard.path) else shard.path
+        parquet = pq.ParquetFile(source, memory_map=False)
+        meta = parquet.metadata
+        ends = np.cumsum([meta.row_group(g).num_rows for g in range(meta.num_row_groups)])
+        out = {}
+        for group, rows in itertools.groupby(sorted(wanted), key=lambda r: int(np.searchsorted(ends, r, "right"))):
+            if group >= meta.num_row_groups:
+                continue
+            column = parquet.read_row_group(group, columns=[tokens_column]).column(0)
+            first = int(ends[group - 1]) if group else 0
+            for row in rows:
+                out[row] = column[row - first].as_py()
+        return out
 
     out: dict[int, list[int]] = {}
     last = max(wanted)
