@@ -34,6 +34,9 @@ def made(tmp_path_factory):
     docs = [" ".join(sentences(words_a, 8, seed=100 + d)) for d in range(80)]
     ids = [e.ids for e in a.encode_batch(docs, add_special_tokens=False)]
     shard = write(folder / "shard.parquet", pack(ids, 128, eos=EOS, pad=PAD))
+    # The same documents tokenized with B.
+    ids_b = [e.ids for e in b.encode_batch(docs, add_special_tokens=False)]
+    write(folder / "shard_b.parquet", pack(ids_b, 128, eos=EOS, pad=PAD))
     return folder, shard, ids
 
 
@@ -55,6 +58,11 @@ def test_the_right_tokenizer_is_clean_and_the_wrong_one_is_reported(made):
     assert all(len(e["text"]) <= 80 for e in evidence["examples"])
     assert "heuristic" in found.message
     validate_sarif(sarif.to_sarif(wrong))
+    # The same corpus tokenized with B: clean with B, reported with A.
+    other = str(folder / "shard_b.parquet")
+    assert findings(run(other, str(folder / "b.json"), eos_id=EOS, pad_id=PAD, vocab_size=SIZE), RULE) == []
+    assert [f.kind for f in findings(run(other, str(folder / "a.json"), eos_id=EOS, pad_id=PAD, vocab_size=SIZE),
+                                     RULE)] == ["round-trip"]
 
 
 def test_vocab_size_and_special_ids_against_the_tokenizer(made):
