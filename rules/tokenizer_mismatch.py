@@ -17,22 +17,24 @@ Ids the tokenizer never produces
 Round trip
     A sample of rows -- the first ``first_rows`` rows of the shard and every row whose index hashes to 0 modulo
     ``every`` (a fixed choice per row, so a shard scanned in parts samples the same rows) -- is cut into segments
-    at special tokens (:func:`corpuscle.kernels.decode.segments`), each segment decoded with the tokenizer and
-    encoded again (no special tokens added). Both id sequences are compared away from the cut edges of the window:
-    without the first and last ``edge`` tokens of each, as bags of ids (a token that re-tokenizes differently near
-    an edge shifts the positions but moves only a few ids in or out of the bag). The *mismatch rate* is the share
-    of sampled segments that do not come back with the same ids (the share of tokens not given back is reported
-    beside it: another tokenizer often changes only a few tokens of each segment, but of nearly every segment). The tokenizer's own rate on the same text is
-    measured alike: the decoded text encoded by the tokenizer itself (its canonical ids), then decoded and encoded
-    again. A shard tokenized with this tokenizer has a rate close to that baseline; a shard made with another
-    tokenizer decodes to text that re-tokenizes differently, far above it. The rule reports an error when the rate
-    exceeds the baseline by more than ``tolerance`` (default 0.1), with a few decoded excerpts of mismatching
-    spans. A heuristic: a tokenizer whose every id sequence is canonical (a word-level vocabulary) cannot be told
-    from another of the same size by a round trip.
+    at special tokens (:func:`corpuscle.kernels.decode.segments`) and each segment is decoded with the tokenizer.
+    Away from the cut edges of the window -- the decoded text from its first to its last whitespace, since a window
+    may cut a word at either end -- the text is encoded again (no special tokens added), and the ids it gives are
+    looked for among the segment's own ids (bags of ids: counts per id). A segment tokenized with this tokenizer
+    holds them all, since the inner text starts at a word boundary as its tokens there did; a segment made with
+    another tokenizer decodes to text that this one encodes otherwise. The *mismatch rate* is the share of sampled
+    segments with ids the shard does not have (the share of ids is reported beside it: another tokenizer often
+    changes only a few ids of each segment, but of nearly every one). The tokenizer's own rate is measured on the
+    same text: its own ids for the whole decoded text in place of the shard's. The rule reports an error when the
+    rate exceeds that baseline by more than ``tolerance`` (default 0.1), with a few decoded excerpts of mismatching
+    spans. A heuristic: segments without two whitespace characters (text without spaces) are not compared, and a
+    tokenizer whose every id sequence is canonical (a word-level vocabulary) cannot be told from another of the
+    same size by a round trip.
 """
 from __future__ import annotations
 
 import itertools
+import re
 
 import numpy as np
 from corpuscle.findings import Finding, Level
@@ -42,7 +44,8 @@ from corpuscle.rules.api import CorpusResult, Rule, ShardState, pct
 
 _SPECIAL_KEYS = ("eos_id", "bos_id", "pad_id")
 _EXAMPLES = 3
-_EXCERPT = 40  # characters of decoded text on each side of a mismatch
+_EXCERPT = 30  # characters of decoded text on each side of a mismatch
+_WHITESPACE = re.compile(r"\s")
 
 
 def _tokenizer(settings):
@@ -92,8 +95,7 @@ class TokenizerMismatch(Rule):
     summary = "A shard not tokenized with the given tokenizer; special ids and vocabulary size that disagree with it."
     help = ("Tokenize the shards with the tokenizer the model is trained with (the file given with --tokenizer), or "
             "give the tokenizer the shards were made with. Set vocab_size, eos_id, bos_id and pad_id to that "
-            "tokenizer's values. Options: every and first_rows (rows sampled for the round trip), edge (tokens left "
-            "out at each end of a segment), tolerance (mismatch rate above the tokenizer's own rate that is an "
+            "tokenizer's values. Options: every and first_rows (rows sampled for the round trip), tolerance (mismatch rate above the tokenizer's own rate that is an "
             "error).")
     kinds = {
         "round-trip": "the sampled rows do not survive decode and encode again with the tokenizer",
@@ -102,13 +104,13 @@ class TokenizerMismatch(Rule):
         "unknown-id": "token ids that have no token in the tokenizer",
     }
     needs = {"tokens_column": "int-list"}
-    options = {"every": 64, "first_rows": 16, "edge": 4, "tolerance": 0.1}
+    options = {"every": 64, "first_rows": 16, "tolerance": 0.1}
     State = TokenizerState
     splittable = True
 
     def __init__(self, **options):
         super().__init__(**options)
-        for key in ("every", "first_rows", "edge"):
+        for key in ("every", "first_rows"):
             value = self.opts[key]
             if isinstance(value, bool) or not isinstance(value, int) or value < (1 if key == "every" else 0):
                 raise ValueError(f"rule {self.id}: {key} must be a whole number >= {1 if key == 'every' else 0}, "
@@ -146,26 +148,36 @@ class TokenizerMismatch(Rule):
                                                is not None}
         stop |= set(np.flatnonzero(~facts.known).tolist())
         lo, hi, seg_row = segments(values, flat.offsets, np.array(sorted(stop), dtype=np.int64), len(facts.known))
-        edge = self.opts["edge"]
-        take = np.isin(seg_row, sampled) & (hi - lo > 2 * edge)
+        take = np.isin(seg_row, sampled)
         lo, hi, seg_row = lo[take], hi[take], seg_row[take]
         if len(lo) == 0:
             return
         texts = decode_spans(tokenizer, values, lo, hi)
-        again = [e.ids for e in tokenizer.encode_batch(texts, add_special_tokens=False)]
+        # Away from the cut edges: the text from the first to the last whitespace (a window may cut a word at
+        # either end), which starts at a word boundary as the shard's own tokens there do.
+        inner = [_inner(text) for text in texts]
+        keep = np.array([len(t.strip()) > 0 for t in inner], dtype=bool)
+        if not keep.any():
+            return
+        idx = np.flatnonzero(keep)
+        lo, hi, seg_row = lo[idx], hi[idx], seg_row[idx]
+        inner = [inner[k] for k in idx.tolist()]
+        texts = [texts[k] for k in idx.tolist()]
+        encoded = tokenizer.encode_batch(inner, add_special_tokens=False)
+        again = [e.ids for e in encoded]
         originals = [values[a:b].tolist() for a, b in zip(lo.tolist(), hi.tolist())]
-        compared, missed = _bag_mismatch(originals, again, edge)
-        # The tokenizer's own rate on the same text: its canonical ids, decoded and encoded again.
-        texts2 = tokenizer.decode_batch(again, skip_special_tokens=True)
-        again2 = [e.ids for e in tokenizer.encode_batch(texts2, add_special_tokens=False)]
-        base_compared, base_missed = _bag_mismatch(again, again2, edge)
+        compared, missed = _bag_mismatch(again, originals)
+        # The tokenizer's own rate on the same text: its own ids for the whole decoded text against those of the
+        # inner text, the same comparison with the shard's ids replaced by the tokenizer's.
+        canonical = [e.ids for e in tokenizer.encode_batch(texts, add_special_tokens=False)]
+        base_compared, base_missed = _bag_mismatch(again, canonical)
         state.count(segments=len(lo), compared=int(compared.sum()), mismatched=int(missed.sum()),
                     segmentsMismatched=int((missed > 0).sum()), baselineSegmentsMismatched=int((base_missed > 0).sum()),
                     baselineCompared=int(base_compared.sum()), baselineMismatched=int(base_missed.sum()))
         bad = np.flatnonzero(missed > 0)
         for k in bad[:max(0, _EXAMPLES - len(state.examples))].tolist():
-            state.examples.append(_example(tokenizer, originals[k], again[k], int(batch.rows[seg_row[k]]),
-                                           int(lo[k] - flat.offsets[seg_row[k]]), edge))
+            state.examples.append(_example(tokenizer, originals[k], encoded[k], inner[k],
+                                           int(batch.rows[seg_row[k]]), int(lo[k] - flat.offsets[seg_row[k]])))
         if len(bad):
             local = seg_row[bad]
             state.hit("round-trip", batch, local, lo[bad] - flat.offsets[local])
@@ -200,20 +212,20 @@ class TokenizerMismatch(Rule):
                         "comparedTokens": int(stats["compared"]), "mismatchedTokens": int(stats["mismatched"]),
                         "tokenMismatchRate": round(stats["mismatched"] / max(1, stats["compared"]), 6),
                         "tolerance": self.opts["tolerance"], "examples": state.examples,
-                        "method": "decode, encode again, compare bags of ids away from the segment edges "
-                                  "(heuristic)"}
+                        "method": "decode, encode the text between the first and last whitespace again, look for "
+                                  "its ids among the segment's ids (heuristic)"}
             if rate > baseline + self.opts["tolerance"] and "round-trip" in state.hits:
-                shown = "; ".join(f"row {e['row']} @{e['offset']}: {e['text']!r}" for e in state.examples[:2])
+                shown = "; ".join(f"row {e['row']}: {e['text']!r} gives {e['roundTripToken']!r}, which the shard "
+                                  "does not have there" for e in state.examples[:2])
                 message = (f"The shard does not look tokenized with {settings.tokenizer}: of {int(segments_):,} "
                            f"sampled document segments decoded and encoded again, {pct(stats['segmentsMismatched'], segments_)} "
                            f"come back with other ids ({pct(stats['mismatched'], stats['compared'])} of "
-                           f"{int(stats['compared']):,} tokens), where the tokenizer's own round trip on the same "
-                           f"text changes {pct(stats['baselineSegmentsMismatched'], segments_)} of them (tolerance "
+                           f"{int(stats['compared']):,} tokens), where the tokenizer's own ids for the same text "
+                           f"disagree for {pct(stats['baselineSegmentsMismatched'], segments_)} of them (tolerance "
                            f"{self.opts['tolerance']:g}). This is a heuristic. Mismatching spans: {shown}. Re-tokenize "
                            "the shard with this tokenizer, or give the tokenizer it was made with.")
                 out.append(self.finding(state, "round-trip", message, **evidence))
         return out
-
 
     def corpus(self, states):
         """The settings against the tokenizer: one finding per disagreement, listing every shard it applies to
@@ -273,20 +285,28 @@ class TokenizerMismatch(Rule):
         return out
 
 
-def _bag_mismatch(originals: list, again: list, edge: int) -> tuple[np.ndarray, np.ndarray]:
-    """Per segment: how many ids were compared (the original's, less ``edge`` at each end) and how many of them the
-    round trip did not give back (bags of ids, each sequence less ``edge`` ids at each end)."""
+def _inner(text: str) -> str:
+    """``text`` from its first to its last whitespace character (the first and last words left out, as a window
+    may have cut them); empty when it has fewer than two whitespace-separated parts."""
+    first = _WHITESPACE.search(text)
+    if first is None:
+        return ""
+    last = max(text.rfind(c) for c in " \t\n\r\u3000\xa0")
+    return text[first.start():last] if last > first.start() else ""
+
+
+def _bag_mismatch(again: list, originals: list) -> tuple[np.ndarray, np.ndarray]:
+    """Per segment: how many ids the round trip gave (``again``) and how many of them the shard's ids of that segment
+    (``originals``) do not hold, comparing bags of ids (counts per id)."""
     count = len(originals)
-    a = [o[edge:len(o) - edge] for o in originals]
-    b = [x[edge:max(edge, len(x) - edge)] for x in again]
-    la = np.fromiter(map(len, a), dtype=np.int64, count=count)
-    lb = np.fromiter(map(len, b), dtype=np.int64, count=count)
+    la = np.fromiter(map(len, again), dtype=np.int64, count=count)
+    lb = np.fromiter(map(len, originals), dtype=np.int64, count=count)
     if la.sum() == 0:
         return la, np.zeros(count, np.int64)
     seg_a = np.repeat(np.arange(count, dtype=np.int64), la)
     seg_b = np.repeat(np.arange(count, dtype=np.int64), lb)
-    ids_a = np.fromiter(itertools.chain.from_iterable(a), dtype=np.int64, count=int(la.sum()))
-    ids_b = np.fromiter(itertools.chain.from_iterable(b), dtype=np.int64, count=int(lb.sum()))
+    ids_a = np.fromiter(itertools.chain.from_iterable(again), dtype=np.int64, count=int(la.sum()))
+    ids_b = np.fromiter(itertools.chain.from_iterable(originals), dtype=np.int64, count=int(lb.sum()))
     shift = np.int64(1 << 32)
     keys_a, count_a = np.unique(seg_a * shift + ids_a, return_counts=True)
     keys_b, count_b = np.unique(seg_b * shift + ids_b, return_counts=True)
@@ -295,18 +315,15 @@ def _bag_mismatch(originals: list, again: list, edge: int) -> tuple[np.ndarray, 
     return la, la - kept.astype(np.int64)
 
 
-def _example(tokenizer, original: list, again: list, row: int, offset: int, edge: int) -> dict:
-    """The first place where the round trip differs: a decoded excerpt around it and the ids on both sides."""
-    k = next((i for i, (x, y) in enumerate(zip(original, again)) if x != y), min(len(original), len(again)))
-    k = max(k, 0)
-    lo = max(0, k - 6)
-    text = tokenizer.decode(original[lo:k + 6], skip_special_tokens=True)
-    if len(text) > 2 * _EXCERPT:
-        text = text[:2 * _EXCERPT]
-    return {"row": row, "offset": offset + k, "text": text, "shardIds": original[k:k + 4],
-            "roundTripIds": again[k:k + 4],
-            "shardTokens": [tokenizer.id_to_token(int(i)) for i in original[k:k + 4]],
-            "roundTripTokens": [tokenizer.id_to_token(int(i)) for i in again[k:k + 4]]}
+def _example(tokenizer, original: list, encoded, inner: str, row: int, offset: int) -> dict:
+    """The first id of the round trip that the shard's segment does not hold: a decoded excerpt of the text around
+    it, and the token."""
+    held = set(original)
+    k = next((i for i, t in enumerate(encoded.ids) if t not in held), 0)
+    start, end = encoded.offsets[k] if encoded.offsets else (0, 0)
+    text = inner[max(0, start - _EXCERPT):end + _EXCERPT].strip()
+    return {"row": row, "segmentOffset": offset, "text": text, "roundTripToken": tokenizer.id_to_token(encoded.ids[k]),
+            "roundTripId": int(encoded.ids[k]), "inShardSegment": False}
 
 
 RULES = [TokenizerMismatch]

@@ -50,3 +50,28 @@ def train_bpe(texts: list[str], vocab_size: int):
     assert tok.get_vocab_size() == vocab_size, "the training text is too small for this vocabulary size"
     assert [tok.token_to_id(t) for t in SPECIALS] == [PAD, BOS, EOS]
     return tok
+
+
+def train_other(kind: str, texts: list[str], vocab_size: int):
+    """A tokenizer of another family with the same special ids (``<pad>`` 0, ``<s>`` 1, ``</s>`` 2, then ``<unk>``):
+    ``"unigram"`` (Metaspace pre-tokenizer and decoder, NFKC normalizer) or ``"wordpiece"`` (lowercasing BERT-style
+    normalizer and pre-tokenizer, WordPiece decoder)."""
+    from tokenizers import Tokenizer, decoders, models, normalizers, pre_tokenizers, trainers
+
+    specials = SPECIALS + ["<unk>"]
+    if kind == "unigram":
+        tok = Tokenizer(models.Unigram())
+        tok.normalizer = normalizers.NFKC()
+        tok.pre_tokenizer = pre_tokenizers.Metaspace()
+        tok.decoder = decoders.Metaspace()
+        trainer = trainers.UnigramTrainer(vocab_size=vocab_size, special_tokens=specials, unk_token="<unk>",
+                                          show_progress=False)
+    else:
+        tok = Tokenizer(models.WordPiece(unk_token="<unk>"))
+        tok.normalizer = normalizers.BertNormalizer(lowercase=True)
+        tok.pre_tokenizer = pre_tokenizers.BertPreTokenizer()
+        tok.decoder = decoders.WordPiece()
+        trainer = trainers.WordPieceTrainer(vocab_size=vocab_size, special_tokens=specials, show_progress=False)
+    tok.train_from_iterator(texts, trainer)
+    assert [tok.token_to_id(t) for t in SPECIALS] == [PAD, BOS, EOS]
+    return tok
