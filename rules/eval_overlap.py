@@ -7,9 +7,9 @@ What counts as overlap
     :mod:`corpuscle.kernels.ngrams` for the exact normalization). As in that method, an item shorter than ``n``
     words is flagged when all of its words appear in a training document in a row, down to ``min_words`` words
     (default 8, the lower bound the paper uses against spurious matches -- from memory); shorter items are not
-    checked and are counted as such. This is a published heuristic: a shared 13-gram is neither proof of contamination (a
-    common phrase, a quotation both copied) nor its absence proof of a clean benchmark (a paraphrase, a translation,
-    a re-tokenized copy), and the findings say so.
+    checked and are counted as such. This is a published heuristic: a shared 13-gram is neither proof of
+    contamination (a common phrase, a quotation both copied) nor its absence proof of a clean benchmark (a
+    paraphrase, a translation, a re-tokenized copy), and the findings say so.
 
 Evaluation sets (``--eval FILE``, repeatable; ``eval = [...]`` in the settings file)
     JSON Lines (``.jsonl``, ``.jsonl.gz``, ``.jsonl.zst``), Parquet or Arrow files with one item per record: its
@@ -429,7 +429,8 @@ class EvalOverlap(Rule):
         totals = {key: int(sum(s.stats.get(key, 0) for s in states))
                   for key in ("ngrams", "candidates", "verified", "collisions")}
         metrics = {"evalOverlap": {
-            "n": sets.grams.n, "minWords": min(sets.grams.n, self.opts["min_words"]), "files": len(sets.files), "items": sets.items,
+            "n": sets.grams.n, "minWords": min(sets.grams.n, self.opts["min_words"]), "files": len(sets.files),
+            "items": sets.items,
             "itemsChecked": int(sets.checked.sum()), "itemsTooShort": int((~sets.checked).sum()),
             "contaminatedItems": int(hits.sum()),
             "contaminatedShare": round(float(hits.sum()) / max(1, int(sets.checked.sum())), 6),

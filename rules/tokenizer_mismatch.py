@@ -95,8 +95,8 @@ class TokenizerMismatch(Rule):
     summary = "A shard not tokenized with the given tokenizer; special ids and vocabulary size that disagree with it."
     help = ("Tokenize the shards with the tokenizer the model is trained with (the file given with --tokenizer), or "
             "give the tokenizer the shards were made with. Set vocab_size, eos_id, bos_id and pad_id to that "
-            "tokenizer's values. Options: every and first_rows (rows sampled for the round trip), tolerance (mismatch rate above the tokenizer's own rate that is an "
-            "error).")
+            "tokenizer's values. Options: every and first_rows (rows sampled for the round trip), tolerance "
+            "(mismatch rate above the tokenizer's own rate that is an error).")
     kinds = {
         "round-trip": "the sampled rows do not survive decode and encode again with the tokenizer",
         "vocab-size-*": "vocab_size smaller (error) or larger (note) than the tokenizer's size",
@@ -218,7 +218,8 @@ class TokenizerMismatch(Rule):
                 shown = "; ".join(f"row {e['row']}: {e['text']!r} gives {e['roundTripToken']!r}, which the shard "
                                   "does not have there" for e in state.examples[:2])
                 message = (f"The shard does not look tokenized with {settings.tokenizer}: of {int(segments_):,} "
-                           f"sampled document segments decoded and encoded again, {pct(stats['segmentsMismatched'], segments_)} "
+                           "sampled document segments decoded and encoded again, "
+                           f"{pct(stats['segmentsMismatched'], segments_)} "
                            f"come back with other ids ({pct(stats['mismatched'], stats['compared'])} of "
                            f"{int(stats['compared']):,} tokens), where the tokenizer's own ids for the same text "
                            f"disagree for {pct(stats['baselineSegmentsMismatched'], segments_)} of them (tolerance "
@@ -281,7 +282,8 @@ class TokenizerMismatch(Rule):
                        f"{key} to the id of the tokenizer's special token, or give the tokenizer the shard was made "
                        "with.")
             out.append((f"special-{key.removesuffix('_id')}", Level.warning if guessed else Level.error, message,
-                        {"setting": key, "value": int(value), "token": token, "specialTokens": specials}))
+                        {"setting": key, "value": int(value), "token": token,
+                         "specialTokens": [{"id": i, "token": t} for i, t in specials.items()]}))
         return out
 
 

@@ -5,8 +5,11 @@ text, same vocabulary size and special ids); the shard is made with one of them 
 """
 from __future__ import annotations
 
+import json
+
 import pytest
 from corpuscle import Settings, scan
+from corpuscle.report import json as json_report
 from corpuscle.report import sarif
 
 from tests.shards import findings, pack, validate_sarif, write
@@ -57,7 +60,7 @@ def test_the_right_tokenizer_is_clean_and_the_wrong_one_is_reported(made):
     assert 1 <= len(evidence["examples"]) <= 3
     assert all(len(e["text"]) <= 80 and e["roundTripToken"] for e in evidence["examples"])
     assert "heuristic" in found.message
-    validate_sarif(sarif.to_sarif(wrong))
+    validate_sarif(json.loads(sarif.render(wrong)))
     # The same corpus tokenized with B: clean with B, reported with A.
     other = str(folder / "shard_b.parquet")
     assert findings(run(other, str(folder / "b.json"), eos_id=EOS, pad_id=PAD, vocab_size=SIZE), RULE) == []
@@ -77,7 +80,10 @@ def test_vocab_size_and_special_ids_against_the_tokenizer(made):
     # An eos id that is an ordinary token of the tokenizer (given: an error).
     report = run(shard, tok, eos_id=7, vocab_size=SIZE)
     [special] = findings(report, RULE, "special-eos")
-    assert special.level.name == "error" and special.evidence["specialTokens"] == {0: "<pad>", 1: "<s>", 2: "</s>"}
+    assert special.level.name == "error" and special.evidence["specialTokens"] == [
+        {"id": 0, "token": "<pad>"}, {"id": 1, "token": "<s>"}, {"id": 2, "token": "</s>"}]
+    validate_sarif(json.loads(sarif.render(report)))
+    json.loads(json_report.render(report))
 
 
 def test_ids_the_tokenizer_never_produces(tmp_path, made):
@@ -124,7 +130,8 @@ def test_token_level_findings_get_a_decoded_excerpt_outside_the_fingerprint(tmp_
         assert after.evidence["decodedExcerpt"] == {"row": 2, "offset": 20, "text": expected}
         assert after.message.endswith(f"Decoded at row 2 @20: {expected!r}.")
         assert after.fingerprint == before.fingerprint
-    fingerprints = [r["partialFingerprints"] for r in validate_sarif(sarif.to_sarif(decoded))["runs"][0]["results"]]
+    results = validate_sarif(json.loads(sarif.render(decoded)))["runs"][0]["results"]
+    fingerprints = [r["partialFingerprints"] for r in results]
     assert fingerprints == [r["partialFingerprints"] for r in sarif.to_sarif(plain)["runs"][0]["results"]]
 
 
@@ -168,7 +175,7 @@ def test_a_setting_that_disagrees_is_one_finding_for_all_its_shards(tmp_path, ma
     [small] = findings(report, RULE, "vocab-size-smaller")
     assert small.uri is None and small.count == 3 and len(small.instance_uris) == 3
     assert small.evidence["shards"] == 3
-    validate_sarif(sarif.to_sarif(report))
+    validate_sarif(json.loads(sarif.render(report)))
 
 
 @pytest.mark.parametrize("kind", ["unigram", "wordpiece"])

@@ -26,8 +26,8 @@ The evaluation set (:class:`NgramSet`)
     the binary search, a bit filter indexed by the top bits of the hash (at least 16 bits per entry, a power of two)
     rules out most training n-grams with one gather: a training n-gram that shares no hash with the set passes it
     with probability at most about 1/16 (the share of bits set), and only those are searched. 12 bytes per entry
-    (hash and a 32-bit word index) plus 2 for the filter, plus the items' words (their UTF-8 bytes, 16 bytes of offset and id per word) kept for
-    verification.
+    (hash and a 32-bit word index) plus 2 for the filter, plus the items' words (their UTF-8 bytes and 8 bytes of
+    offset per word) kept for verification.
 
 Verification
     A hash match is only a candidate: :func:`verify` compares the words of the training n-gram with those of the

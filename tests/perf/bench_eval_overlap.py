@@ -5,8 +5,8 @@
 
 Writes an evaluation set (JSON Lines, ``--items`` items of about ``--item-words`` invented words) and a training
 corpus (one Parquet file of ``--docs`` documents of about ``--doc-words`` words; 1% of the documents hold a
-verbatim 40-word span of an item). Then measures in this one run, each in a child process (``--jobs 1``; scan times are the report's own
-``metrics.seconds``, without the interpreter's start):
+verbatim 40-word span of an item). Then measures in this one run, each in a child process (``--jobs 1``; scan times
+are the report's own ``metrics.seconds``, without the interpreter's start):
   (a) building the evaluation set alone: reading, hashing and sorting its n-grams (the rule's begin on one shard),
       with the peak resident memory of that process (VmHWM) and the set's own size;
   (b) a scan with ``--only empty-document`` (reads the text, a trivial rule): the cost of reading;
