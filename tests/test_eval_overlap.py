@@ -19,8 +19,7 @@ from corpuscle.report import droplist, sarif
 
 from tests.shards import findings, pack, validate_sarif, write
 
-pytest.importorskip("tokenizers")
-from tests.tiny_tokenizers import EOS, invented_words, sentences, train_bpe  # noqa: E402
+from tests.tiny_tokenizers import EOS, invented_words, sentences, train_bpe
 
 RULE = "eval-overlap"
 N = 13
@@ -190,6 +189,7 @@ def tokenized_shards(tmp_path, docs, tokenizer, seq_len=64):
 
 
 def test_tokenized_and_packed_corpus_gives_the_same_items(tmp_path, planted):
+    pytest.importorskip("tokenizers")
     docs, items, expected, _ = planted
     tokenizer = train_bpe(docs, 600)
     tokenizer.save(str(tmp_path / "tok.json"))
@@ -373,6 +373,7 @@ def test_tokenized_evaluation_items_and_ids_a_tokenizer_cannot_decode(tmp_path, 
     import pyarrow as pa
     import pyarrow.parquet as pq
 
+    pytest.importorskip("tokenizers")
     docs, items, expected, _ = planted
     tokenizer = train_bpe(docs, 600)
     tok = str(tmp_path / "tok.json")
