@@ -12,7 +12,9 @@ Vocabulary and special ids
 
 Ids the tokenizer never produces
     Ids with no token in the tokenizer (beyond its size, or holes in its vocabulary): added tokens the model does
-    not know, ids from another vocabulary. Reported with their locations.
+    not know, ids from another vocabulary (an error). Special tokens of the tokenizer other than ``eos_id``,
+    ``bos_id`` and ``pad_id``: encoding text never makes them, so they were inserted by a template or belong to
+    another setup (a warning). Both with their locations.
 
 Round trip
     A sample of rows -- the first ``first_rows`` rows of the shard and every row whose index hashes to 0 modulo
@@ -102,6 +104,7 @@ class TokenizerMismatch(Rule):
         "vocab-size-*": "vocab_size smaller (error) or larger (note) than the tokenizer's size",
         "special-*": "eos_id, bos_id or pad_id that is not a special token of the tokenizer (key after the dash)",
         "unknown-id": "token ids that have no token in the tokenizer",
+        "other-special": "special tokens of the tokenizer other than eos, bos and padding (never made from text)",
     }
     needs = {"tokens_column": "int-list"}
     options = {"every": 64, "first_rows": 16, "tolerance": 0.1}
@@ -138,6 +141,16 @@ class TokenizerMismatch(Rule):
             rows, offsets = flat.locate(np.flatnonzero(unknown))
             state.hit("unknown-id", batch, rows, offsets)
             state.count(unknownIds=int(unknown.sum()))
+        # Special tokens other than the separators and padding: encoding text never produces them.
+        others = np.setdiff1d(facts.specials, [getattr(settings, k) for k in _SPECIAL_KEYS
+                                               if getattr(settings, k) is not None])
+        if len(others):
+            special = np.isin(values, others)
+            if special.any():
+                rows, offsets = flat.locate(np.flatnonzero(special))
+                state.hit("other-special", batch, rows, offsets)
+                found, counts = np.unique(values[special], return_counts=True)
+                state.count(**{f"special:{int(i)}": int(c) for i, c in zip(found.tolist(), counts.tolist())})
         # The round trip on the sampled rows.
         rows = batch.rows
         hashed = mix64(rows.astype(np.uint64) ^ np.uint64(0x5EED))
@@ -202,6 +215,18 @@ class TokenizerMismatch(Rule):
                        "of another vocabulary. Tokenize with this tokenizer, or add those tokens to it and to the "
                        "model.")
             out.append(self.finding(state, "unknown-id", message, tokenizerSize=size))
+        if "other-special" in state.hits:
+            counts = {int(k.split(":")[1]): int(v) for k, v in state.stats.items() if k.startswith("special:")}
+            listed = ", ".join(f"{tokenizer.id_to_token(i)!r} (id {i}) {c:,}x" for i, c in sorted(counts.items()))
+            hits = state.hits["other-special"]
+            message = (f"{hits.count:,} token(s) are special tokens of {settings.tokenizer} other than eos_id, bos_id "
+                       f"and pad_id: {listed}. Encoding text never produces them: they were inserted by a template, "
+                       "or they are the separator of another setup (check eos_id / bos_id / pad_id). If they are "
+                       "meant to be there, ignore this or set the level of tokenizer-mismatch to note for these "
+                       "shards.")
+            out.append(self.finding(state, "other-special", message, Level.warning,
+                                    specialTokens=[{"id": i, "token": tokenizer.id_to_token(i), "count": c}
+                                                   for i, c in sorted(counts.items())]))
         stats = state.stats
         segments_ = stats.get("segments", 0)
         if segments_:

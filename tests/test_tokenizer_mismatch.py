@@ -195,3 +195,18 @@ def test_other_tokenizer_families_are_clean_with_their_own_shards(tmp_path, kind
     other.save(str(tmp_path / "other.json"))
     assert "round-trip" in [f.kind for f in findings(run(shard, str(tmp_path / "other.json"), eos_id=EOS,
                                                          pad_id=PAD), RULE)]
+
+
+def test_special_tokens_other_than_the_separators_are_a_warning(tmp_path, made):
+    folder, _, ids = made
+    rows = pack(ids[:5], 64, eos=EOS, pad=PAD)
+    rows["input_ids"][2][7] = BOS  # <s> inside a row, while the settings name only eos and pad
+    rows["input_ids"][4][0] = BOS
+    shard = write(tmp_path / "s.parquet", rows)
+    report = run(shard, str(folder / "a.json"), eos_id=EOS, pad_id=PAD)
+    [other] = findings(report, RULE, "other-special")
+    assert other.level.name == "warning" and other.count == 2
+    assert list(zip(other.rows.tolist(), other.offsets.tolist())) == [(2, 7), (4, 0)]
+    assert other.evidence["specialTokens"] == [{"id": BOS, "token": "<s>", "count": 2}]
+    # Named as bos_id, the same tokens are expected.
+    assert findings(run(shard, str(folder / "a.json"), eos_id=EOS, pad_id=PAD, bos_id=BOS), RULE, "other-special") == []
