@@ -155,7 +155,7 @@ def _read_items(file: EvalFile, text_field: str, tokens_field: str, tokenizer: s
     """``(record indices, texts)`` of the file's items; problems of single records go to ``file.problems``."""
     fmt = shard_format(file.uri)
     if fmt is None:
-        raise EvalSetError("not a JSON Lines, Parquet or Arrow file (by its name): give an evaluation set as .jsonl, "
+        raise EvalSetError("is not a JSON Lines, Parquet or Arrow file (by its name): give an evaluation set as .jsonl, "
                            ".jsonl.gz, .jsonl.zst, .parquet or .arrow")
     size = _file_key(file.uri)[2]
     shard = Shard(uri=file.uri, path=file.uri, format=fmt[0], compression=fmt[1], length=size)
@@ -284,7 +284,7 @@ class EvalOverlap(Rule):
                 "(integer lists)")
 
     def _sets(self, settings) -> EvalSets:
-        return load_eval_sets(tuple(settings.eval), self.opts["n"], self.opts["text_field"],
+        return load_eval_sets(tuple(dict.fromkeys(settings.eval)), self.opts["n"], self.opts["text_field"],
                               self.opts["tokens_field"], settings.tokenizer, self.opts["min_words"])
 
     def begin(self, shard, settings):
