@@ -107,7 +107,7 @@ class TokenizerMismatch(Rule):
         "other-special": "special tokens of the tokenizer other than eos, bos and padding (never made from text)",
     }
     needs = {"tokens_column": "int-list"}
-    options = {"every": 64, "first_rows": 16, "tolerance": 0.1}
+    options = {"every": 256, "first_rows": 16, "tolerance": 0.1}
     State = TokenizerState
     splittable = True
 

@@ -73,8 +73,12 @@ def decode_spans(tokenizer, values: np.ndarray, lo: np.ndarray, hi: np.ndarray) 
     """The text of each span ``values[lo[k]:hi[k]]`` (special tokens skipped), decoded in one batch call."""
     if len(lo) == 0:
         return []
-    ids = values.tolist()
-    return tokenizer.decode_batch([ids[a:b] for a, b in zip(lo.tolist(), hi.tolist())], skip_special_tokens=True)
+    if 2 * int((hi - lo).sum()) < len(values):  # a few spans (a sample): convert only them
+        spans = [values[a:b].tolist() for a, b in zip(lo.tolist(), hi.tolist())]
+    else:
+        ids = values.tolist()
+        spans = [ids[a:b] for a, b in zip(lo.tolist(), hi.tolist())]
+    return tokenizer.decode_batch(spans, skip_special_tokens=True)
 
 
 def first_token_of_word(tokenizer, ids: list[int], word: int, count_words) -> int:
