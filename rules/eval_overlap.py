@@ -28,8 +28,8 @@ Training shards
     words. We decode rather than tokenize the evaluation items because only words keep the published definition
     (lowercasing and punctuation cannot be undone on token ids) and give the same answer on a text corpus and on
     the same corpus tokenized -- except for a span cut by a window boundary: segments never join across rows, so
-    an overlap survives a cut only when one side still holds ``n`` words (a verbatim span of ``2n`` words or more
-    always does). Every hash match is verified word by word before it counts.
+    an overlap survives a cut only when one side still holds ``n`` whole words (a verbatim span of ``2n + 1`` words
+    or more always does: a cut splits at most one word). Every hash match is verified word by word before it counts.
 
 What is reported
     Per evaluation file, one finding listing the contaminated items (instances: the file and the item's record
