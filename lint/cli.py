@@ -90,6 +90,10 @@ def main():
 @click.option("--cu-seqlens-column", help="Column of the cumulative document offsets of each row, 0 ... the row's "
                                           "real length [default: cu_seqlens].")
 @click.option("--ignore-index", type=int, help="Label value that is not trained on [default: -100].")
+@click.option("--eval", "eval", multiple=True, type=click.Path(dir_okay=False), metavar="FILE",
+              callback=lambda ctx, param, value: tuple(value) or None,  # not given: the settings file's list
+              help="Evaluation set to look for in the training data (repeatable): JSON Lines, Parquet or Arrow, one "
+                   "item per record (rule eval-overlap).")
 @click.option("--only", help="Run only these rules (comma-separated ids).")
 @click.option("--skip", help="Do not run these rules (comma-separated ids).")
 @click.option("--sarif", "sarif_path", type=click.Path(dir_okay=False), help="Write a SARIF 2.1.0 report here.")

@@ -27,7 +27,7 @@ FACTS = ("text_column", "tokens_column", "labels_column", "mask_column", "positi
          "pad_id", "vocab_size", "seq_len", "labels", "ignore_index", "separator", "tokenizer",
          "doc_lengths_column", "cu_seqlens_column")
 #: Run options: one value for the whole scan.
-OPTIONS = ("only", "skip", "fail_at", "instance_cap", "rule", "html", "levels", "suppress")
+OPTIONS = ("only", "skip", "fail_at", "instance_cap", "rule", "html", "levels", "suppress", "eval")
 
 
 
@@ -59,6 +59,7 @@ class Settings:
     levels: dict = field(default_factory=dict)  # rule id -> level from --level (over [rule.<id>] level)
     suppress: tuple = ()  # [[suppress]] entries: {"rule", "path", "kind" (optional), "justification"}
     path_levels: dict = field(default_factory=dict, repr=False)  # GLOB -> {rule id: level}, [paths."GLOB".rule.<id>]
+    eval: tuple[str, ...] = ()  # evaluation sets compared with the training data (rule eval-overlap)
     path_tables: dict = field(default_factory=dict, repr=False)
     origin: dict = field(default_factory=dict, repr=False)  # key -> "default" | "inferred" | "config" | "flag"
     evidence: dict = field(default_factory=dict, repr=False)  # key -> why an inferred value was chosen
@@ -103,6 +104,9 @@ class Settings:
             raise SettingsError(f"instance_cap must be a whole number >= 0, got {self.instance_cap!r}")
         if self.html is not None and (not isinstance(self.html, str) or not self.html):
             raise SettingsError(f"html must be the path of the HTML report to write, got {self.html!r}")
+        if isinstance(self.eval, (list, str)):  # eval = "qa.jsonl" or a list, from Python or a settings file
+            self.eval = (self.eval,) if isinstance(self.eval, str) else tuple(self.eval)
+        _check_eval(self.eval)
         if not isinstance(self.rule, dict) or not all(isinstance(v, dict) for v in self.rule.values()):
             raise SettingsError("rule options go in tables, e.g. [rule.near-duplicate] threshold = 0.8")
         _validate_gate(self)
@@ -161,6 +165,16 @@ class Settings:
     @property
     def fail_level(self) -> Level | None:
         return None if self.fail_at == "never" else Level.parse(self.fail_at)
+
+
+def _check_eval(paths) -> None:
+    """Evaluation sets must be existing files (a usage error otherwise, before any shard is read)."""
+    if not isinstance(paths, tuple) or not all(isinstance(p, str) and p for p in paths):
+        raise SettingsError(f'eval takes paths of evaluation sets, e.g. eval = ["eval/qa.jsonl"], got {paths!r}')
+    for path in paths:
+        if "://" not in path and not os.path.isfile(path):
+            raise SettingsError(f"evaluation set {path} does not exist: give a JSON Lines, Parquet or Arrow file "
+                                "with one item per record (--eval FILE)")
 
 
 def _check_path_tables(tables) -> dict:

@@ -12,7 +12,7 @@ from corpuscle.rules.api import Rule
 
 #: Built-in rule families, one module each, in the order their rules are listed.
 FAMILIES = ("integrity", "separators", "attention", "token_range", "padding", "labels", "text", "lengths",
-            "duplicates", "stale_settings")
+            "duplicates", "stale_settings", "eval_overlap", "tokenizer_mismatch")
 
 ENTRY_POINT_GROUP = "corpuscle.rules"
 

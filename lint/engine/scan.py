@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 from typing import Iterable
 
 from corpuscle import gate
-from corpuscle.engine import split
+from corpuscle.engine import excerpts, split
 from corpuscle.engine.executors import LocalExecutor, shuffle_here
 from corpuscle.engine.infer import infer_from_batch
 from corpuscle.engine.progress import Progress
@@ -517,6 +517,7 @@ def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], se
             if estimate is not None:
                 f.evidence["sampleEstimate"] = estimate
         notes.append(Note(Level.note, _sample_note(sampled)))
+    excerpts.attach(findings, results, rules, settings)  # decoded text at token-level findings (--tokenizer)
     findings.sort(key=Finding.sort_key)
     findings, suppressions = gate.apply(findings, settings, rules, [r.shard for r in results])
     for record in suppressions:
