@@ -118,7 +118,7 @@ class MinHashSettings:
         _check_seed(self.seed)
 
 
-def shingle_hashes(values, offsets, n: int = DEFAULT_N) -> tuple[np.ndarray, np.ndarray]:
+def shingle_hashes(values, offsets, n: int = DEFAULT_N, mixed=None) -> tuple[np.ndarray, np.ndarray]:
     """Hash every ``n``-token shingle of many windows.
 
     ``values`` is a flat 1-D integer array of token ids and ``offsets`` an
@@ -131,7 +131,9 @@ def shingle_hashes(values, offsets, n: int = DEFAULT_N) -> tuple[np.ndarray, np.
     in groups of about :data:`_SHINGLE_TOKENS` tokens, so the scratch arrays
     (about 24 bytes per token of a group) stay in a core's cache: on a batch of
     millions of tokens, numpy passes over whole arrays would be bound by memory
-    bandwidth, which the processes of a parallel scan share.
+    bandwidth, which the processes of a parallel scan share. ``mixed``, when
+    given, is ``mix64`` of ``values`` as uint64 (computed once and shared with
+    the content hash of documents); the result is the same.
     """
     _check_n(n)
     values = np.asarray(values)
@@ -152,14 +154,17 @@ def shingle_hashes(values, offsets, n: int = DEFAULT_N) -> tuple[np.ndarray, np.
     cuts = np.unique(np.concatenate(([0], np.searchsorted(offsets, marks), [len(lengths)])))
     for w0, w1 in zip(cuts[:-1].tolist(), cuts[1:].tolist()):
         _shingle_group(values, offsets[w0:w1 + 1], lengths[w0:w1], counts[w0:w1], n,
-                       hashes[shingle_offsets[w0]:shingle_offsets[w1]])
+                       hashes[shingle_offsets[w0]:shingle_offsets[w1]], mixed)
     return hashes, shingle_offsets
 
 
-def _shingle_group(values, offsets, lengths, counts, n: int, out: np.ndarray) -> None:
+def _shingle_group(values, offsets, lengths, counts, n: int, out: np.ndarray, mixed=None) -> None:
     """The shingle hashes of consecutive windows (``offsets`` into ``values``), written to ``out``."""
     first = int(offsets[0])
-    tokens = mix64(values[first : int(offsets[-1])].astype(np.uint64))
+    if mixed is not None:
+        tokens = mixed[first : int(offsets[-1])]
+    else:
+        tokens = mix64(values[first : int(offsets[-1])].astype(np.uint64))
     is_long = lengths >= n
     is_short = (lengths > 0) & ~is_long
     local = np.zeros(len(lengths) + 1, dtype=np.int64)
@@ -187,6 +192,52 @@ def _shingle_group(values, offsets, lengths, counts, n: int, out: np.ndarray) ->
             live = size > k
             partial[live] = partial[live] * np.uint64(POLY) + tokens[start[live] + k]
         out[local[short]] = _finish(partial)
+
+
+def sample_shingles(hashes, shingle_offsets, rate: int, least: int) -> tuple[np.ndarray, np.ndarray]:
+    """The shingles a MinHash signature is made from when only a sample of them is used: those whose hash is
+    0 modulo ``rate`` (a consistent sample: a shingle is taken in every window or in none), and in a window
+    that has fewer than ``least`` of those, its ``least`` smallest hashes (all of them when it has fewer) --
+    a bottom-k sample, consistent too, so that short windows are never left with too few shingles to compare.
+    ``rate`` 1 takes every shingle. Returns ``(hashes, shingle_offsets)`` of the sample, windows as given.
+
+    Two windows whose shingle sets have Jaccard similarity ``s`` have samples of about that similarity (the
+    threshold part samples the union and the intersection alike; the bottom-k part is the bottom-k sketch of
+    each set), so their signatures collide in a band with probability close to ``s**r``: the sample serves the
+    search for candidates, which are then verified on the full shingle sets.
+    """
+    hashes = _as_uint32(hashes)
+    shingle_offsets = _check_offsets(shingle_offsets, len(hashes), "shingle_offsets")
+    if rate <= 1:
+        return hashes, shingle_offsets
+    lo = int(shingle_offsets[0])
+    local = shingle_offsets - lo
+    view = hashes[lo:int(shingle_offsets[-1])]
+    if rate & (rate - 1) == 0:
+        keep = (view & np.uint32(rate - 1)) == 0
+    else:
+        keep = (view % np.uint32(rate)) == 0
+    counts = np.diff(local)
+
+    def taken() -> np.ndarray:
+        out = np.zeros(len(counts), dtype=np.int64)
+        nonempty = np.flatnonzero(counts > 0)
+        if len(nonempty):
+            out[nonempty] = np.add.reduceat(keep, local[nonempty], dtype=np.int64)
+        return out
+
+    short = np.flatnonzero((taken() < least) & (counts > 0))
+    if len(short):  # bottom-k of the short windows: sort their shingles by (window, hash), keep the first k of each
+        size = counts[short]
+        first = np.cumsum(size) - size
+        position = np.arange(int(size.sum())) + np.repeat(local[short] - first, size)
+        owner = np.repeat(np.arange(len(short)), size)
+        order = np.lexsort((view[position], owner))
+        rank = np.arange(len(order)) - np.repeat(first, size)
+        keep[position[order[rank < least]]] = True
+    new_offsets = np.zeros(len(counts) + 1, dtype=np.int64)
+    np.cumsum(taken(), out=new_offsets[1:])
+    return view[keep], new_offsets
 
 
 def shingle_hash(shingle) -> int:
