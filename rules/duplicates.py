@@ -131,7 +131,7 @@ from corpuscle.kernels.spill import (
 )
 from corpuscle.kernels.text import document_text
 from corpuscle.kernels.units import DocumentStream, Units
-from corpuscle.kernels.windows import DOCUMENTS, TOKENS, Windows, batch_windows, narrow, window_domain
+from corpuscle.kernels.windows import DOCUMENTS, TOKENS, Windows, batch_windows, window_domain
 from corpuscle.rules.api import CorpusResult, Rule, ShardState, share
 
 DROP_LIST = "drop-list"
@@ -357,10 +357,11 @@ class ScanWindows:
         return {"uri": self.uri(unit), "row": int(self.rows[unit]), "offset": int(self.at[unit]),
                 "length": int(self.lengths[unit])}
 
-    def where(self, unit: int) -> str:
-        """A unit's location for messages: ``shard row R`` or ``shard row R offset T``."""
+    def where(self, unit: int, uri: bool = True) -> str:
+        """A unit's location for messages: ``shard row R`` or ``shard row R offset T`` (without the shard when
+        ``uri`` is false)."""
         row, offset = int(self.rows[unit]), int(self.at[unit])
-        return f"{self.uri(unit)} row {row:,}" + (f" offset {offset:,}" if offset else "")
+        return (f"{self.uri(unit)} " if uri else "") + f"row {row:,}" + (f" offset {offset:,}" if offset else "")
 
     def sizes(self, windows: np.ndarray | None = None) -> dict:
         """Token and text-byte totals of the given windows (default: all)."""
@@ -556,10 +557,11 @@ def _group_finding(rule, scan, which, starts, sizes, members, kept, drops, drop_
                    what, unit) -> Finding:
     lo, hi = shards
     uris = [st.uri for st in scan.states]
+    named = not (lo >= 0 and lo == hi)  # within one shard, the finding names it once
     listed = which[:rule._max_clusters()]
     cluster_list = []
     lines = []
-    for rank, c in enumerate(listed.tolist()):
+    for rank, c in enumerate(which[:max(len(listed), TOP_CLUSTERS)].tolist()):
         ids = members[starts[c]:starts[c] + sizes[c]]
         keeper = int(kept[starts[c]])
         extra = describe(ids)
@@ -570,13 +572,14 @@ def _group_finding(rule, scan, which, starts, sizes, members, kept, drops, drop_
                        :MEMBERS_LISTED], **extra}
         if sizes[c] - 1 > MEMBERS_LISTED:
             cluster["othersTruncated"] = True
-        cluster_list.append(cluster)
+        if rank < len(listed):
+            cluster_list.append(cluster)
         if rank < TOP_CLUSTERS:
-            others = [scan.where(m) for m in ids.tolist() if m != keeper]
+            others = [scan.where(m, named) for m in ids.tolist() if m != keeper]
             shown = ", ".join(others[:MEMBERS_SHOWN]) + (f" and {len(others) - MEMBERS_SHOWN:,} more"
                                                          if len(others) > MEMBERS_SHOWN else "")
             similarity = f", {extra['summary']}" if "summary" in extra else ""
-            lines.append(f"({rank + 1}) {int(sizes[c]):,} {what}{similarity}: keep {scan.where(keeper)} "
+            lines.append(f"({rank + 1}) {int(sizes[c]):,} {what}{similarity}: keep {scan.where(keeper, named)} "
                          f"({int(scan.lengths[keeper]):,} {unit}); drop {shown}.")
     for cluster in cluster_list:
         cluster.pop("summary", None)
@@ -683,8 +686,8 @@ class _DuplicateRule(Rule):
         if state.stream is None:
             state.stream = DocumentStream()
             state.arrangement = (state.inferred or infer_arrangement(batch, settings))[0]
-        units, hashes = state.stream.add(batch, settings, state.arrangement)
-        return _document_windows(units, hashes), units
+        units, windows = state.stream.add(batch, settings, state.arrangement)
+        return windows, units
 
     def _closing(self, state) -> "tuple[Windows, Units] | None":
         """The document open at the end of the shard, as units."""
@@ -692,9 +695,9 @@ class _DuplicateRule(Rule):
         state.__dict__.pop("arrangement", None)
         if stream is None:
             return None
-        units, hashes = stream.close()
+        units, windows = stream.close()
         state.count(documentsOverLimit=stream.over_limit)
-        return (_document_windows(units, hashes), units) if len(units) else None
+        return (windows, units) if len(units) else None
 
     def _keep(self, state, windows: Windows, select: np.ndarray | None = None) -> None:
         """Keep the rows, offsets, lengths, domains and content hashes of the batch's units (or of ``select`` of
@@ -742,12 +745,6 @@ class _DuplicateRule(Rule):
         clusters given as ``members`` (unit ids) with their cluster ``labels``; ``describe(label, ids)`` gives
         evidence of one cluster (e.g. its similarity)."""
         return _cluster_findings(self, scan, members, labels, cap, describe)
-
-
-def _document_windows(units: Units, hashes: np.ndarray) -> Windows:
-    n = len(units)
-    return Windows(DOCUMENTS, np.arange(n), narrow(units.rows), narrow(units.lengths), hashes,
-                   np.full(n, DOCUMENTS, dtype=np.uint8), narrow(units.offsets))
 
 
 class ExactDuplicate(_DuplicateRule):

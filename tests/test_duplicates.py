@@ -30,7 +30,7 @@ from corpuscle.cli import main
 from corpuscle.engine.registry import registry
 from corpuscle.engine.scan import select_rules
 from corpuscle.kernels.hashing import content_hashes
-from corpuscle.kernels.minhash import WORD_CLASS, shingle_hash, shingle_hashes, signatures
+from corpuscle.kernels.minhash import WORD_CLASS, sample_shingles, shingle_hash, shingle_hashes, signatures
 from corpuscle.kernels.spill import SignatureSpill
 from corpuscle.kernels.windows import TOKENS
 from corpuscle.report import droplist, sarif
@@ -107,7 +107,55 @@ def datasketch_clusters(windows: dict, threshold: float = 0.8) -> list[frozenset
 
 
 def members(finding) -> list[tuple[str, int]]:
-    return [(inst["uri"], inst["row"]) for inst in finding.instances()]
+    """Every unit a finding names (its instances), in scan order."""
+    return [(inst.get("uri", finding.uri), inst["row"]) for inst in finding.instances()]
+
+
+def clusters_of(finding) -> list[list[tuple[str, int]]]:
+    """The clusters a finding lists in its evidence, each as (uri, row) of its members in scan order."""
+    return [sorted([(m["uri"], m["row"]) for m in [c["kept"], *c["others"]]], key=_scan_order)
+            for c in finding.evidence["clusterList"]]
+
+
+def clusters(report, rule_id) -> list[list[tuple[str, int]]]:
+    """All clusters of a rule in a report (over its findings)."""
+    return [c for f in findings(report, rule_id) for c in clusters_of(f)]
+
+
+def _scan_order(key):
+    return key
+
+
+def exact_clusters(windows: dict, threshold: float = 0.8) -> list[frozenset]:
+    """Reference clusters by exact Jaccard of Python shingle sets: the pairs of distinct contents at or above the
+    threshold, joined by graph search; exact copies folded into their first copy (``windows`` maps key ->
+    (content, shingles) in scan order). Returns the clusters of first copies."""
+    first, seen = {}, {}
+    for key, (content, shingles) in windows.items():
+        if shingles:
+            first[key] = seen.setdefault(content, key)
+    heads = [k for k in first if first[k] == k]
+    sets = {k: set(windows[k][1]) for k in heads}
+    edges = {k: set() for k in heads}
+    for i, a in enumerate(heads):
+        for b in heads[i + 1:]:
+            if len(sets[a] & sets[b]) / len(sets[a] | sets[b]) >= threshold:
+                edges[a].add(b)
+                edges[b].add(a)
+    found, done = [], set()
+    for start in heads:
+        if start in done:
+            continue
+        component, todo = set(), [start]
+        while todo:
+            node = todo.pop()
+            if node not in component:
+                component.add(node)
+                todo += edges[node]
+        done |= component
+        if len(component) >= 2:
+            found.append(frozenset(component))
+    return found
 
 
 def miss_probability(s: float, b: int, r: int) -> float:
@@ -199,15 +247,15 @@ def test_planted_near_duplicates_across_two_parquet_shards():
     paths = write_tokens(shards)
     report = run_dedup(paths)
     near = findings(report, "near-duplicate")
-    clusters = [set(members(f)) for f in near]
+    found = [set(c) for c in clusters(report, "near-duplicate")]
     window = {(f"data/{name}.parquet", row): w for name, rows in shards.items() for row, w in enumerate(rows)}
 
-    # The (b, r) chosen: datasketch's MinHashLSH parameters for threshold 0.8 and 128 permutations.
-    b, r = _optimal_param(0.8, 128, 0.5, 0.5)
-    assert (b, r) == (9, 13)
-    assert all((f.evidence["bands"], f.evidence["rowsPerBand"]) == (b, r) for f in near)
+    # Verified candidates: the bands lean towards recall (weights 0.2 / 0.8 in datasketch's own optimisation).
+    b, r = _optimal_param(0.8, 128, 0.2, 0.8)
+    assert (b, r) == (12, 10)
     metrics = report.metrics["nearDuplicates"]
     assert (metrics["bands"], metrics["rowsPerBand"], metrics["threshold"]) == (b, r, 0.8)
+    assert metrics["similarity"] == "exact Jaccard" and metrics["unit"] == "document"
 
     # Every planted pair with exact Jaccard >= 0.9 (Python sets) is in one reported cluster. The pairs are planted
     # at >= 0.96, where the chance of missing any of them is below 1% (banding probability, MMDS section 3.4).
@@ -216,36 +264,38 @@ def test_planted_near_duplicates_across_two_parquet_shards():
     assert len(strong) == 5
     assert sum(miss_probability(jaccard(window[(a, ra)], window[(c, rc)]), b, r) for a, ra, c, rc in strong) < 0.01
     for a, ra, c, rc in strong:
-        assert any({(a, ra), (c, rc)} <= cluster for cluster in clusters), (a, ra, c, rc)
-    # No reported pair has exact Jaccard below 0.6.
-    for cluster in clusters:
-        listed = sorted(cluster)
-        for i, x in enumerate(listed):
-            for y in listed[i + 1:]:
-                assert jaccard(window[x], window[y]) >= 0.6, (x, y)
+        assert any({(a, ra), (c, rc)} <= cluster for cluster in found), (a, ra, c, rc)
 
-    # The clusters equal datasketch's (MinHashLSH candidates verified by MinHash.jaccard, exact copies folded),
-    # and so do the lowest and mean estimated similarity of each.
-    reference, similarity = datasketch_clusters({key: (tuple(w), shingles_of(w)) for key, w in window.items()})
-    assert {frozenset(c) for c in clusters} == set(reference)
+    # Every reported cluster is (the exact copies of) a cluster of the exact reference -- components of the pairs
+    # whose exact Jaccard of Python shingle sets is >= 0.8 -- and every verified pair is at or above the threshold.
+    reference = exact_clusters({key: (tuple(w), shingles_of(w)) for key, w in window.items()})
+    first = {}
+    for key, w in window.items():
+        first.setdefault(tuple(w), key)
+    for cluster in found:
+        heads = frozenset(first[tuple(window[k])] for k in cluster)
+        assert heads in reference, cluster
+        assert cluster == {k for k in window if first[tuple(window[k])] in heads}
+    strong_heads = [c for c in reference if any({(a, ra), (x, rx)} <= c for a, ra, x, rx in strong)]
+    assert len(found) >= len(strong_heads)
     for f in near:
-        listed = members(f)
-        sims = [s for pair, s in similarity.items() if pair <= set(listed)]
-        assert f.evidence["similarityMin"] == round(min(sims), 4)
-        assert f.evidence["similarityMean"] == round(sum(sims) / len(sims), 4)
-        assert f.evidence["verifiedPairs"] == len(sims)
-        assert listed == sorted(listed, key=lambda k: (k[0] != "data/a.parquet", k[1]))  # scan order, first kept
-        assert f.count == len(listed) and f.evidence["windows"] == len(listed)
-        assert f.level.name == "warning" and "estimate" in f.message and "heuristic" in f.message
-        assert "b x r = 9 x 13" in f.message and "threshold 0.8" in f.message and "--drop-list" in f.message
+        for c in f.evidence["clusterList"]:
+            keys = sorted((m["uri"], m["row"]) for m in [c["kept"], *c["others"]])
+            distinct = sorted({first[tuple(window[k])] for k in keys})
+            sims = [jaccard(window[x], window[y]) for i, x in enumerate(distinct) for y in distinct[i + 1:]]
+            assert c["similarityMin"] >= 0.8  # no reported pair below the threshold
+            if len(distinct) == 2:  # one verified pair: its exact Jaccard, as Python sets give it
+                assert c["similarityMin"] == c["similarityMean"] == round(sims[0], 4)
+            assert c["distinct"] == len(distinct) and c["exactCopies"] == len(keys) - len(distinct)
+        assert f.level.name == "warning" and "exact Jaccard" in f.message and "heuristic search" in f.message
+        assert "b x r = 12 x 10" in f.message and "threshold 0.8" in f.message and "--drop-list" in f.message
 
-    # The copy of a.parquet row 0 in b.parquet row 25 is exact: counted, not listed, in the near cluster of row 0.
-    with_copy = next(f for f in near if ("data/a.parquet", 0) in members(f))
-    assert ("data/b.parquet", 25) not in members(with_copy) and with_copy.evidence["exactCopies"] == 1
-    assert "reported by exact-duplicate" in with_copy.message
+    # The copy of a.parquet row 0 in b.parquet row 25 is exact: a member of the near cluster of row 0.
+    with_copy = next(c for c in found if ("data/a.parquet", 0) in c)
+    assert ("data/b.parquet", 25) in with_copy
     # Corpus figures: distinct windows beyond each cluster's first, and their tokens (512 each).
-    beyond = sum(len(c) - 1 for c in reference)
-    assert metrics["clusters"] == len(reference)
+    beyond = sum(len({first[tuple(window[k])] for k in c}) - 1 for c in found)
+    assert metrics["clusters"] == len(found)
     assert (metrics["windows"], metrics["duplicateWindows"], metrics["duplicateTokens"]) == (80, beyond, 512 * beyond)
     assert metrics["windowFraction"] == beyond / 80 and metrics["tokenFraction"] == beyond / 80
     assert metrics["verifiedPairs"] >= beyond and metrics["candidatePairs"] >= metrics["verifiedPairs"]
@@ -271,21 +321,27 @@ def test_planted_near_duplicates_in_a_text_shard():
     # Planted: one word changed (Jaccard 0.967) and a change of case and punctuation only (Jaccard 1).
     assert text_jaccard(("text/part-0.jsonl", 4), ("text/part-0.jsonl", 10)) >= 0.96
     assert text_jaccard(("text/part-0.jsonl", 7), ("text/part-0.jsonl", 12)) == 1.0
-    clusters = {frozenset(members(f)) for f in near}
-    # Line 4 has an exact copy in part-1 (reported by exact-duplicate), so the cluster lists lines 4 and 10.
-    assert clusters == {frozenset({("text/part-0.jsonl", 4), ("text/part-0.jsonl", 10)}),
-                        frozenset({("text/part-0.jsonl", 7), ("text/part-0.jsonl", 12)})}
-    reference, _ = datasketch_clusters({key: (text, shingles_of(words_of(text))) for key, text in doc.items()})
-    assert clusters == set(reference)
-    by_first = {members(f)[0]: f for f in near}
-    assert by_first[("text/part-0.jsonl", 4)].evidence["exactCopies"] == 1
-    assert "5-word shingles" in by_first[("text/part-0.jsonl", 4)].message
+    found = {frozenset(c) for c in clusters(report, "near-duplicate")}
+    # Line 4 has an exact copy in part-1: a member of the cluster of lines 4 and 10 (and exact-duplicate's too).
+    assert found == {frozenset({("text/part-0.jsonl", 4), ("text/part-0.jsonl", 10), ("text/part-1.jsonl", 0)}),
+                     frozenset({("text/part-0.jsonl", 7), ("text/part-0.jsonl", 12)})}
+    reference = exact_clusters({key: (text, shingles_of(words_of(text))) for key, text in doc.items()})
+    assert set(reference) == {frozenset({("text/part-0.jsonl", 4), ("text/part-0.jsonl", 10)}),
+                              frozenset({("text/part-0.jsonl", 7), ("text/part-0.jsonl", 12)})}
+    # One finding within part-0 (lines 7 and 12), one between the two shards (the cluster of line 4).
+    within = next(f for f in near if f.uri == "text/part-0.jsonl")
+    between = next(f for f in near if f.uri is None)
+    assert clusters_of(within) == [[("text/part-0.jsonl", 7), ("text/part-0.jsonl", 12)]]
+    assert between.evidence["clusterList"][0]["exactCopies"] == 1
+    assert between.kind.startswith("clusters-between-")
     # A JSON Lines finding in one shard points at the line of its first document (1-based).
-    assert by_first[("text/part-0.jsonl", 7)].uri == "text/part-0.jsonl"
-    assert by_first[("text/part-0.jsonl", 7)].start_line == 8
+    assert within.start_line == 8
     size = {key: len(text.encode()) for key, text in doc.items() if text}
     metrics = report.metrics["nearDuplicates"]
     assert metrics["duplicateTextBytes"] == size[("text/part-0.jsonl", 10)] + size[("text/part-0.jsonl", 12)]
+    # The exact Jaccard of the pair (4, 10), as Python sets of word shingles give it.
+    pair = between.evidence["clusterList"][0]
+    assert pair["similarityMin"] == round(text_jaccard(("text/part-0.jsonl", 4), ("text/part-0.jsonl", 10)), 4)
     assert metrics["tokens"] == 0
     # Documents with words: 30 lines less null, empty, blank and the two word-free ones, plus part-1's two.
     assert metrics["windows"] == 30 - 5 + 2
@@ -308,15 +364,19 @@ def test_exact_duplicates_across_shards_with_exact_members():
                 groups.setdefault(tuple(w), []).append((f"data/{name}.parquet", row))
     expected = sorted((g for g in groups.values() if len(g) > 1), key=lambda g: (-len(g), g[0]))
     exact = findings(report, "exact-duplicate")
-    assert sorted((members(f) for f in exact), key=lambda g: (-len(g), g[0])) == expected
+    assert sorted(clusters(report, "exact-duplicate"), key=lambda g: (-len(g), g[0])) == expected
     assert len(expected) == 5  # the triple, a.0 / b.25, [1, 2, 3] three times, [7] * 40, [5]; not [7] * 39
-    triple = next(f for f in exact if members(f)[0] == ("data/a.parquet", 14))
-    assert members(triple) == [("data/a.parquet", 14), ("data/b.parquet", 20), ("data/b.parquet", 21)]
-    assert (triple.count, triple.evidence["copies"], triple.evidence["tokens"],
-            triple.evidence["redundantTokens"]) == (3, 3, 3 * 512, 2 * 512)
-    assert triple.uri is None and "exact copies" in triple.message and "a.parquet row 14" in triple.message
-    within = next(f for f in exact if members(f)[0] == ("data/a.parquet", 40))  # [1, 2, 3] twice in a, once in b
-    assert members(within) == [("data/a.parquet", 40), ("data/a.parquet", 43), ("data/b.parquet", 40)]
+    # Every group spans both shards: one finding between them, the largest groups first.
+    (between,) = exact
+    assert between.uri is None and between.kind.startswith("copies-between-")
+    assert between.evidence["clusters"] == 5 and between.count == sum(len(g) for g in expected)
+    triple, within = between.evidence["clusterList"][:2]
+    assert clusters_of(between)[:2] == [[("data/a.parquet", 14), ("data/b.parquet", 20), ("data/b.parquet", 21)],
+                                        [("data/a.parquet", 40), ("data/a.parquet", 43), ("data/b.parquet", 40)]]
+    assert (triple["members"], triple["dropped"], triple["droppedTokens"]) == (3, 2, 2 * 512)
+    assert triple["kept"] == {"uri": "data/a.parquet", "row": 14, "offset": 0, "length": 512}
+    assert "(1) 3 documents: keep data/a.parquet row 14 (512 tokens); drop data/b.parquet row 20, " \
+           "data/b.parquet row 21." in between.message
     extra = sum(len(g) - 1 for g in expected)
     extra_tokens = sum(len(shards[g[0][0][5]][g[0][1]]) * (len(g) - 1) for g in expected)
     windows = sum(1 for rows in shards.values() for w in rows if w)
@@ -336,18 +396,20 @@ def test_exact_duplicate_documents_are_byte_identical_text():
     report = run_dedup(["t.parquet", "t.jsonl"])
     exact = findings(report, "exact-duplicate")
     # Reference: Python string equality; JSON Lines rows are line indices (the blank line counts).
-    assert [members(f) for f in exact] == [[("t.parquet", 0), ("t.parquet", 1), ("t.parquet", 7),
-                                            ("t.jsonl", 0), ("t.jsonl", 2)]]
+    assert [sorted(members(f)) for f in exact] == [sorted([("t.parquet", 0), ("t.parquet", 1), ("t.parquet", 7),
+                                                           ("t.jsonl", 0), ("t.jsonl", 2)])]
     size = len(docs[0].encode("utf-8"))
-    assert exact[0].evidence["textBytes"] == 5 * size and exact[0].evidence["redundantTextBytes"] == 4 * size
+    assert exact[0].evidence["duplicateBytes"] == 4 * size and exact[0].evidence["duplicates"] == 4
     assert "documents" in exact[0].message and "UTF-8 bytes" in exact[0].message
     # Lowercased text and a trailing space give the same words: near-duplicates of the first copy, not exact ones.
     # The decomposed spelling is a different word (other code points), and four words are one shingle (n = 5):
     # it has no shingle in common with the others (reference: words_of, the regex split).
     assert words_of(docs[3]) != words_of(docs[0]) == words_of(docs[2]) == words_of(docs[6])
     near = findings(report, "near-duplicate")
-    assert [members(f) for f in near] == [[("t.parquet", 0), ("t.parquet", 2), ("t.parquet", 6)]]
-    assert near[0].evidence["exactCopies"] == 4 and near[0].evidence["similarityMin"] == 1.0
+    (cluster,) = near[0].evidence["clusterList"]
+    assert sorted(clusters_of(near[0])[0]) == sorted([("t.parquet", r) for r in (0, 1, 2, 6, 7)] +
+                                                     [("t.jsonl", 0), ("t.jsonl", 2)])
+    assert cluster["exactCopies"] == 4 and cluster["distinct"] == 3 and cluster["similarityMin"] == 1.0
 
 
 def test_content_hashes_agree_between_equal_and_mixed_lengths():
@@ -404,7 +466,11 @@ def test_content_hash_follows_its_documented_definition():
 
 def read_drop_list(path) -> list[tuple[str, int]]:
     with open(path) as fh:
-        return [(e["uri"], e["row"]) for e in map(json.loads, fh)]
+        entries = list(map(json.loads, fh))
+    for e in entries:  # every entry names its cluster, the copy kept and why
+        assert set(e) == {"uri", "row", "offset", "length", "unit", "rule", "cluster", "kept", "reason"}, e
+        assert set(e["kept"]) == {"uri", "row", "offset"} and e["reason"]
+    return [(e["uri"], e["row"]) for e in entries]
 
 
 def test_the_drop_list_leaves_no_duplicate_on_a_rescan(tmp_path):
@@ -415,10 +481,11 @@ def test_the_drop_list_leaves_no_duplicate_on_a_rescan(tmp_path):
                                        "--jobs", "1"])
     assert result.exit_code == 0, result.output
     dropped = read_drop_list("drop.jsonl")
-    # Reference: every exact copy but the first (Python equality) and every window of a datasketch cluster but
-    # its first, with the exact copies of its members; once each, in scan order.
+    # Reference: every exact copy but the first (Python equality) and every window of a cluster of the exact
+    # reference (Python sets, Jaccard >= 0.8) but its first, with the exact copies of its members; once each, in
+    # scan order.
     window = {(f"data/{name}.parquet", row): w for name, rows in shards.items() for row, w in enumerate(rows)}
-    reference, _ = datasketch_clusters({key: (tuple(w), shingles_of(w)) for key, w in window.items()})
+    reference = exact_clusters({key: (tuple(w), shingles_of(w)) for key, w in window.items()})
     first = {}
     for key, w in window.items():
         first.setdefault(tuple(w), key)
@@ -510,7 +577,7 @@ def test_two_jobs_give_the_same_findings_as_one_and_leave_no_files(tmp_path, mon
     assert comparable(one) == comparable(two)
     assert all(rule.spill_folder.startswith(str(spill_root)) for rule in one.rules + two.rules
                if rule.id == "near-duplicate")
-    assert len(findings(one, "near-duplicate")) >= 5 and len(findings(one, "exact-duplicate")) == 2
+    assert len(clusters(one, "near-duplicate")) >= 5 and len(clusters(one, "exact-duplicate")) == 2
 
 
 def test_signatures_are_spilled_to_an_npy_file_and_removed_by_corpus(tmp_path, monkeypatch):
@@ -535,13 +602,18 @@ def test_signatures_are_spilled_to_an_npy_file_and_removed_by_corpus(tmp_path, m
     # Reference: NumPy's .npy reader gives back the signatures of the 30 non-empty windows.
     rows = pq.read_table("a.parquet").column("input_ids").to_pylist()
     flat = np.concatenate([np.array(w, dtype=np.int64) for w in rows[:30]])
-    expected = signatures(*shingle_hashes(flat, np.arange(31) * 64, 5))
+    expected = signatures(*sample_shingles(*shingle_hashes(flat, np.arange(31) * 64, 5), 8, 48))
     stored = np.load(state.signatures_path, mmap_mode="r")
     assert isinstance(stored, np.memmap) and stored.shape == (30, 128)
     np.testing.assert_array_equal(stored, expected)
     np.testing.assert_array_equal(np.load(state.signatures_path), expected)
     del stored
-    assert state.rows.tolist() == list(range(30)) and state.keys.shape == (30, 9)
+    assert state.rows.tolist() == list(range(30)) and state.keys.shape == (30, 12)
+    # The shingle hashes of every window, for the exact verification (NumPy's reader again).
+    shingles, ends = (np.load(path) for path in state.shingles_paths)
+    hashes, offsets = shingle_hashes(flat, np.arange(31) * 64, 5)
+    np.testing.assert_array_equal(shingles[:, 0], hashes)
+    np.testing.assert_array_equal(ends[:, 0], offsets[1:])
     rule.corpus([state])
     assert not os.path.exists(rule.spill_folder)
 
@@ -563,25 +635,23 @@ def test_a_spill_file_is_a_standard_npy_file(tmp_path):
         spill.append(np.zeros((1, 3), np.uint32))
 
 
-def test_max_clusters_lists_the_largest_and_summarises_the_rest(tmp_path):
+def test_max_clusters_lists_the_largest_and_leaves_the_rest_to_the_drop_list(tmp_path):
     rng = np.random.default_rng(9)
     base = [rng.integers(0, VOCAB, 256).tolist() for _ in range(3)]
     rows = [base[0], mutate(rng, base[0], 1), mutate(rng, base[0], 1), base[1], mutate(rng, base[1], 1),
             base[2], mutate(rng, base[2], 1), base[2], base[2], base[1]]
     write("a.parquet", {"input_ids": rows})
     report = run_dedup(["a.parquet"], **{"near-duplicate": {"max_clusters": 1}, "exact-duplicate": {"max_clusters": 1}})
-    near = findings(report, "near-duplicate")
-    listed = [f for f in near if f.kind.startswith("cluster-")]
-    rest = [f for f in near if f.kind == "more-clusters"]
-    # Largest first: three distinct windows around base 0 beat the pairs around bases 1 and 2.
-    assert [members(f) for f in listed] == [[("a.parquet", 0), ("a.parquet", 1), ("a.parquet", 2)]]
-    assert len(rest) == 1 and rest[0].count == 2 and members(rest[0]) == [("a.parquet", 3), ("a.parquet", 5)]
-    assert rest[0].evidence == {"clusters": 2, "windows": 4} and "max_clusters = 1" in rest[0].message
-    exact = findings(report, "exact-duplicate")
-    assert [members(f) for f in exact if f.kind.startswith("copies-")] == [[("a.parquet", 5), ("a.parquet", 7),
-                                                                           ("a.parquet", 8)]]
-    more = next(f for f in exact if f.kind == "more-groups")
-    assert members(more) == [("a.parquet", 3)] and more.evidence == {"groups": 1, "extraCopies": 1}
+    (near,) = findings(report, "near-duplicate")
+    # One finding for the shard: three clusters; the largest (four windows around base 2: two distinct, two exact
+    # copies) listed in the evidence, the count and the instances cover all ten windows.
+    assert near.kind == "clusters" and near.evidence["clusters"] == 3 and near.evidence["clustersTruncated"]
+    assert clusters_of(near) == [[("a.parquet", 5), ("a.parquet", 6), ("a.parquet", 7), ("a.parquet", 8)]]
+    assert near.count == 10 and near.evidence["duplicates"] == 7
+    assert "(1) 4 documents, exact Jaccard" in near.message and "(3) 2 documents, exact Jaccard" in near.message
+    (exact,) = findings(report, "exact-duplicate")
+    assert clusters_of(exact) == [[("a.parquet", 5), ("a.parquet", 7), ("a.parquet", 8)]]
+    assert exact.evidence["clusters"] == 2 and exact.count == 5
     assert report.metrics["nearDuplicates"]["clusters"] == 3
     # The drop list still holds every cluster: all but rows 0, 3 and 5.
     assert [e["row"] for e in droplist.entries(report)] == [1, 2, 4, 6, 7, 8, 9]
@@ -598,9 +668,20 @@ def test_options_are_validated_with_a_hint():
         NearDuplicate(bands=4)
     with pytest.raises(SettingsError, match="rule near-duplicate: threshold"):
         select_rules(Settings(rule={"near-duplicate": {"threshold": 1.5}}), registry())
-    # Other thresholds and permutation counts take datasketch's (b, r).
-    rule = NearDuplicate(threshold=0.5, num_perm=64)
+    # Other thresholds and permutation counts take datasketch's (b, r): its default weights without verification,
+    # recall-leaning weights (false negatives 0.8) with it.
+    rule = NearDuplicate(threshold=0.5, num_perm=64, verify=False)
     assert (rule.bands, rule.rows_per_band) == _optimal_param(0.5, 64, 0.5, 0.5)
+    rule = NearDuplicate(threshold=0.5, num_perm=64)
+    assert (rule.bands, rule.rows_per_band) == _optimal_param(0.5, 64, 0.2, 0.8)
+    with pytest.raises(ValueError, match="unit must be"):
+        NearDuplicate(unit="row")
+    with pytest.raises(ValueError, match="keep must be one of first, longest"):
+        NearDuplicate(keep="last")
+    with pytest.raises(ValueError, match="prefer must be a list of path globs"):
+        NearDuplicate(prefer=[3])
+    with pytest.raises(ValueError, match="verify must be true or false"):
+        NearDuplicate(verify="yes")
 
 
 def test_a_shard_without_windows_is_skipped_with_a_reason(tmp_path):
@@ -620,9 +701,12 @@ def test_sarif_with_duplicate_findings_validates_against_the_schema(tmp_path):
     validate_sarif(log)  # OASIS SARIF 2.1.0 schema
     results = log["runs"][0]["results"]
     assert {r["ruleId"] for r in results} == set(RULES)
-    across = next(r for r in results if r["ruleId"] == "exact-duplicate" and r["properties"]["count"] == 3)
+    across = next(r for r in results if r["ruleId"] == "exact-duplicate")
     assert len(across["locations"]) == 2  # both shards
-    assert across["properties"]["instances"] == [{"row": 14, "uri": "data/a.parquet"},
-                                                 {"row": 20, "uri": "data/b.parquet"},
-                                                 {"row": 21, "uri": "data/b.parquet"}]
-    assert log["runs"][0]["properties"]["metrics"]["nearDuplicates"]["bands"] == 9
+    assert across["properties"]["count"] == 5  # two groups: a.0 with b.25, a.14 with b.20 and b.21
+    assert across["properties"]["instances"] == [{"row": 0, "offset": 0, "uri": "data/a.parquet"},
+                                                 {"row": 14, "offset": 0, "uri": "data/a.parquet"},
+                                                 {"row": 20, "offset": 0, "uri": "data/b.parquet"},
+                                                 {"row": 21, "offset": 0, "uri": "data/b.parquet"},
+                                                 {"row": 25, "offset": 0, "uri": "data/b.parquet"}]
+    assert log["runs"][0]["properties"]["metrics"]["nearDuplicates"]["bands"] == 12

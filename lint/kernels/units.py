@@ -14,7 +14,7 @@ stays the full length; the count of such documents is reported).
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from corpuscle.io.batch import Batch
@@ -22,6 +22,7 @@ from corpuscle.kernels.documents import documents_of
 from corpuscle.kernels.hashing import document_hashes
 from corpuscle.kernels.minhash import mix64
 from corpuscle.kernels.tokens import real_positions, real_ranks
+from corpuscle.kernels.windows import DOCUMENTS, Windows, narrow
 
 #: Tokens of one document kept for comparison (64 MiB of int32 ids); the rest of a longer document is not compared.
 MAX_DOCUMENT_TOKENS = 1 << 24
@@ -45,6 +46,13 @@ class Units:
         return len(self.rows)
 
 
+def as_windows(units: Units, hashes: np.ndarray) -> Windows:
+    """The units as the duplicate rules keep them: shard row, in-row offset, length and content hash of each."""
+    n = len(units)
+    return Windows(DOCUMENTS, np.arange(n), narrow(units.rows), narrow(units.lengths), hashes,
+                   np.full(n, DOCUMENTS, dtype=np.uint8), narrow(units.offsets))
+
+
 def _empty_units() -> Units:
     z = np.zeros(0, dtype=np.int64)
     return Units(np.zeros(0, np.int64), np.zeros(0, np.uint64), np.zeros(1, np.int64), z, z.copy(), z.copy())
@@ -63,28 +71,32 @@ class DocumentStream:
         self._open: _Open | None = None
         self.over_limit = 0
 
-    def add(self, batch: Batch, settings, arrangement: str) -> tuple[Units, np.ndarray]:
+    def add(self, batch: Batch, settings, arrangement: str) -> tuple[Units, Windows]:
         carry = self._open
         key = ("dedup-units", arrangement, settings.tokens_column, settings.mask_column, settings.positions_column,
                settings.eos_id, settings.bos_id, settings.pad_id, settings.separator,
                None if carry is None else (carry.row, carry.offset, carry.length, id(carry.pieces)))
-        units, hashes, after, over = batch.memo(key, lambda: _step(batch, settings, arrangement, carry))
+        units, windows, after, over = batch.memo(key, lambda: _step(batch, settings, arrangement, carry))
         self._open = after
         self.over_limit += over
-        return units, hashes
+        return units, windows
 
-    def close(self) -> tuple[Units, np.ndarray]:
-        """The document open at the shard's end (complete: a shard never continues into the next one)."""
+    def close(self) -> tuple[Units, Windows]:
+        """The document open at the shard's end (complete: a shard never continues into the next one). Two
+        streams closing the same open document get the same arrays (kept on it)."""
         carry, self._open = self._open, None
         if carry is None or not carry.kept:
-            return _empty_units(), np.zeros((0, 2), dtype=np.uint64)
-        tokens = carry.tokens()
+            units = _empty_units()
+            return units, as_windows(units, np.zeros((0, 2), dtype=np.uint64))
         self.over_limit += carry.length > carry.kept
-        mixed = mix64(tokens.astype(np.uint64))
-        bounds = np.asarray([0, len(tokens)], dtype=np.int64)
-        units = Units(tokens, mixed, bounds, np.asarray([carry.row], dtype=np.int64),
-                      np.asarray([carry.offset], dtype=np.int64), np.asarray([carry.length], dtype=np.int64))
-        return units, document_hashes(mixed, bounds)
+        if "closed" not in carry.cache:
+            tokens = carry.tokens()
+            mixed = mix64(tokens.astype(np.uint64))
+            bounds = np.asarray([0, len(tokens)], dtype=np.int64)
+            units = Units(tokens, mixed, bounds, np.asarray([carry.row], dtype=np.int64),
+                          np.asarray([carry.offset], dtype=np.int64), np.asarray([carry.length], dtype=np.int64))
+            carry.cache["closed"] = units, as_windows(units, document_hashes(mixed, bounds))
+        return carry.cache["closed"]
 
 
 @dataclass(frozen=True)
@@ -97,6 +109,7 @@ class _Open:
     length: int
     kept: int
     pieces: tuple
+    cache: dict = field(default_factory=dict, compare=False, repr=False)
 
     def tokens(self) -> np.ndarray:
         if not self.pieces:
@@ -143,7 +156,7 @@ def _step(batch: Batch, settings, arrangement: str, carry: "_Open | None"):
     if not docs.closes:  # no document starts in this batch: it all continues the open one
         if total:
             carry = (carry or opened_here()).extended(values)
-        return (*empty, carry, 0)
+        return empty[0], as_windows(*empty), carry, 0
     starts = np.asarray(docs.starts, dtype=np.int64)
     cuts = rank(starts) if len(starts) else np.zeros(0, dtype=np.int64)
     tail_at = int(rank(np.asarray([docs.tail_start]))[0]) if docs.tail else total
@@ -178,4 +191,4 @@ def _step(batch: Batch, settings, arrangement: str, carry: "_Open | None"):
         row, off = docs.locate(np.asarray([docs.tail_start]))
         after = _Open(int(row[0]), int(off[0]), 0, 0, ()).extended(values[tail_at:])
     units = Units(body, mixed, bounds, rows, offs, lengths)
-    return units, document_hashes(mixed, bounds), after, over
+    return units, as_windows(units, document_hashes(mixed, bounds)), after, over
