@@ -595,7 +595,7 @@ def _group_finding(rule, scan, which, starts, sizes, members, kept, drops, drop_
     n_drop, n_tokens = int(drops[which].sum()), int(drop_tokens[which].sum())
     member_ids = members[_ragged(starts[which], sizes[which])]
     message = (f"{len(which):,} cluster(s) of {rule.cluster_noun} {what} {place}: {n_drop:,} duplicate {what} "
-               f"({n_tokens:,} {unit}) to drop, {int(sizes[which].sum()):,} {what} in all. {rule.method_note()} "
+               f"({n_tokens:,} {unit}) to drop, {int(sizes[which].sum()):,} {what} in all. {rule.method_note(int(scan.domains[members[starts[which[0]]]]))} "
                f"Largest first: " + " ".join(lines))
     if len(which) > TOP_CLUSTERS:
         message += (f" {len(which) - TOP_CLUSTERS:,} more cluster(s) are listed in the SARIF/JSON evidence "
@@ -778,8 +778,9 @@ class ExactDuplicate(_DuplicateRule):
         super().__init__(**options)
         self._max_clusters()
 
-    def method_note(self) -> str:
-        return "Compared by a 128-bit content hash of the token ids (or of the text bytes)."
+    def method_note(self, domain: int) -> str:
+        what = "text bytes" if domain == 1 else "token ids"
+        return f"Compared by a 128-bit content hash of the {what}."
 
     def evidence(self) -> dict:
         return {"method": "128-bit content hash"}
@@ -1157,18 +1158,16 @@ class NearDuplicate(_DuplicateRule):
         }}
         return CorpusResult(findings, metrics, {DROP_LIST: entries})
 
-    def method_note(self) -> str:
+    def method_note(self, domain: int) -> str:
+        shingle = "word" if domain == 1 else "token"
         if self.verify:
-            return (f"Similarity is the exact Jaccard similarity of their {self.minhash.n}-{self._shingle_unit()} "
+            return (f"Similarity is the exact Jaccard similarity of their {self.minhash.n}-{shingle} "
                     f"shingle sets (every candidate verified; threshold {self.threshold:g}); the candidates come "
                     f"from MinHash LSH ({self.minhash.num_perm} permutations, b x r = {self.bands} x "
                     f"{self.rows_per_band}), a heuristic search that can miss a pair near the threshold.")
         return (f"Similarity is an estimate (MinHash with {self.minhash.num_perm} permutations of a sample of the "
-                f"{self.minhash.n}-{self._shingle_unit()} shingles, LSH b x r = {self.bands} x {self.rows_per_band}, "
+                f"{self.minhash.n}-{shingle} shingles, LSH b x r = {self.bands} x {self.rows_per_band}, "
                 f"threshold {self.threshold:g}): a heuristic, not verified (verify = false).")
-
-    def _shingle_unit(self) -> str:
-        return "token/word"
 
     def evidence(self) -> dict:
         return {"threshold": self.threshold, "bands": self.bands, "rowsPerBand": self.rows_per_band,

@@ -648,7 +648,7 @@ def test_max_clusters_lists_the_largest_and_leaves_the_rest_to_the_drop_list(tmp
     assert near.kind == "clusters" and near.evidence["clusters"] == 3 and near.evidence["clustersTruncated"]
     assert clusters_of(near) == [[("a.parquet", 5), ("a.parquet", 6), ("a.parquet", 7), ("a.parquet", 8)]]
     assert near.count == 10 and near.evidence["duplicates"] == 7
-    assert "(1) 4 documents, exact Jaccard" in near.message and "(3) 2 documents, exact Jaccard" in near.message
+    assert "(1) 4 documents, exact Jaccard" in near.message and "(3) 3 documents, exact Jaccard" in near.message
     (exact,) = findings(report, "exact-duplicate")
     assert clusters_of(exact) == [[("a.parquet", 5), ("a.parquet", 7), ("a.parquet", 8)]]
     assert exact.evidence["clusters"] == 2 and exact.count == 5
