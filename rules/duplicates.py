@@ -723,7 +723,9 @@ class _DuplicateRule(Rule):
         state.content = _joined(parts.pop("content"), np.zeros((0, 2), np.uint64))
         return state
 
-    splittable = True
+    #: By default (unit = "document") a large shard is scanned whole; with unit = "window" it may be split (set per
+    #: instance in __init__).
+    splittable = False
 
     def merge(self, first, second):
         """The windows of both parts, ``first``'s then ``second``'s (one window per row: nothing spans a cut; only
