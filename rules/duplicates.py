@@ -516,11 +516,10 @@ def _cluster_findings(rule, scan: ScanWindows, members: np.ndarray, labels: np.n
     dropped_at = np.flatnonzero(choice.drop)
     dropped = members[dropped_at]
     kept = members[choice.kept_of]
-    domain = int(scan.domains[members[0]])
-    what, unit = _unit(domain)
     # The drop list: each dropped member with its cluster, the kept copy and why.
     entries = []
     for i, m, k in zip(dropped_at.tolist(), dropped.tolist(), kept[dropped_at].tolist()):
+        what, unit = _unit(int(scan.domains[m]))
         entry = scan.location(m)
         kept_at = scan.location(k)
         entry.update(unit=what[:-1], rule=rule.id, cluster=hex_digest(scan.content[k]),
@@ -548,6 +547,7 @@ def _cluster_findings(rule, scan: ScanWindows, members: np.ndarray, labels: np.n
         which = np.flatnonzero((low == lo) & (high == hi))
         # Largest clusters first (members), then the one whose first member comes first.
         which = which[np.lexsort((members[starts[which]], -sizes[which]))]
+        what, unit = _unit(int(scan.domains[members[starts[which[0]]]]))
         findings.append(_group_finding(rule, scan, which, starts, sizes, members, kept, drops, drop_tokens,
                                        (lo, hi), cap, describe, what, unit))
     return findings, entries, dropped

@@ -26,11 +26,25 @@ def scan_demo(tmp_path):
     return result, json.loads(out.read_text())
 
 
+def document_ids(member: dict) -> list[int]:
+    """The token ids of a document located by shard, row, offset and length, read with pyarrow (rows end to end)."""
+    rows = pq.read_table(DEMO / name(member["uri"])).column("input_ids").to_pylist()
+    start = sum(len(r) for r in rows[:member["row"]]) + member["offset"]
+    return [t for r in rows for t in r][start:start + member["length"]]
+
+
 def test_the_demo_scan_exits_1_and_finds_each_planted_defect(tmp_path):
     result, report = scan_demo(tmp_path)
     assert result.exit_code == 1, result.output
     assert "Traceback" not in result.output
-    found = {(f["rule"], name(f["uri"])) for f in report["findings"] if f["level"] != "note"}
+    # The packed pantry shards draw one-sentence documents from a small phrase book, so a few documents recur word
+    # for word between shards: exact duplicates as documents, checked here against the token ids pyarrow reads.
+    chance = [f for f in report["findings"] if f["rule"] == "exact-duplicate" and "pantry" in f["message"]]
+    for f in chance:
+        for c in f["evidence"]["clusterList"]:
+            copies = [document_ids(m) for m in [c["kept"], *c["others"]]]
+            assert all(ids == copies[0] for ids in copies[1:]) and len(copies[0]) == c["kept"]["length"]
+    found = {(f["rule"], name(f["uri"])) for f in report["findings"] if f["level"] != "note" and f not in chance}
     assert found == {
         ("label-alignment", "pantry_shifted_twice.parquet"),
         ("label-alignment", "recipes_padded.jsonl"),
@@ -48,12 +62,13 @@ def test_the_demo_scan_exits_1_and_finds_each_planted_defect(tmp_path):
         ("exact-duplicate", None),  # notes_mirror.jsonl copies four notes of notes_text.jsonl word for word
         ("near-duplicate", None),  # ... and three with their last word changed
     }
-    copies = {(f["rule"], tuple((name(i["uri"]), i["row"]) for i in f["instances"]))
-              for f in report["findings"] if f["rule"].endswith("duplicate")}
+    copies = {(f["rule"], tuple(sorted((name(m["uri"]), m["row"]) for m in [c["kept"], *c["others"]])))
+              for f in report["findings"] if f["rule"].endswith("duplicate") and f not in chance
+              for c in f["evidence"]["clusterList"]}
     assert copies == {("exact-duplicate", (("notes_mirror.jsonl", r), ("notes_text.jsonl", r))) for r in range(4)} | \
         {("near-duplicate", (("notes_mirror.jsonl", r), ("notes_text.jsonl", r))) for r in (4, 5, 6)}
     clean = {"pantry_packed_clean.parquet", "pantry_packed_aligned.parquet", "notes_text.jsonl"}
-    assert not [f for f in report["findings"] if name(f["uri"]) in clean]
+    assert not [f for f in report["findings"] if name(f["uri"]) in clean and f not in chance]
 
 
 def test_the_demo_counts_match_the_shards(tmp_path):
