@@ -195,16 +195,17 @@ def _shingle_group(values, offsets, lengths, counts, n: int, out: np.ndarray, mi
 
 
 def sample_shingles(hashes, shingle_offsets, rate: int, least: int) -> tuple[np.ndarray, np.ndarray]:
-    """The shingles a MinHash signature is made from when only a sample of them is used: those whose hash is
-    0 modulo ``rate`` (a consistent sample: a shingle is taken in every window or in none), and in a window
-    that has fewer than ``least`` of those, its ``least`` smallest hashes (all of them when it has fewer) --
-    a bottom-k sample, consistent too, so that short windows are never left with too few shingles to compare.
+    """The shingles a MinHash signature is made from when only a sample of them is used: in a window of ``c``
+    shingles, those whose hash is below ``2**32 * max(1 / rate, least / c)`` -- one in ``rate`` of a long
+    window's shingles, about ``least`` of a shorter one, every shingle of a window of at most ``least``.
     ``rate`` 1 takes every shingle. Returns ``(hashes, shingle_offsets)`` of the sample, windows as given.
 
-    Two windows whose shingle sets have Jaccard similarity ``s`` have samples of about that similarity (the
-    threshold part samples the union and the intersection alike; the bottom-k part is the bottom-k sketch of
-    each set), so their signatures collide in a band with probability close to ``s**r``: the sample serves the
-    search for candidates, which are then verified on the full shingle sets.
+    The sample is consistent: a shingle is taken or left by its hash value alone (under a threshold that depends
+    only on the window's size), so two windows whose shingle sets have Jaccard similarity ``s`` have samples of
+    about that similarity -- exactly so in expectation when both are long or of the same size; when a short window
+    meets one of another size, the thresholds differ by the ratio of their sizes and the samples' similarity is
+    about ``s`` times that ratio (a near copy made by small edits has nearly the same size). The sample serves the
+    search for candidates only; candidates are verified on the full shingle sets.
     """
     hashes = _as_uint32(hashes)
     shingle_offsets = _check_offsets(shingle_offsets, len(hashes), "shingle_offsets")
@@ -213,30 +214,16 @@ def sample_shingles(hashes, shingle_offsets, rate: int, least: int) -> tuple[np.
     lo = int(shingle_offsets[0])
     local = shingle_offsets - lo
     view = hashes[lo:int(shingle_offsets[-1])]
-    if rate & (rate - 1) == 0:
-        keep = (view & np.uint32(rate - 1)) == 0
-    else:
-        keep = (view % np.uint32(rate)) == 0
     counts = np.diff(local)
-
-    def taken() -> np.ndarray:
-        out = np.zeros(len(counts), dtype=np.int64)
-        nonempty = np.flatnonzero(counts > 0)
-        if len(nonempty):
-            out[nonempty] = np.add.reduceat(keep, local[nonempty], dtype=np.int64)
-        return out
-
-    short = np.flatnonzero((taken() < least) & (counts > 0))
-    if len(short):  # bottom-k of the short windows: sort their shingles by (window, hash), keep the first k of each
-        size = counts[short]
-        first = np.cumsum(size) - size
-        position = np.arange(int(size.sum())) + np.repeat(local[short] - first, size)
-        owner = np.repeat(np.arange(len(short)), size)
-        order = np.lexsort((view[position], owner))
-        rank = np.arange(len(order)) - np.repeat(first, size)
-        keep[position[order[rank < least]]] = True
+    share = np.maximum(1.0 / rate, least / np.maximum(counts, 1))
+    highest = (np.minimum(np.floor(share * 2.0 ** 32), 2.0 ** 32) - 1).astype(np.uint32)  # hash < limit
+    keep = view <= np.repeat(highest, counts)
+    taken = np.zeros(len(counts), dtype=np.int64)
+    nonempty = np.flatnonzero(counts > 0)
+    if len(nonempty):
+        taken[nonempty] = np.add.reduceat(keep, local[nonempty], dtype=np.int64)
     new_offsets = np.zeros(len(counts) + 1, dtype=np.int64)
-    np.cumsum(taken(), out=new_offsets[1:])
+    np.cumsum(taken, out=new_offsets[1:])
     return view[keep], new_offsets
 
 
