@@ -39,7 +39,7 @@ from corpuscle.settings import SettingsError
 from datasketch import MinHash, MinHashLSH
 from datasketch.lsh import _optimal_param
 
-from tests.shards import findings, validate_sarif, write
+from tests.shards import findings, run, validate_sarif, write
 
 RULES = ("near-duplicate", "exact-duplicate")
 VOCAB = 50_000
@@ -710,3 +710,253 @@ def test_sarif_with_duplicate_findings_validates_against_the_schema(tmp_path):
                                                  {"row": 21, "offset": 0, "uri": "data/b.parquet"},
                                                  {"row": 25, "offset": 0, "uri": "data/b.parquet"}]
     assert log["runs"][0]["properties"]["metrics"]["nearDuplicates"]["bands"] == 12
+
+
+# -- documents in packed shards ---------------------------------------------------------------------------------
+
+EOS = 2
+
+
+def packed_corpus(rng, originals: int = 120, seq_len: int = 97):
+    """Documents of random ids (lengths 20 to 400: many run over several rows of ``seq_len``), packed with an eos
+    after each into two shards: shard a holds the originals with some exact and near copies of its own; shard b
+    other documents with exact and near copies of shard a's. Near copies change 1 to 3 tokens, or drop one.
+    Returns (documents per shard, planted (source, copy) pairs as (shard, index))."""
+    docs = {"a": [rng.integers(3, VOCAB, int(rng.integers(20, 400))).tolist() for _ in range(originals)],
+            "b": [rng.integers(3, VOCAB, int(rng.integers(20, 400))).tolist() for _ in range(60)]}
+    planted = []
+
+    def near(doc):
+        if rng.random() < 0.3:
+            out = list(doc)
+            del out[int(rng.integers(1, len(out) - 1))]
+            return out
+        return mutate(rng, doc, int(rng.integers(1, 4)))
+
+    for i in range(0, 40, 2):  # copies within shard a, inserted among the originals
+        docs["a"].append(list(docs["a"][i]) if i % 4 == 0 else near(docs["a"][i]))
+        planted.append((("a", i), ("a", len(docs["a"]) - 1)))
+    for i in range(40, 100, 2):  # copies in shard b
+        at = int(rng.integers(0, len(docs["b"]) + 1))
+        docs["b"].insert(at, list(docs["a"][i]) if i % 4 == 0 else near(docs["a"][i]))
+        planted = [(s, (c[0], c[1] + 1) if c[0] == "b" and c[1] >= at else c) for s, c in planted]
+        planted.append((("a", i), ("b", at)))
+    return docs, planted
+
+
+def starts_of(docs: list, seq_len: int) -> list[tuple[int, int]]:
+    """(row, offset) of each document's first token once packed with an eos after each (plain Python)."""
+    out, at = [], 0
+    for doc in docs:
+        out.append(divmod(at, seq_len))
+        at += len(doc) + 1
+    return out
+
+
+@pytest.mark.parametrize("arrangement", ["separators", "positions"])
+def test_packed_documents_are_found_as_documents_at_their_first_token(tmp_path, monkeypatch, arrangement):
+    rng = np.random.default_rng(17)
+    seq_len = 97
+    docs, planted = packed_corpus(rng)
+    from tests.shards import pack
+
+    paths = []
+    for name in ("a", "b"):
+        cols = pack(docs[name], seq_len, eos=EOS, pad=0, positions=arrangement == "positions")
+        paths.append(write(f"p/{name}.parquet", {"input_ids": cols["input_ids"],
+                                                 **({"position_ids": cols["position_ids"]}
+                                                    if arrangement == "positions" else {})}, row_group_size=5))
+    settings = Settings(only=RULES, eos_id=EOS, pad_id=0)
+    report = scan(paths, settings, jobs=1)
+    # Documents run over rows and batches: small batches give the very same report.
+    import corpuscle.io.sources as sources
+
+    monkeypatch.setattr(sources, "DEFAULT_BATCH_TOKENS", 300)
+    small = scan(paths, settings, jobs=1)
+    assert [(f.kind, f.message, f.evidence) for f in small.findings] == \
+        [(f.kind, f.message, f.evidence) for f in report.findings]
+
+    where = {(name, i): (f"p/{name}.parquet", *rc) for name in docs for i, rc in enumerate(starts_of(docs[name], seq_len))}
+    document = {(name, i): d + [EOS] for name in docs for i, d in enumerate(docs[name])}  # a document ends in its eos
+    located = {where[k]: k for k in where}
+    reported = []
+    for rule in RULES:
+        for f in findings(report, rule):
+            for c in f.evidence["clusterList"]:
+                members_here = [c["kept"], *c["others"]]
+                keys = [located[(m["uri"], m["row"], m["offset"])] for m in members_here]  # exact first tokens
+                assert all(m["length"] == len(document[k]) for m, k in zip(members_here, keys))
+                reported.append((rule, set(keys)))
+    # Exact copies: every planted one, with its original (Python equality of the id lists).
+    exact_planted = [(s, c) for s, c in planted if document[s] == document[c]]
+    assert len(exact_planted) == 25
+    for s, c in exact_planted:
+        assert any(rule == "exact-duplicate" and {s, c} <= keys for rule, keys in reported), (s, c)
+    # Near copies with exact Jaccard >= 0.9 (Python sets of 5-token shingles): at least 90% reported together with
+    # their original (the banding curve misses a pair at 0.9 with probability about 0.006, MMDS section 3.4).
+    near_planted = [(s, c) for s, c in planted if document[s] != document[c]
+                    and jaccard(document[s], document[c]) >= 0.9]
+    assert len(near_planted) >= 15
+    found = [(s, c) for s, c in near_planted if any(rule == "near-duplicate" and {s, c} <= keys
+                                                    for rule, keys in reported)]
+    assert len(found) >= 0.9 * len(near_planted), (len(found), len(near_planted))
+    # No reported near pair below the threshold: every pair of distinct contents in a cluster whose similarity is
+    # reported is at or above 0.8 in Python sets, or the cluster joins it through other members.
+    for rule, keys in reported:
+        if rule != "near-duplicate":
+            continue
+        distinct = {tuple(document[k]): k for k in sorted(keys)}
+        listed = list(distinct.values())
+        best = [max(jaccard(document[x], document[y]) for y in listed if y != x) for x in listed]
+        assert min(best) >= 0.8, keys
+    # The drop list names each dropped document by row, offset and length, and the copy kept.
+    dropped = droplist.entries(report)
+    assert all({"row", "offset", "length", "kept", "cluster", "reason"} <= set(e) for e in dropped)
+    for e in dropped:
+        assert document[located[(e["uri"], e["row"], e["offset"])]] == \
+            document[located[(e["kept"]["uri"], e["kept"]["row"], e["kept"]["offset"])]] or e["rule"] == "near-duplicate"
+
+
+def test_window_unit_compares_whole_rows(tmp_path):
+    rng = np.random.default_rng(17)
+    docs, planted = packed_corpus(rng)
+    from tests.shards import pack
+
+    paths = [write(f"p/{name}.parquet", {"input_ids": pack(docs[name], 97, eos=EOS, pad=0,
+                                                             positions=False)["input_ids"]})
+             for name in ("a", "b")]
+    windows = {"near-duplicate": {"unit": "window"}, "exact-duplicate": {"unit": "window"}}
+    by_window = scan(paths, Settings(only=RULES, eos_id=EOS, pad_id=0, rule=windows), jobs=1)
+    by_document = scan(paths, Settings(only=RULES, eos_id=EOS, pad_id=0), jobs=1)
+    # Rows of a packed shard hold shifted copies: as windows, hardly anything repeats.
+    rows = {(f"p/{n}.parquet", r): w for n in ("a", "b")
+            for r, w in enumerate(pq.read_table(f"p/{n}.parquet").column("input_ids").to_pylist())}
+    groups: dict = {}
+    for key, w in rows.items():
+        groups.setdefault(tuple(w), []).append(key)
+    assert sorted(clusters(by_window, "exact-duplicate")) == sorted(g for g in groups.values() if len(g) > 1)
+    assert by_window.metrics["exactDuplicates"]["unit"] == "window"
+    assert by_window.metrics["exactDuplicates"]["windows"] == len(rows)
+    assert len(clusters(by_document, "exact-duplicate")) == 25
+    assert all(c["kept"]["offset"] == 0 for f in findings(by_window, "exact-duplicate")
+               for c in f.evidence["clusterList"])
+
+
+def test_long_documents_are_compared_by_their_first_tokens(tmp_path, monkeypatch):
+    import corpuscle.kernels.units as units
+
+    monkeypatch.setattr(units, "MAX_DOCUMENT_TOKENS", 50)
+    rng = np.random.default_rng(2)
+    head = rng.integers(3, VOCAB, 60).tolist()
+    docs = [head + rng.integers(3, VOCAB, 40).tolist(), head + rng.integers(3, VOCAB, 45).tolist(),
+            rng.integers(3, VOCAB, 30).tolist()]
+    from tests.shards import pack
+
+    write("l.parquet", {"input_ids": pack(docs, 32, eos=EOS, positions=False)["input_ids"]})
+    report = run("l.parquet", only=("exact-duplicate",), eos_id=EOS)
+    # The two long documents agree in their first 50 tokens: compared by them, they are one group; the report
+    # counts them as over the limit.
+    assert clusters(report, "exact-duplicate") == [[("l.parquet", 0), ("l.parquet", 3)]]
+    assert report.metrics["exactDuplicates"]["documentsOverLimit"] == 2
+    (f,) = findings(report, "exact-duplicate")
+    assert [c["kept"]["length"] for c in f.evidence["clusterList"]] == [101]  # the full length, eos included
+
+
+# -- the keep policy --------------------------------------------------------------------------------------------
+
+
+def mirror_site(rng):
+    """An original crawl (site/) and a mirror of it (mirror/) that sorts first: the mirror repeats the pages word
+    for word or with a footer line added; the original also has pages of its own."""
+    vocabulary = sorted({"".join(rng.choice(SYLLABLES, size=3)) for _ in range(2000)})
+    pages = [" ".join(rng.choice(vocabulary, size=200)) for _ in range(12)]
+    write_lines("crawl/site/pages.jsonl", [{"text": p} for p in pages])
+    mirrored = [pages[i] if i % 2 else pages[i] + " mirrored by example mirror" for i in range(8)]
+    write_lines("crawl/mirror/pages.jsonl", [{"text": p} for p in mirrored])
+    return pages, mirrored
+
+
+def test_the_keep_policy_keeps_the_original_over_its_mirror(tmp_path):
+    rng = np.random.default_rng(8)
+    pages, mirrored = mirror_site(rng)
+    # By default the first copy in scan order is kept: the mirror, which sorts first.
+    plain = run_dedup(["crawl"])
+    assert {e["uri"] for e in droplist.entries(plain)} == {"crawl/site/pages.jsonl"}
+    prefer = {"prefer": ["crawl/site/*"]}
+    report = run_dedup(["crawl"], **{"near-duplicate": prefer, "exact-duplicate": prefer})
+    dropped = droplist.entries(report)
+    # Every mirrored page is dropped, each once, and the original kept: exact copies (odd pages) by
+    # exact-duplicate, pages with the footer by near-duplicate.
+    assert [(e["uri"], e["row"]) for e in dropped] == [("crawl/mirror/pages.jsonl", r) for r in range(8)]
+    for e in dropped:
+        assert e["kept"] == {"uri": "crawl/site/pages.jsonl", "row": e["row"], "offset": 0}
+        assert e["reason"] == "the kept copy is under the preferred path 'crawl/site/*'; this one is under no " \
+                              "preferred path"
+        assert e["rule"] == ("exact-duplicate" if e["row"] % 2 else "near-duplicate")
+        assert e["length"] == len(mirrored[e["row"]].encode())
+    # One copy per cluster: dropping the list leaves every page once (Python check over the remaining texts).
+    kept_texts = pages + [m for r, m in enumerate(mirrored) if ("crawl/mirror/pages.jsonl", r) not in
+                          {(e["uri"], e["row"]) for e in dropped}]
+    assert len(kept_texts) == 12
+    # Protected paths are never dropped: the mirror protected too keeps both copies of every page.
+    guarded = {"prefer": ["crawl/site/*"], "protect": ["crawl/mirror/*"]}
+    both = run_dedup(["crawl"], **{"near-duplicate": guarded, "exact-duplicate": guarded})
+    assert droplist.entries(both) == []
+    assert len(clusters(both, "exact-duplicate")) == 4 and len(clusters(both, "near-duplicate")) == 4
+
+
+def test_keep_longest_keeps_the_page_with_its_footer(tmp_path):
+    rng = np.random.default_rng(8)
+    pages, mirrored = mirror_site(rng)
+    longest = {"keep": "longest"}
+    report = run_dedup(["crawl"], **{"near-duplicate": longest, "exact-duplicate": longest})
+    dropped = {(e["uri"], e["row"]): e for e in droplist.entries(report)}
+    # The pages with the footer (even rows of the mirror) are longer than the originals: those are kept.
+    for r in range(0, 8, 2):
+        e = dropped[("crawl/site/pages.jsonl", r)]
+        assert e["kept"]["uri"] == "crawl/mirror/pages.jsonl" and e["reason"].startswith("keep = longest: the kept")
+    # Exact copies are as long as each other: the first in scan order (the mirror) stays.
+    for r in range(1, 8, 2):
+        assert dropped[("crawl/site/pages.jsonl", r)]["reason"] == \
+            "keep = longest: as long as the kept copy, which comes first in scan order"
+
+
+# -- verification -----------------------------------------------------------------------------------------------
+
+
+def test_unverified_similarity_is_an_estimate_and_says_so(tmp_path):
+    rng = np.random.default_rng(5)
+    write_lines("text/part-0.jsonl", text_corpus(rng))
+    report = run_dedup(["text"], **{"near-duplicate": {"verify": False}})
+    (f,) = findings(report, "near-duplicate")
+    assert "an estimate" in f.message and "not verified (verify = false)" in f.message
+    assert f.evidence["method"] == "MinHash LSH estimate (heuristic)"
+    assert report.metrics["nearDuplicates"]["similarity"] == "estimated Jaccard (MinHash, heuristic)"
+    # b x r are datasketch's own for threshold 0.8 and 128 permutations with its default weights.
+    assert (report.metrics["nearDuplicates"]["bands"], report.metrics["nearDuplicates"]["rowsPerBand"]) == \
+        _optimal_param(0.8, 128, 0.5, 0.5)
+
+
+def test_a_candidate_below_the_threshold_is_not_reported(tmp_path):
+    """A pair that the MinHash estimate puts above the threshold while its exact Jaccard is below it: verified,
+    it is left out (threshold chosen between the two)."""
+    rng = np.random.default_rng(13)
+    base = rng.integers(3, VOCAB, 300).tolist()
+    rows = [base, mutate(rng, base, 8)]
+    write("v.parquet", {"input_ids": rows})
+    exact = jaccard(rows[0], rows[1])
+    estimate = run("v.parquet", only=("near-duplicate",), rule={"near-duplicate": {"verify": False, "threshold": 0.5}})
+    (est,) = findings(estimate, "near-duplicate")
+    estimated = est.evidence["clusterList"][0]["similarityMin"]
+    assert estimated != round(exact, 4)
+    threshold = round((estimated + exact) / 2, 3)
+    if estimated > exact:  # the estimate passes a threshold between the two; the exact value does not
+        verified = run("v.parquet", only=("near-duplicate",), rule={"near-duplicate": {"threshold": threshold}})
+        assert findings(verified, "near-duplicate") == []
+        unverified = run("v.parquet", only=("near-duplicate",),
+                         rule={"near-duplicate": {"threshold": threshold, "verify": False}})
+        assert len(findings(unverified, "near-duplicate")) == 1
+    else:  # the exact value passes it, the estimate does not
+        verified = run("v.parquet", only=("near-duplicate",), rule={"near-duplicate": {"threshold": threshold}})
+        (f,) = findings(verified, "near-duplicate")
+        assert f.evidence["clusterList"][0]["similarityMin"] == round(exact, 4)

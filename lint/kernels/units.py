@@ -165,21 +165,27 @@ def _step(batch: Batch, settings, arrangement: str, carry: "_Open | None"):
     rows, offs = np.asarray(rows, dtype=np.int64), np.asarray(offs, dtype=np.int64)
     lengths = np.diff(np.append(cuts, tail_at)).astype(np.int64)
     mixed_batch = _mixed(batch, settings, values)
-    over = 0
+    inner_values, inner_mixed, inner_kept = values[head_end:tail_at], mixed_batch[head_end:tail_at], lengths
+    over = int(np.count_nonzero(lengths > MAX_DOCUMENT_TOKENS))
+    if over:  # documents over the limit are compared by their first tokens
+        inner_kept = np.minimum(lengths, MAX_DOCUMENT_TOKENS)
+        first = np.cumsum(inner_kept) - inner_kept
+        at = np.arange(int(inner_kept.sum())) + np.repeat(cuts - head_end - first, inner_kept)
+        inner_values, inner_mixed = inner_values[at], inner_mixed[at]
     # The document open before this batch ends where the first document of the batch starts: the first unit.
     if head_end > 0 and carry is None:
         carry = opened_here()
     if carry is not None:
         closing = carry.extended(values[:head_end])
         first = closing.tokens()
-        over = int(closing.length > closing.kept)
-        body = np.concatenate([first.astype(values.dtype, copy=False), values[head_end:tail_at]])
-        mixed = np.concatenate([mix64(first.astype(np.uint64)), mixed_batch[head_end:tail_at]])
+        over += int(closing.length > closing.kept)
+        body = np.concatenate([first.astype(values.dtype, copy=False), inner_values])
+        mixed = np.concatenate([mix64(first.astype(np.uint64)), inner_mixed])
         rows, offs = np.append(closing.row, rows), np.append(closing.offset, offs)
-        kept = np.append(len(first), lengths)
+        kept = np.append(len(first), inner_kept)
         lengths = np.append(closing.length, lengths)
     else:
-        body, mixed, kept = values[head_end:tail_at], mixed_batch[head_end:tail_at], lengths
+        body, mixed, kept = inner_values, inner_mixed, inner_kept
     bounds = np.zeros(len(kept) + 1, dtype=np.int64)
     np.cumsum(kept, out=bounds[1:])
     keep = kept > 0
