@@ -325,3 +325,25 @@ def test_bad_arrays_are_refused_with_a_hint():
         signatures(np.array([1], dtype=np.uint32), [0, 1], chunk=0)
     with pytest.raises(TypeError, match="texts must be strings"):
         word_shingle_hashes([1, 2, 3])
+
+
+def test_document_hashes_follow_their_definition_and_ignore_where_a_document_sits():
+    from corpuscle.kernels.hashing import _STREAM_BASES, document_hashes
+    from corpuscle.kernels.minhash import _mix64_int, mix64
+
+    mask = (1 << 64) - 1
+    rng = np.random.default_rng(4)
+    docs = [rng.integers(0, 50_000, n).tolist() for n in (1, 7, 5000, 9000, 7)]
+    docs[4] = list(docs[1])
+    flat = np.array([t for d in docs for t in d], dtype=np.int64)
+    offsets = np.concatenate(([0], np.cumsum([len(d) for d in docs])))
+    got = document_hashes(mix64(flat.astype(np.uint64)), offsets)
+    for d, h in zip(docs, got.tolist()):  # reference: the formula in Python integers
+        mixed = [_mix64_int(t & mask) for t in d]
+        expected = []
+        for lane, base in enumerate(_STREAM_BASES):
+            value = sum(m * pow(base, j, 1 << 64) for j, m in enumerate(mixed)) & mask
+            value ^= (len(d) * 0x9E3779B97F4A7C15 + lane) & mask
+            expected.append(_mix64_int(value))
+        assert h == expected
+    assert got[1].tolist() == got[4].tolist() and len({tuple(h) for h in got.tolist()}) == 4
