@@ -114,6 +114,7 @@ from corpuscle.kernels.lsh import (
 )
 from corpuscle.kernels.minhash import (
     MinHashSettings,
+    multilinear_shingle_hashes,
     sample_shingles,
     shingle_hashes,
     signatures,
@@ -918,7 +919,7 @@ class NearDuplicate(_DuplicateRule):
         n = self.minhash.n
 
         def shingled_hashes(w0, w1):
-            return shingle_hashes(units.values, units.bounds[w0:w1 + 1], n, mixed=units.mixed)
+            return multilinear_shingle_hashes(units.words, units.bounds[w0:w1 + 1], n)
 
         self._sign(state, windows, units.bounds, shingled_hashes)
 

@@ -145,14 +145,14 @@ _STREAM_TABLES = [(_powers(b, _STREAM_BLOCK), _powers(_inverse(b), _STREAM_BLOCK
                   for b in _STREAM_BASES]
 
 
-def document_hashes(mixed: np.ndarray, offsets: np.ndarray) -> np.ndarray:
-    """128-bit content hash of each document ``mixed[offsets[i]:offsets[i + 1]]`` of a token stream, shape
-    ``(documents, 2)``, uint64: equal token ids (after the same mixing), equal hash; stable across runs.
+def document_hashes(words: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+    """128-bit content hash of each document ``words[offsets[i]:offsets[i + 1]]`` of a token stream, shape
+    ``(documents, 2)``, uint64: equal token ids, equal hash; stable across runs.
 
-    ``mixed`` holds the documents' token ids already mixed by :func:`corpuscle.kernels.minhash.mix64` (the same
-    values the shingle hashes start from, so a scan mixes each token once); the documents lie back to back. Each of
-    two lanes is the polynomial ``sum_j m_j * x**j`` modulo 2**64 over the document's mixed ids ``m_j``, with its
-    own odd base ``x``, evaluated for every document at once from one running sum over the whole stream::
+    ``words`` holds the documents' token ids modulo 2**32 as uint64 (:func:`corpuscle.kernels.units.as_words`,
+    shared with the shingle hashes); the documents lie back to back. Each of two lanes is the polynomial
+    ``sum_j m_j * x**j`` modulo 2**64 over the document's words ``m_j``, with its own odd base ``x``, evaluated
+    for every document at once from one running sum over the whole stream::
 
         P[i] = sum_{t < i} m_t * x**t,    lane(doc [s, e)) = (P[e] - P[s]) * x**(-s)
 
@@ -175,7 +175,7 @@ def document_hashes(mixed: np.ndarray, offsets: np.ndarray) -> np.ndarray:
     block = _STREAM_BLOCK
     blocks = -(-size // block) if size else 1
     padded = np.zeros(blocks * block, dtype=np.uint64)
-    padded[:size] = mixed[lo:hi]
+    padded[:size] = words[lo:hi]
     grid = padded.reshape(blocks, block)
     bounds = offsets - lo
     b_of, u_of = bounds // block, bounds % block

@@ -395,7 +395,10 @@ def unique_sets(hashes, offsets) -> tuple[np.ndarray, np.ndarray]:
     offsets = np.asarray(offsets, dtype=np.int64)
     counts = np.diff(offsets)
     owner = np.repeat(np.arange(len(counts), dtype=np.uint64), counts)
-    keyed = np.unique((owner << np.uint64(32)) | hashes[offsets[0]:offsets[-1]].astype(np.uint64))
+    keyed = (owner << np.uint64(32)) | hashes[offsets[0]:offsets[-1]].astype(np.uint64)
+    keyed.sort()  # (np.unique would do, but may hash rather than sort: a plain sort is faster here)
+    if len(keyed) > 1:
+        keyed = keyed[np.concatenate(([True], keyed[1:] != keyed[:-1]))]
     set_offsets = np.zeros(len(counts) + 1, dtype=np.int64)
     np.cumsum(np.bincount((keyed >> np.uint64(32)).astype(np.int64), minlength=len(counts)), out=set_offsets[1:])
     return (keyed & np.uint64(0xFFFFFFFF)).astype(np.uint32), set_offsets

@@ -194,6 +194,77 @@ def _shingle_group(values, offsets, lengths, counts, n: int, out: np.ndarray, mi
         out[local[short]] = _finish(partial)
 
 
+#: Keys of :func:`multilinear_shingle_hashes`: one per token position of a shingle, then one per shingle length.
+_SHINGLE_KEY_SEED = 0x51A6_1E5E_ED00_C0DE
+
+
+@lru_cache(maxsize=8)
+def _multilinear_keys(n: int) -> np.ndarray:
+    keys = mix64(np.arange(2 * n + 1, dtype=np.uint64) ^ np.uint64(_SHINGLE_KEY_SEED))
+    keys.flags.writeable = False
+    return keys
+
+
+def multilinear_shingle_hashes(words, offsets, n: int = DEFAULT_N) -> tuple[np.ndarray, np.ndarray]:
+    """Hash every ``n``-token shingle of many windows with one multiplication per token of a shingle: the
+    shingle hashes of token documents (:mod:`corpuscle.kernels.units`), where they are made for every token of a
+    corpus and verified exactly afterwards.
+
+    ``words`` are the token ids modulo 2**32 as uint64 (:func:`corpuscle.kernels.units.Units`), ``offsets`` as for
+    :func:`shingle_hashes`, and the windowing is the same (a window shorter than ``n`` is one shingle of all its
+    tokens). A shingle ``s_0 .. s_{L-1}`` (L = n, or the length of a short window) hashes to the top 32 bits of::
+
+        k_{n + L} + sum_j k_j * s_j   (mod 2**64)
+
+    with fixed pseudo-random 64-bit keys ``k`` (``mix64`` of fixed inputs): the multilinear family of
+    :mod:`corpuscle.kernels.hashing`, whose top 32 bits are strongly universal for keys drawn at random (from
+    memory: Lemire and Kaser, 2014) -- so two different shingles collide with probability about 2**-32. Not the
+    hash family of :func:`shingle_hash` (which mixes every token first and is what datasketch is fed in the tests):
+    cheaper, and used where no signature is compared with datasketch's.
+    """
+    _check_n(n)
+    words = np.asarray(words)
+    if words.ndim != 1 or words.dtype != np.uint64:
+        raise TypeError("words must be a 1-D uint64 array of token ids modulo 2**32; hint: Units.words")
+    offsets = _check_offsets(offsets, len(words), "offsets")
+    keys = _multilinear_keys(n)
+    lengths = np.diff(offsets)
+    counts = np.where(lengths >= n, lengths - n + 1, (lengths > 0).astype(np.int64))
+    shingle_offsets = np.zeros(len(lengths) + 1, dtype=np.int64)
+    np.cumsum(counts, out=shingle_offsets[1:])
+    hashes = np.empty(int(shingle_offsets[-1]), dtype=np.uint32)
+    first = int(offsets[0])
+    marks = first + np.arange(_SHINGLE_TOKENS, int(offsets[-1]) - first, _SHINGLE_TOKENS)
+    cuts = np.unique(np.concatenate(([0], np.searchsorted(offsets, marks), [len(lengths)])))
+    for w0, w1 in zip(cuts[:-1].tolist(), cuts[1:].tolist()):
+        lo, hi = int(offsets[w0]), int(offsets[w1])
+        group, size, count = words[lo:hi], lengths[w0:w1], counts[w0:w1]
+        out = hashes[shingle_offsets[w0]:shingle_offsets[w1]]
+        is_long = size >= n
+        if is_long.any():
+            starts = len(group) - n + 1
+            full = group[:starts] * keys[0]
+            for k in range(1, n):
+                full += group[k:k + starts] * keys[k]
+            full += keys[2 * n]
+            inside = np.where(is_long, count, 0)
+            pattern = np.tile(np.array([True, False]), len(size))
+            valid = np.repeat(pattern, np.column_stack((inside, size - inside)).ravel())
+            out[np.repeat(is_long, count)] = (full[valid[:starts]] >> np.uint64(32)).astype(np.uint32)
+        short = np.flatnonzero((size > 0) & ~is_long)
+        if len(short):
+            local = np.zeros(len(size) + 1, dtype=np.int64)
+            np.cumsum(count, out=local[1:])
+            start = offsets[w0:w1][short] - lo
+            length = size[short]
+            partial = keys[n + length].copy()
+            for k in range(n - 1):
+                live = length > k
+                partial[live] += group[start[live] + k] * keys[k]
+            out[local[short]] = (partial >> np.uint64(32)).astype(np.uint32)
+    return hashes, shingle_offsets
+
+
 def sample_shingles(hashes, shingle_offsets, rate: int, least: int) -> tuple[np.ndarray, np.ndarray]:
     """The shingles a MinHash signature is made from when only a sample of them is used: in a window of ``c``
     shingles, those whose hash is below ``2**32 * max(1 / rate, least / c)`` -- one in ``rate`` of a long

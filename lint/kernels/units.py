@@ -20,7 +20,6 @@ import numpy as np
 from corpuscle.io.batch import Batch
 from corpuscle.kernels.documents import documents_of
 from corpuscle.kernels.hashing import document_hashes
-from corpuscle.kernels.minhash import mix64
 from corpuscle.kernels.tokens import real_positions, real_ranks
 from corpuscle.kernels.windows import DOCUMENTS, Windows, narrow
 
@@ -30,13 +29,13 @@ MAX_DOCUMENT_TOKENS = 1 << 24
 
 @dataclass
 class Units:
-    """Complete units handed on by one batch: their tokens back to back (``values``; ``mixed`` the same ids through
-    ``mix64``, shared by the content hash and the shingles), ``bounds`` (one more than units), and per unit the
+    """Complete units handed on by one batch: their tokens back to back (``values``; ``words`` the same ids modulo
+    2**32 as uint64, shared by the content hash and the shingles), ``bounds`` (one more than units), and per unit the
     shard row and in-row offset of its first token and its length in tokens (``lengths`` may exceed the compared
     tokens of a document over :data:`MAX_DOCUMENT_TOKENS`)."""
 
     values: np.ndarray
-    mixed: np.ndarray
+    words: np.ndarray
     bounds: np.ndarray
     rows: np.ndarray
     offsets: np.ndarray
@@ -91,11 +90,11 @@ class DocumentStream:
         self.over_limit += carry.length > carry.kept
         if "closed" not in carry.cache:
             tokens = carry.tokens()
-            mixed = mix64(tokens.astype(np.uint64))
+            words = as_words(tokens)
             bounds = np.asarray([0, len(tokens)], dtype=np.int64)
-            units = Units(tokens, mixed, bounds, np.asarray([carry.row], dtype=np.int64),
+            units = Units(tokens, words, bounds, np.asarray([carry.row], dtype=np.int64),
                           np.asarray([carry.offset], dtype=np.int64), np.asarray([carry.length], dtype=np.int64))
-            carry.cache["closed"] = units, as_windows(units, document_hashes(mixed, bounds))
+            carry.cache["closed"] = units, as_windows(units, document_hashes(words, bounds))
         return carry.cache["closed"]
 
 
@@ -127,10 +126,11 @@ class _Open:
         return _Open(self.row, self.offset, self.length + len(tokens), kept, pieces)
 
 
-def _mixed(batch: Batch, settings, values: np.ndarray) -> np.ndarray:
-    """``mix64`` of the batch's real token ids (shared per batch)."""
-    key = ("dedup-mixed", settings.tokens_column, settings.mask_column, settings.pad_id, settings.eos_id)
-    return batch.memo(key, lambda: mix64(values.astype(np.uint64)))
+def as_words(values: np.ndarray) -> np.ndarray:
+    """Token ids modulo 2**32 as uint64 (the same ids stored as int32 or int64 give the same words)."""
+    if values.dtype.itemsize == 4:
+        return values.view(np.uint32).astype(np.uint64)
+    return values.astype(np.uint32).astype(np.uint64)
 
 
 def _step(batch: Batch, settings, arrangement: str, carry: "_Open | None"):
@@ -164,14 +164,14 @@ def _step(batch: Batch, settings, arrangement: str, carry: "_Open | None"):
     rows, offs = docs.locate(starts) if len(starts) else (np.zeros(0, np.int64), np.zeros(0, np.int64))
     rows, offs = np.asarray(rows, dtype=np.int64), np.asarray(offs, dtype=np.int64)
     lengths = np.diff(np.append(cuts, tail_at)).astype(np.int64)
-    mixed_batch = _mixed(batch, settings, values)
-    inner_values, inner_mixed, inner_kept = values[head_end:tail_at], mixed_batch[head_end:tail_at], lengths
+    inner_values = values[head_end:tail_at]
+    inner_words, inner_kept = as_words(inner_values), lengths
     over = int(np.count_nonzero(lengths > MAX_DOCUMENT_TOKENS))
     if over:  # documents over the limit are compared by their first tokens
         inner_kept = np.minimum(lengths, MAX_DOCUMENT_TOKENS)
         first = np.cumsum(inner_kept) - inner_kept
         at = np.arange(int(inner_kept.sum())) + np.repeat(cuts - head_end - first, inner_kept)
-        inner_values, inner_mixed = inner_values[at], inner_mixed[at]
+        inner_values, inner_words = inner_values[at], inner_words[at]
     # The document open before this batch ends where the first document of the batch starts: the first unit.
     if head_end > 0 and carry is None:
         carry = opened_here()
@@ -180,12 +180,12 @@ def _step(batch: Batch, settings, arrangement: str, carry: "_Open | None"):
         first = closing.tokens()
         over += int(closing.length > closing.kept)
         body = np.concatenate([first.astype(values.dtype, copy=False), inner_values])
-        mixed = np.concatenate([mix64(first.astype(np.uint64)), inner_mixed])
+        words = np.concatenate([as_words(first), inner_words])
         rows, offs = np.append(closing.row, rows), np.append(closing.offset, offs)
         kept = np.append(len(first), inner_kept)
         lengths = np.append(closing.length, lengths)
     else:
-        body, mixed, kept = inner_values, inner_mixed, inner_kept
+        body, words, kept = inner_values, inner_words, inner_kept
     bounds = np.zeros(len(kept) + 1, dtype=np.int64)
     np.cumsum(kept, out=bounds[1:])
     keep = kept > 0
@@ -196,5 +196,5 @@ def _step(batch: Batch, settings, arrangement: str, carry: "_Open | None"):
     if docs.tail:
         row, off = docs.locate(np.asarray([docs.tail_start]))
         after = _Open(int(row[0]), int(off[0]), 0, 0, ()).extended(values[tail_at:])
-    units = Units(body, mixed, bounds, rows, offs, lengths)
-    return units, as_windows(units, document_hashes(mixed, bounds)), after, over
+    units = Units(body, words, bounds, rows, offs, lengths)
+    return units, as_windows(units, document_hashes(words, bounds)), after, over
