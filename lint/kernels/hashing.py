@@ -174,9 +174,11 @@ def document_hashes(words: np.ndarray, offsets: np.ndarray) -> np.ndarray:
     size = hi - lo
     block = _STREAM_BLOCK
     blocks = -(-size // block) if size else 1
-    padded = np.zeros(blocks * block, dtype=np.uint64)
-    padded[:size] = words[lo:hi]
-    grid = padded.reshape(blocks, block)
+    whole = size // block  # blocks read in place; the last, partial one is copied into a padded block
+    grid = words[lo:lo + whole * block].reshape(whole, block)
+    if whole < blocks:
+        last = np.zeros((1, block), dtype=np.uint64)
+        last[0, :size - whole * block] = words[lo + whole * block:hi]
     bounds = offsets - lo
     b_of, u_of = bounds // block, bounds % block
     lengths = np.diff(offsets).astype(np.uint64)
@@ -192,8 +194,9 @@ def document_hashes(words: np.ndarray, offsets: np.ndarray) -> np.ndarray:
         a, z = np.searchsorted(b_of, [r0, r1])
         here = np.arange(a, z)[inside[a:z]]
         local = scratch[:r1 - r0]
+        source = grid[r0:r1] if r1 <= whole else np.concatenate([grid[r0:whole], last])
         for lane, (small, _, _, _) in enumerate(_STREAM_TABLES):
-            np.multiply(grid[r0:r1], small, out=local)  # m_t * x**u within each block
+            np.multiply(source, small, out=local)  # m_t * x**u within each block
             np.cumsum(local, axis=1, out=local)
             sums[lane, r0:r1] = local[:, -1]
             before[lane, here] = local[b_of[here] - r0, u_of[here] - 1]

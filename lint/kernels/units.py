@@ -128,9 +128,12 @@ class _Open:
 
 def as_words(values: np.ndarray) -> np.ndarray:
     """Token ids modulo 2**32 as uint64 (the same ids stored as int32 or int64 give the same words)."""
+    out = np.empty(len(values), dtype=np.uint64)
     if values.dtype.itemsize == 4:
-        return values.view(np.uint32).astype(np.uint64)
-    return values.astype(np.uint32).astype(np.uint64)
+        out[:] = values.view(np.uint32)
+    else:
+        np.bitwise_and(values.astype(np.uint64, copy=False), np.uint64(0xFFFF_FFFF), out=out)
+    return out
 
 
 def _step(batch: Batch, settings, arrangement: str, carry: "_Open | None"):
@@ -164,14 +167,13 @@ def _step(batch: Batch, settings, arrangement: str, carry: "_Open | None"):
     rows, offs = docs.locate(starts) if len(starts) else (np.zeros(0, np.int64), np.zeros(0, np.int64))
     rows, offs = np.asarray(rows, dtype=np.int64), np.asarray(offs, dtype=np.int64)
     lengths = np.diff(np.append(cuts, tail_at)).astype(np.int64)
-    inner_values = values[head_end:tail_at]
-    inner_words, inner_kept = as_words(inner_values), lengths
+    inner_values, inner_kept = values[head_end:tail_at], lengths
     over = int(np.count_nonzero(lengths > MAX_DOCUMENT_TOKENS))
     if over:  # documents over the limit are compared by their first tokens
         inner_kept = np.minimum(lengths, MAX_DOCUMENT_TOKENS)
         first = np.cumsum(inner_kept) - inner_kept
         at = np.arange(int(inner_kept.sum())) + np.repeat(cuts - head_end - first, inner_kept)
-        inner_values, inner_words = inner_values[at], inner_words[at]
+        inner_values = inner_values[at]
     # The document open before this batch ends where the first document of the batch starts: the first unit.
     if head_end > 0 and carry is None:
         carry = opened_here()
@@ -179,13 +181,15 @@ def _step(batch: Batch, settings, arrangement: str, carry: "_Open | None"):
         closing = carry.extended(values[:head_end])
         first = closing.tokens()
         over += int(closing.length > closing.kept)
-        body = np.concatenate([first.astype(values.dtype, copy=False), inner_values])
-        words = np.concatenate([as_words(first), inner_words])
+        # One buffer each for the ids and the words, filled in place (no temporary of the batch's size).
+        body = np.empty(len(first) + len(inner_values), dtype=values.dtype)
+        body[:len(first)], body[len(first):] = first, inner_values
+        words = as_words(body)
         rows, offs = np.append(closing.row, rows), np.append(closing.offset, offs)
         kept = np.append(len(first), inner_kept)
         lengths = np.append(closing.length, lengths)
     else:
-        body, words, kept = inner_values, inner_words, inner_kept
+        body, words, kept = inner_values, as_words(inner_values), inner_kept
     bounds = np.zeros(len(kept) + 1, dtype=np.int64)
     np.cumsum(kept, out=bounds[1:])
     keep = kept > 0
