@@ -140,7 +140,7 @@ DROP_LIST = "drop-list"
 
 DEFAULT_MAX_CLUSTERS = 1000
 #: One shingle in this many goes into a MinHash signature (see corpuscle.kernels.minhash.sample_shingles) ...
-DEFAULT_SHINGLE_SAMPLE = 8
+DEFAULT_SHINGLE_SAMPLE = 16
 #: ... and at least this many of each unit (all of a shorter one).
 SAMPLE_LEAST = 48
 #: optimal_bands weights (false positives, false negatives) when candidates are verified exactly.

@@ -34,7 +34,7 @@ from corpuscle.kernels.minhash import WORD_CLASS, sample_shingles, shingle_hash,
 from corpuscle.kernels.spill import SignatureSpill
 from corpuscle.kernels.windows import TOKENS
 from corpuscle.report import droplist, sarif
-from corpuscle.rules.duplicates import NearDuplicate
+from corpuscle.rules.duplicates import DEFAULT_SHINGLE_SAMPLE, SAMPLE_LEAST, NearDuplicate
 from corpuscle.settings import SettingsError
 from datasketch import MinHash, MinHashLSH
 from datasketch.lsh import _optimal_param
@@ -606,7 +606,8 @@ def test_signatures_are_spilled_to_an_npy_file_and_removed_by_corpus(tmp_path, m
     from corpuscle.kernels.minhash import multilinear_shingle_hashes
     from corpuscle.kernels.units import as_words
 
-    expected = signatures(*sample_shingles(*multilinear_shingle_hashes(as_words(flat), np.arange(31) * 64, 5), 8, 48))
+    expected = signatures(*sample_shingles(*multilinear_shingle_hashes(as_words(flat), np.arange(31) * 64, 5),
+                                           DEFAULT_SHINGLE_SAMPLE, SAMPLE_LEAST))
     stored = np.load(state.signatures_path, mmap_mode="r")
     assert isinstance(stored, np.memmap) and stored.shape == (30, 128)
     np.testing.assert_array_equal(stored, expected)

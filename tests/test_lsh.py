@@ -388,18 +388,19 @@ def test_candidate_rate_of_the_rules_bands_follows_the_banding_curve():
 
 
 def test_candidates_of_sampled_shingles_follow_the_curve_of_the_samples_jaccard():
-    # With a shingle sample (one in 8, at least 48 a window), each pair is a candidate with probability
+    # With the rule's shingle sample (one in 16, at least 48 a window), each pair is a candidate with probability
     # 1 - (1 - s'**r)**b where s' is the exact Jaccard of the two samples (Python sets): the count of candidate
     # pairs lies within 4 standard deviations of the sum of those probabilities (a sum of independent Bernoulli
     # trials; normal approximation), and s' lies close to s.
     from corpuscle.kernels.minhash import sample_shingles
+    from corpuscle.rules.duplicates import DEFAULT_SHINGLE_SAMPLE, SAMPLE_LEAST
 
     b, r = 12, 10
     rng = np.random.default_rng(8)
-    for similarity, union in ((0.9, 800), (0.8, 1600), (0.9, 60)):
+    for similarity, union in ((0.9, 1600), (0.8, 3200), (0.9, 60)):
         windows = pairs_with_exact_jaccard(rng, similarity, 300, union=union)
         hashes, offsets = flatten(windows)
-        sampled, sample_offsets = sample_shingles(hashes, offsets, 8, 48)
+        sampled, sample_offsets = sample_shingles(hashes, offsets, DEFAULT_SHINGLE_SAMPLE, SAMPLE_LEAST)
         found = candidate_pairs(band_keys(signatures(sampled, sample_offsets), b, r)).pairs
         partners = len(found[(found[:, 0] % 2 == 0) & (found[:, 1] == found[:, 0] + 1)])
         probabilities = []
