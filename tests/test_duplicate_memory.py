@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import pickle
 
+import corpuscle.kernels.bands as bands
 import corpuscle.kernels.spill as spill_files
 import corpuscle.rules.duplicates as duplicates
 import numpy as np
@@ -26,7 +27,7 @@ from corpuscle.rules.duplicates import ExactDuplicate, NearDuplicate
 from corpuscle.settings import Settings
 from datasketch import MinHash
 
-from tests.shards import findings
+
 from tests.test_duplicates import (
     clusters,
     exact_clusters,
@@ -99,8 +100,9 @@ def summary(report) -> tuple:
 def tiny_steps(monkeypatch) -> None:
     """Every step that bounds the rules' memory made tiny, so that each loop runs many times."""
     for name, value in (("_SHINGLE_VALUES", 50), ("_SIGNATURE_WINDOWS", 2), ("_VERIFY_PAIRS", 3),
-                        ("_PARTITION_WINDOWS", 3), ("_REDUCE_ENTRIES", 16)):
+                        ("_EXACT_PAIRS", 2), ("_REDUCE_ENTRIES", 16)):
         monkeypatch.setattr(duplicates, name, value)
+    monkeypatch.setattr(bands, "_PARTITION_WINDOWS", 3)
     monkeypatch.setattr(spill_files, "_VERIFY_BLOCK_ROWS", 4)
 
 
@@ -188,7 +190,7 @@ def test_text_windows_without_words_keep_the_near_duplicate_arrays_apart():
 
 def test_band_keys_go_to_a_file_and_both_ways_of_reading_them_agree(monkeypatch):
     monkeypatch.setattr(spill_files, "_VERIFY_BLOCK_ROWS", 4)
-    monkeypatch.setattr(duplicates, "_PARTITION_WINDOWS", 3)
+    monkeypatch.setattr(bands, "_PARTITION_WINDOWS", 3)
     rng = np.random.default_rng(6)
     rows = [rng.integers(0, 50_000, 40).tolist() for _ in range(25)]
     rows[20], rows[21] = list(rows[2]), list(rows[2])  # exact copies within the shard: not in the shuffle

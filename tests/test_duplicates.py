@@ -30,7 +30,7 @@ from corpuscle.cli import main
 from corpuscle.engine.registry import registry
 from corpuscle.engine.scan import select_rules
 from corpuscle.kernels.hashing import content_hashes
-from corpuscle.kernels.minhash import WORD_CLASS, sample_shingles, shingle_hash, shingle_hashes, signatures
+from corpuscle.kernels.minhash import WORD_CLASS, sample_shingles, shingle_hash, signatures
 from corpuscle.kernels.spill import SignatureSpill
 from corpuscle.kernels.windows import TOKENS
 from corpuscle.report import droplist, sarif
