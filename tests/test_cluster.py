@@ -434,3 +434,20 @@ def _arrow_threads() -> int:
 def test_a_local_cluster_worker_decodes_with_one_arrow_thread(cluster):
     """Each worker of --cluster local runs one task at a time on one core, as a process of the local pool does."""
     assert sorted(cluster.client.run(_arrow_threads).values()) == [1, 1]
+
+
+def test_packed_documents_on_the_cluster_report_what_a_local_scan_reports(cluster):
+    """Duplicate documents packed at any offset of two shards (tests/test_duplicates.py packed_corpus): the
+    workers carry the open document across batches as a local scan does, and the shuffle finds the same clusters."""
+    from tests.shards import pack
+    from tests.test_duplicates import packed_corpus
+
+    docs, planted = packed_corpus(np.random.default_rng(17))
+    for name in ("a", "b"):
+        write(f"packed/{name}.parquet", {"input_ids": pack(docs[name], 97, eos=2, pad=0, positions=False)["input_ids"]},
+              row_group_size=5)
+    settings = dict(eos_id=2, pad_id=0, only=("near-duplicate", "exact-duplicate"))
+    local = scan_with(LocalExecutor(1), ["packed"], **settings)
+    remote = scan_with(cluster, ["packed"], **settings)
+    assert comparable(remote) == comparable(local)
+    assert len(clusters_in(local, "exact-duplicate")) == 25 and len(clusters_in(local, "near-duplicate")) >= 15

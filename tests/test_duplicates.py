@@ -776,10 +776,15 @@ def test_packed_documents_are_found_as_documents_at_their_first_token(tmp_path, 
     # Documents run over rows and batches: small batches give the very same report.
     import corpuscle.io.sources as sources
 
+    default_batch = sources.DEFAULT_BATCH_TOKENS
     monkeypatch.setattr(sources, "DEFAULT_BATCH_TOKENS", 300)
     small = scan(paths, settings, jobs=1)
     assert [(f.kind, f.message, f.evidence) for f in small.findings] == \
         [(f.kind, f.message, f.evidence) for f in report.findings]
+    monkeypatch.setattr(sources, "DEFAULT_BATCH_TOKENS", default_batch)
+    # The local pool of two processes (states and pieces travel through pickle) reports the same.
+    pooled = scan(paths, settings, jobs=2)
+    assert comparable(pooled)[:2] == comparable(report)[:2] and pooled.outputs == report.outputs
 
     where = {(name, i): (f"p/{name}.parquet", *rc) for name in docs for i, rc in enumerate(starts_of(docs[name], seq_len))}
     document = {(name, i): d + [EOS] for name in docs for i, d in enumerate(docs[name])}  # a document ends in its eos
