@@ -335,8 +335,20 @@ def _ragged(starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
 
 
 def _over_limit(states) -> dict:
+    """Documents compared by their first tokens only, and how the documents of token shards were read."""
+    out = {}
     over = sum(int(st.stats.get("documentsOverLimit", 0)) for st in states)
-    return {"documentsOverLimit": over} if over else {}
+    if over:
+        out["documentsOverLimit"] = over
+    reading: dict = {}
+    for st in states:
+        found = getattr(st, "reading", None)
+        if found:
+            entry = reading.setdefault(found[0], {"shards": 0, "why": found[1]})
+            entry["shards"] += 1
+    if reading:
+        out["documentReading"] = reading  # arrangement -> shards read so, and the reason of the first
+    return out
 
 
 def _shard_set_digest(uris: list[str]) -> str:
@@ -399,14 +411,16 @@ class _DuplicateRule(Rule):
             return batch_windows(batch, settings), None
         if state.stream is None:
             state.stream = DocumentStream()
-            state.arrangement = (state.inferred or infer_arrangement(batch, settings))[0]
+            state.arrangement, state.reading = state.inferred or infer_arrangement(batch, settings)
         units, windows = state.stream.add(batch, settings, state.arrangement)
         return windows, units
 
     def _closing(self, state) -> "tuple[Windows, Units] | None":
         """The document open at the end of the shard, as units."""
         stream = state.__dict__.pop("stream", None)
-        state.__dict__.pop("arrangement", None)
+        arrangement = state.__dict__.pop("arrangement", None)
+        # How the documents were read (a heuristic when inferred), for the corpus figures.
+        state.reading = (arrangement, state.__dict__.pop("reading", "")) if arrangement else None
         if stream is None:
             return None
         units, windows = stream.close()

@@ -786,6 +786,10 @@ def test_packed_documents_are_found_as_documents_at_their_first_token(tmp_path, 
     pooled = scan(paths, settings, jobs=2)
     assert comparable(pooled)[:2] == comparable(report)[:2] and pooled.outputs == report.outputs
 
+    # How the documents were read (a heuristic when inferred) is in the corpus figures.
+    reading = report.metrics["exactDuplicates"]["documentReading"]
+    assert list(reading) == [{"positions": "position-restarts"}.get(arrangement, arrangement)]
+    assert reading[list(reading)[0]]["shards"] == 2
     where = {(name, i): (f"p/{name}.parquet", *rc) for name in docs for i, rc in enumerate(starts_of(docs[name], seq_len))}
     document = {(name, i): d + [EOS] for name in docs for i, d in enumerate(docs[name])}  # a document ends in its eos
     located = {where[k]: k for k in where}
