@@ -20,7 +20,8 @@ Units (the ``unit`` option)
 
 Content hash (``exact-duplicate``, and ``near-duplicate`` to fold exact copies)
     Token documents: :func:`corpuscle.kernels.hashing.document_hashes` (two polynomial lanes over the ids, from
-    running sums over the whole batch). Rows and text documents: a window is a vector of 32-bit words: its token ids modulo 2**32 (so the same ids stored as int32 or int64
+    running sums over the whole batch). Rows and text documents: a window is a vector of 32-bit words: its token
+    ids modulo 2**32 (so the same ids stored as int32 or int64
     hash the same; ids that differ by a multiple of 2**32 -- never valid ids -- alias), or the bytes of its
     UTF-8 text exactly as stored (no normalization: text that differs only in Unicode normalization or
     whitespace is not an exact copy; the near-duplicate rule, which lowercases and splits into words, sees it).
@@ -308,13 +309,15 @@ def _group_finding(rule, scan, which, starts, sizes, members, kept, drops, drop_
         kind = f"{rule.cluster_kind}-between-{_shard_set_digest([uris[lo], uris[hi]])}"
     n_drop, n_tokens = int(drops[which].sum()), int(drop_tokens[which].sum())
     member_ids = members[_ragged(starts[which], sizes[which])]
+    domain = int(scan.domains[members[starts[which[0]]]])
     message = (f"{len(which):,} cluster(s) of {rule.cluster_noun} {what} {place}: {n_drop:,} duplicate {what} "
-               f"({n_tokens:,} {unit}) to drop, {int(sizes[which].sum()):,} {what} in all. {rule.method_note(int(scan.domains[members[starts[which[0]]]]))} "
-               f"Largest first: " + " ".join(lines))
+               f"({n_tokens:,} {unit}) to drop, {int(sizes[which].sum()):,} {what} in all. "
+               f"{rule.method_note(domain)} Largest first: " + " ".join(lines))
     if len(which) > TOP_CLUSTERS:
-        message += (f" {len(which) - TOP_CLUSTERS:,} more cluster(s) are listed in the SARIF/JSON evidence "
-                    f"({'clusters' if len(listed) == len(which) else f'the first {len(listed):,} of them'}) "
-                    "and all in the drop list.")
+        listed_note = "all of them" if len(listed) == len(which) else \
+            f"the first {len(listed):,}; max_clusters under [rule.{rule.id}] lists more"
+        message += (f" {len(which) - TOP_CLUSTERS:,} more cluster(s) are in the SARIF/JSON evidence "
+                    f"(clusterList: {listed_note}) and all in the drop list.")
     message += " --drop-list FILE writes each copy to drop with its cluster, the copy kept and why."
     finding = scan.group_finding(rule, member_ids, kind, message, cap, clusters=int(len(which)),
                                  duplicates=n_drop, **{"duplicateTokens" if unit == "tokens" else
