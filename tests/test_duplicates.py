@@ -972,3 +972,26 @@ def test_a_candidate_below_the_threshold_is_not_reported(tmp_path):
     # Just above the exact value: the pair is still a candidate (it shares many bands), but not reported.
     report = run("v.parquet", only=("near-duplicate",), rule={"near-duplicate": {"threshold": exact + 0.0005}})
     assert findings(report, "near-duplicate") == [] and report.metrics["nearDuplicates"]["verifiedPairs"] == 0
+
+
+def test_a_sampled_scan_compares_only_documents_read_whole(tmp_path):
+    """With --sample, row groups are skipped: a document that runs into a skipped row group is a fragment and is
+    not compared; every document reported starts where the packing put one and has its full length."""
+    from corpuscle.engine.sampling import Sample
+    from tests.shards import pack
+
+    rng = np.random.default_rng(17)
+    docs, _ = packed_corpus(rng)
+    paths = [write(f"s/{name}.parquet", {"input_ids": pack(docs[name], 97, eos=EOS, pad=0,
+                                                             positions=False)["input_ids"]}, row_group_size=4)
+             for name in ("a", "b")]
+    report = scan(paths, Settings(only=RULES, eos_id=EOS, pad_id=0), jobs=1, sample=Sample(0.5, seed=3))
+    truth = {(f"s/{name}.parquet", *rc): len(d) + 1 for name in docs
+             for rc, d in zip(starts_of(docs[name], 97), docs[name])}
+    members_seen = [m for rule in RULES for f in findings(report, rule) for c in f.evidence["clusterList"]
+                    for m in [c["kept"], *c["others"]]]
+    assert members_seen  # some clusters lie wholly in the row groups read
+    for m in members_seen:
+        assert truth[(m["uri"], m["row"], m["offset"])] == m["length"], m
+    full = scan(paths, Settings(only=RULES, eos_id=EOS, pad_id=0), jobs=1)
+    assert report.metrics["exactDuplicates"]["windows"] < full.metrics["exactDuplicates"]["windows"]

@@ -68,13 +68,25 @@ class DocumentStream:
 
     def __init__(self):
         self._open: _Open | None = None
+        self._next_row = 0
         self.over_limit = 0
+        self.fragments = 0
 
     def add(self, batch: Batch, settings, arrangement: str) -> tuple[Units, Windows]:
         carry = self._open
+        # A batch that does not follow on from the previous one (a sampled scan skipped rows, or a record between
+        # them could not be read): the document open before it, and the tokens before its first document start,
+        # are fragments of documents whose other part was not read. They are not compared.
+        follows = not len(batch) or int(batch.rows[0]) == self._next_row
+        if len(batch):
+            self._next_row = int(batch.rows[-1]) + 1
+        if not follows:
+            self.fragments += carry is not None and carry is not FRAGMENT
+            carry = FRAGMENT
         key = ("dedup-units", arrangement, settings.tokens_column, settings.mask_column, settings.positions_column,
                settings.eos_id, settings.bos_id, settings.pad_id, settings.separator,
-               None if carry is None else (carry.row, carry.offset, carry.length, id(carry.pieces)))
+               None if carry is None else "fragment" if carry is FRAGMENT else
+               (carry.row, carry.offset, carry.length, id(carry.pieces)))
         units, windows, after, over = batch.memo(key, lambda: _step(batch, settings, arrangement, carry))
         self._open = after
         self.over_limit += over
@@ -84,7 +96,7 @@ class DocumentStream:
         """The document open at the shard's end (complete: a shard never continues into the next one). Two
         streams closing the same open document get the same arrays (kept on it)."""
         carry, self._open = self._open, None
-        if carry is None or not carry.kept:
+        if carry is None or carry is FRAGMENT or not carry.kept:
             units = _empty_units()
             return units, as_windows(units, np.zeros((0, 2), dtype=np.uint64))
         self.over_limit += carry.length > carry.kept
@@ -126,6 +138,10 @@ class _Open:
         return _Open(self.row, self.offset, self.length + len(tokens), kept, pieces)
 
 
+#: The open "document" after rows that were not read: a fragment, carried only to be left out when it closes.
+FRAGMENT = _Open(-1, -1, 0, 0, ())
+
+
 def as_words(values: np.ndarray) -> np.ndarray:
     """Token ids modulo 2**32 as uint64 (the same ids stored as int32 or int64 give the same words)."""
     out = np.empty(len(values), dtype=np.uint64)
@@ -157,7 +173,7 @@ def _step(batch: Batch, settings, arrangement: str, carry: "_Open | None"):
         return _Open(int(row[0]), int(off[0]), 0, 0, ())
 
     if not docs.closes:  # no document starts in this batch: it all continues the open one
-        if total:
+        if total and carry is not FRAGMENT:
             carry = (carry or opened_here()).extended(values)
         return empty[0], as_windows(*empty), carry, 0
     starts = np.asarray(docs.starts, dtype=np.int64)
@@ -177,7 +193,7 @@ def _step(batch: Batch, settings, arrangement: str, carry: "_Open | None"):
     # The document open before this batch ends where the first document of the batch starts: the first unit.
     if head_end > 0 and carry is None:
         carry = opened_here()
-    if carry is not None:
+    if carry is not None and carry is not FRAGMENT:
         closing = carry.extended(values[:head_end])
         first = closing.tokens()
         over += int(closing.length > closing.kept)
