@@ -995,3 +995,14 @@ def test_a_sampled_scan_compares_only_documents_read_whole(tmp_path):
         assert truth[(m["uri"], m["row"], m["offset"])] == m["length"], m
     full = scan(paths, Settings(only=RULES, eos_id=EOS, pad_id=0), jobs=1)
     assert report.metrics["exactDuplicates"]["windows"] < full.metrics["exactDuplicates"]["windows"]
+    # Every unit the rule kept of a sampled shard is a whole document: its first token and length as packed.
+    from corpuscle.engine.scan import scan_shard
+    from corpuscle.io.sources import discover
+    from corpuscle.rules.duplicates import ExactDuplicate
+
+    shard = discover(["s/a.parquet"])[0]
+    state = scan_shard(shard, Settings(eos_id=EOS, pad_id=0), [ExactDuplicate()],
+                       sample=Sample(0.5, seed=3)).states["exact-duplicate"]
+    units = list(zip(state.rows.tolist(), state.offsets.tolist(), state.lengths.tolist()))
+    assert 0 < len(units) < len(docs["a"])
+    assert all(truth[("s/a.parquet", row, offset)] == length for row, offset, length in units), units

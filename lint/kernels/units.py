@@ -71,6 +71,7 @@ class DocumentStream:
         self._next_row = 0
         self.over_limit = 0
         self.fragments = 0
+        self.gapped = False  # rows were skipped: the shard's last rows may not have been read either
 
     def add(self, batch: Batch, settings, arrangement: str) -> tuple[Units, Windows]:
         carry = self._open
@@ -82,6 +83,7 @@ class DocumentStream:
             self._next_row = int(batch.rows[-1]) + 1
         if not follows:
             self.fragments += carry is not None and carry is not FRAGMENT
+            self.gapped = True
             carry = FRAGMENT
         key = ("dedup-units", arrangement, settings.tokens_column, settings.mask_column, settings.positions_column,
                settings.eos_id, settings.bos_id, settings.pad_id, settings.separator,
@@ -93,10 +95,11 @@ class DocumentStream:
         return units, windows
 
     def close(self) -> tuple[Units, Windows]:
-        """The document open at the shard's end (complete: a shard never continues into the next one). Two
+        """The document open at the shard's end (complete: a shard never continues into the next one; but when
+        rows were skipped -- a sampled scan -- the rows after it may have been too, so it is left out then). Two
         streams closing the same open document get the same arrays (kept on it)."""
         carry, self._open = self._open, None
-        if carry is None or carry is FRAGMENT or not carry.kept:
+        if carry is None or carry is FRAGMENT or not carry.kept or self.gapped:
             units = _empty_units()
             return units, as_windows(units, np.zeros((0, 2), dtype=np.uint64))
         self.over_limit += carry.length > carry.kept
