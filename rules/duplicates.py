@@ -1,22 +1,27 @@
-"""Duplicate windows and documents across the whole scan: exact copies and near-duplicates.
+"""Duplicate documents (or windows) across the whole scan: exact copies and near-duplicates.
 
 A duplicate is content the model sees more than once per epoch: it is weighted as if it were several examples,
 it is memorised more readily, and it spends budget that unseen text would have used. Two rules look for it:
 
-* ``exact-duplicate``: windows (or documents) whose content is identical;
-* ``near-duplicate``: windows whose shingle sets are similar above a threshold, estimated with MinHash and
-  locality-sensitive hashing (:mod:`corpuscle.kernels.minhash`, :mod:`corpuscle.kernels.lsh`) -- a statistical estimate, and the findings
-  say so.
+* ``exact-duplicate``: units whose content is identical;
+* ``near-duplicate``: units whose shingle sets have a Jaccard similarity at or above a threshold: candidates found
+  with MinHash and locality-sensitive hashing (:mod:`corpuscle.kernels.minhash`, :mod:`corpuscle.kernels.lsh`),
+  a heuristic search, then verified against the exact Jaccard similarity of the stored shingle hashes.
 
-Windows
-    In a tokenized shard every row of the tokens column (``tokens_column``) is a window; in a text shard (no
-    tokens column) every document of the text column (``text_column``). Empty windows -- no tokens, or null or
-    empty text -- are left to ``empty-document``; a document with bytes but no words (punctuation only) has no
-    shingles and takes part in ``exact-duplicate`` only. Windows are compared as stored, padding included (a run
-    of padding adds one shingle to a window's shingle set, so it hardly moves a Jaccard similarity).
+Units (the ``unit`` option)
+    ``"document"`` (the default): in a tokenized shard, the documents of the document reading
+    (:mod:`corpuscle.kernels.documents`: separators, position restarts, one per row), over the real tokens, carried
+    across rows and batches by :class:`corpuscle.kernels.units.DocumentStream` and located by their first token
+    (row, offset) and length. ``"window"``: every row of the tokens column as stored, padding included. In a text
+    shard (no tokens column) every document of the text column (``text_column``), either way. Empty units -- no
+    tokens, or null or empty text -- are left to ``empty-document``; a document with bytes but no words
+    (punctuation only) has no shingles and takes part in ``exact-duplicate`` only. The code below calls every unit
+    a "window" (its arrays and ids predate documents).
 
 Content hash (``exact-duplicate``, and ``near-duplicate`` to fold exact copies)
-    A window is a vector of 32-bit words: its token ids modulo 2**32 (so the same ids stored as int32 or int64
+    Token documents: :func:`corpuscle.kernels.hashing.document_hashes` (two polynomial lanes over the ids, from
+    running sums over the whole batch). Rows and text documents: a window is a vector of 32-bit words: its token
+    ids modulo 2**32 (so the same ids stored as int32 or int64
     hash the same; ids that differ by a multiple of 2**32 -- never valid ids -- alias), or the bytes of its
     UTF-8 text exactly as stored (no normalization: text that differs only in Unicode normalization or
     whitespace is not an exact copy; the near-duplicate rule, which lowercases and splits into words, sees it).
@@ -35,29 +40,35 @@ Content hash (``exact-duplicate``, and ``near-duplicate`` to fold exact copies)
     over the words otherwise; no Python loop per window.
 
 Near-duplicates
-    Each window's shingles (``n`` consecutive tokens, or ``n`` consecutive words after lowercasing; a window
-    shorter than ``n`` is one shingle) get a MinHash signature of ``num_perm`` values (:mod:`corpuscle.kernels.minhash`), cut
-    into ``b`` bands of ``r`` values with ``(b, r) = optimal_bands(threshold, num_perm)``. The signatures go to a
+    Each unit's shingles (``n`` consecutive tokens, or ``n`` consecutive words after lowercasing; a unit shorter
+    than ``n`` is one shingle; token documents are shingled with the multilinear family,
+    :func:`~corpuscle.kernels.minhash.multilinear_shingle_hashes`) are stored for the verification
+    (:class:`~corpuscle.kernels.spill.ShingleSpill`, 4 bytes per shingle), and a consistent sample of them
+    (:func:`~corpuscle.kernels.minhash.sample_shingles`: one in ``shingle_sample``, at least :data:`SAMPLE_LEAST`
+    a unit) gets a MinHash signature of ``num_perm`` values, cut into ``b`` bands of ``r`` values with
+    ``(b, r) = optimal_bands(threshold, num_perm, RECALL_WEIGHTS)`` (datasketch's default weights when
+    ``verify = false``). The signatures go to a
     temporary ``.npy`` file per shard (see :class:`SignatureSpill`); at the end of the shard the ``b`` band keys
     and a signature digest of every window are made from it into a second file (:class:`BandSpill`), which the
     state holds as memory maps. Every window has a global id in scan order (the shard's offset plus its index
     within the shard). The band keys are grouped by key in a partitioned shuffle (the rule is ``keyed``, see
     :mod:`corpuscle.rules.api`): ``partition`` splits a shard's keys by key modulo the number of partitions, and
     ``reduce_partition`` groups one partition's keys from all shards (:func:`corpuscle.kernels.lsh.partition_candidates`) and
-    verifies its candidate pairs by their estimated Jaccard similarity (signatures read back from the files a chunk
-    of pairs at a time, see :func:`read_rows`).
+    verifies its candidate pairs by the exact Jaccard similarity of their shingle sets (the shingle hashes read
+    back from the shards' files a chunk of pairs at a time, :func:`corpuscle.kernels.lsh.exact_jaccard`), or, with
+    ``verify = false``, estimates it from their signatures (:func:`read_rows`).
     Locally this runs in one process; on a cluster the keys stay on the workers and only the candidate pairs come
     back. The reduce step (``corpus``) folds exact copies into their first copy (a pair is kept when both ends
     are first copies), counts each pair once, and joins the pairs at or above the threshold into clusters
-    (:func:`corpuscle.kernels.lsh.clusters`). A cluster's representative is its first window in scan order. The result is the
-    same for any number of partitions.
+    (:func:`corpuscle.kernels.lsh.clusters`). The result is the same for any number of partitions.
 
-Exact copies inside near-duplicate clusters
-    Identical windows are reported by ``exact-duplicate`` only. A near-duplicate cluster is made of *distinct*
-    contents (at least two), each listed once by its first copy; the finding counts the further exact copies of
-    its members (``exactCopies``) and points to ``exact-duplicate`` for them. The drop list of ``near-duplicate``
-    still holds every window of the cluster but the representative, exact copies included, so that running
-    either rule alone and dropping its list removes what it reports.
+Clusters, the keep policy and the findings
+    A near-duplicate cluster holds at least two *distinct* contents; its members are all their units, exact copies
+    included (counted as ``exactCopies``), so that running either rule alone and dropping its list removes what it
+    reports. Each cluster keeps one member by the keep policy (:mod:`corpuscle.kernels.keep`: ``prefer`` globs,
+    then ``keep`` first or longest, then scan order; ``protect`` globs are never dropped); the drop list names
+    every other member with its cluster, the kept copy and why. The findings are one per rule and shard, shard
+    pair or "across shards" (:func:`_cluster_findings`), the largest clusters first.
 
 Temporary files
     The signature files live in one folder per scan, ``corpuscle-minhash-<random>`` under the option
@@ -74,9 +85,10 @@ Temporary files
     :meth:`NearDuplicate._spill`).
 
 Memory
-    What a scan holds grows with the number of windows only by what the corpus-wide steps need of each window:
-    the row (4 bytes while rows fit in 32 bits), the length (4), the domain (1) and the content hash (16) -- 25
-    bytes per window, held once when both rules run (they share the arrays of each batch, see :func:`_joined`).
+    What a scan holds grows with the number of units only by what the corpus-wide steps need of each unit:
+    the row (4 bytes while rows fit in 32 bits), the offset (4), the length (4), the domain (1) and the content
+    hash (16) -- 29 bytes per unit, held once when both rules run (they share the arrays of each batch, see
+    :func:`corpuscle.kernels.bands.joined`); and the open document's tokens while it is open.
     The band keys and digests stay on disk; the reduce reads them a block or a partition at a time (a partition's
     entries are 24 bytes per band key that falls into it, about ``24 * b / partitions`` bytes per window), and the
     grouping of exact copies (:class:`ScanWindows`) adds about 30 bytes per window while it runs. Everything else
@@ -89,36 +101,65 @@ import copy
 import os
 import shutil
 import tempfile
-import threading
 import uuid
 import weakref
-from dataclasses import dataclass
 
 import numpy as np
 import pyarrow.compute as pc
 from corpuscle.findings import Finding, Level
+from corpuscle.kernels.bands import BandPiece, NearPartial, ScanWindows, ShardBands
+from corpuscle.kernels.bands import band_file as _band_file  # noqa: F401 (tests reach it here)
+from corpuscle.kernels.bands import first_copies as _first_copies
+from corpuscle.kernels.bands import joined as _joined
+from corpuscle.kernels.bands import ranges as _ranges
+from corpuscle.kernels.documents import infer_arrangement
 from corpuscle.kernels.hashing import hex_digest
 from corpuscle.kernels.histogram import histogram, log_edges
+from corpuscle.kernels.keep import KeepPolicy
 from corpuscle.kernels.lsh import (
     DEFAULT_MAX_BUCKET,
     Candidates,
     band_keys,
     clusters,
     estimated_jaccard,
+    exact_jaccard,
     optimal_bands,
     partition_candidates,
     signature_digests,
+    unique_sets,
 )
-from corpuscle.kernels.minhash import MinHashSettings, shingle_hashes, signatures, word_shingle_hashes
-from corpuscle.kernels.spill import BandSpill, SignatureSpill, npy_blocks, npy_layout, read_rows
+from corpuscle.kernels.minhash import (
+    MinHashSettings,
+    multilinear_shingle_hashes,
+    sample_shingles,
+    shingle_hashes,
+    signatures,
+    word_shingle_hashes,
+)
+from corpuscle.kernels.spill import (
+    BandSpill,
+    ShingleEndsSpill,
+    ShingleSpill,
+    SignatureSpill,
+    npy_blocks,
+    read_rows,
+    read_shingle_sets,
+)
 from corpuscle.kernels.text import document_text
-from corpuscle.kernels.windows import TOKENS, Windows, batch_windows, window_domain
-from corpuscle.rules.api import CorpusResult, Rule, ShardState, share
+from corpuscle.kernels.units import DocumentStream, Units
+from corpuscle.kernels.windows import DOCUMENTS, TOKENS, Windows, batch_windows, window_domain
+from corpuscle.rules.api import CorpusResult, Rule, share
 
 DROP_LIST = "drop-list"
 """Name of the extra output both rules give: ``[{"uri": ..., "row": ...}, ...]``, the windows to drop."""
 
 DEFAULT_MAX_CLUSTERS = 1000
+#: One shingle in this many goes into a MinHash signature (see corpuscle.kernels.minhash.sample_shingles) ...
+DEFAULT_SHINGLE_SAMPLE = 16
+#: ... and at least this many of each unit (all of a shorter one).
+SAMPLE_LEAST = 48
+#: optimal_bands weights (false positives, false negatives) when candidates are verified exactly.
+RECALL_WEIGHTS = (0.2, 0.8)
 
 # Windows per step of the MinHash signatures in feed (bounds the signature matrix of a batch).
 _SIGNATURE_WINDOWS = 8192
@@ -126,258 +167,21 @@ _SIGNATURE_WINDOWS = 8192
 _SHINGLE_VALUES = 1 << 18
 # Candidate pairs verified per step in corpus (bounds the signatures read back at once).
 _VERIFY_PAIRS = 1 << 15
-# Windows whose band keys are sorted into partitions per step (bounds the scratch memory of a partition's entries).
-_PARTITION_WINDOWS = 1 << 14
+# Candidate pairs verified exactly per step (bounds the shingle sets read back at once: ~1,000 shingles a unit).
+_EXACT_PAIRS = 1 << 11
 # Band-key entries grouped into buckets per step of a partition's reduce (bounds its scratch memory, ~14 MiB).
 _REDUCE_ENTRIES = 1 << 17
 
 
-# -- the shuffle of band keys ----------------------------------------------------------------------------------
-
-
-class BandPiece:
-    """One shard's band keys that fall into one partition: an entry per (window, band) -- the window's index in the
-    shard (``window``, int64), the band key (``keys``, uint64) and the window's signature digest (``digests``,
-    uint64), in window then band order; ``windows`` is the shard's count of windows (for global ids) and
-    ``signatures`` the path of its signature file.
-
-    :meth:`NearDuplicate.partition` makes a shard's pieces as views of its band keys (a :class:`ShardBands` and a
-    partition number): a piece picks its entries when they are asked for (:meth:`entries`, a chunk of windows at a
-    time) and does not keep them, so the pieces waiting in memory for the reduce add nothing to the band keys the
-    shard's state holds. A piece that is pickled -- sent to the process that reduces its partition -- carries its
-    own entries only. A piece made with ``entries`` holds them (e.g. memory maps of spilled files)."""
-
-    def __init__(self, windows: int, signatures: str | None, entries: tuple | None = None,
-                 source: "ShardBands | None" = None, part: int = 0):
-        if (entries is None) == (source is None):
-            raise ValueError("a BandPiece takes either its entries or the ShardBands it picks them from")
-        self.windows = windows
-        self.signatures = signatures
-        self._entries = entries
-        self._source = source
-        self._part = part
-
-    def entries(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """``(window, keys, digests)`` of the piece's entries."""
-        if self._entries is not None:
-            return self._entries
-        return self._source.pick(self._part)
-
-    @property
-    def count(self) -> int:
-        """The number of entries (without picking them)."""
-        return len(self._entries[0]) if self._entries is not None else int(self._source.counts[self._part])
-
-    @property
-    def nbytes(self) -> int:
-        """Bytes of the entries once picked: 8 each for window, key and digest."""
-        return sum(a.nbytes for a in self._entries) if self._entries is not None else 24 * self.count
-
-    window = property(lambda self: self.entries()[0])
-    keys = property(lambda self: self.entries()[1])
-    digests = property(lambda self: self.entries()[2])
-
-    def __getstate__(self):
-        return {"windows": self.windows, "signatures": self.signatures, "_entries": self.entries(),
-                "_source": None, "_part": 0}
-
-    def __setstate__(self, state):
-        self.__dict__.update(state)
-
-
-class ShardBands:
-    """The band keys of one shard's windows, to be cut into partitions by key modulo ``parts``: ``keys`` (windows,
-    bands) and ``digests`` as in the shard's state, ``firsts`` the sorted indices of the windows that take part
-    (None: all of them). ``counts[p]`` is the number of entries of partition ``p``.
-
-    When ``keys`` and ``digests`` are the memory maps of a band file that :meth:`NearDuplicate.end` made, the file
-    is read instead, a block at a time into one buffer: reading the maps would make their pages count in this
-    process's memory for as long as the state lives. Other arrays (e.g. a state that came from another process)
-    are read as they are."""
-
-    def __init__(self, keys: np.ndarray, digests: np.ndarray, firsts: np.ndarray | None, parts: int):
-        self.path = _band_file(keys, digests)
-        self.keys, self.digests = (None, None) if self.path else (keys, digests)
-        self.bands, self.firsts, self.parts = keys.shape[1], firsts, parts
-        self.counts = np.zeros(parts, dtype=np.int64)
-        for _, chunk, _ in self._chunks():
-            self.counts += np.bincount((chunk % np.uint64(parts)).ravel().astype(np.intp), minlength=parts)
-
-    def _chunks(self):
-        """``(window indices, their band keys, their digests)``, a chunk of windows at a time (views that the next
-        chunk may overwrite)."""
-        firsts = self.firsts
-        if self.path is not None:
-            for lo, block in npy_blocks(self.path):
-                if firsts is None:
-                    yield np.arange(lo, lo + len(block)), block[:, :self.bands], block[:, self.bands]
-                    continue
-                a, z = np.searchsorted(firsts, [lo, lo + len(block)])
-                rows = block[firsts[a:z] - lo]
-                yield firsts[a:z], rows[:, :self.bands], rows[:, self.bands]
-            return
-        total = len(self.keys) if firsts is None else len(firsts)
-        for lo in range(0, total, _PARTITION_WINDOWS):
-            hi = min(total, lo + _PARTITION_WINDOWS)
-            if firsts is None:
-                yield np.arange(lo, hi), self.keys[lo:hi], self.digests[lo:hi]
-            else:
-                yield firsts[lo:hi], self.keys[firsts[lo:hi]], self.digests[firsts[lo:hi]]
-
-    def pick(self, part: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """``(window, keys, digests)`` of the entries whose key is ``part`` modulo ``parts``, in window then band
-        order."""
-        count = int(self.counts[part])
-        window = np.empty(count, dtype=np.int64)
-        keys = np.empty(count, dtype=np.uint64)
-        digests = np.empty(count, dtype=np.uint64)
-        at = 0
-        for windows, chunk, chunk_digests in self._chunks():
-            which, band = np.nonzero(chunk % np.uint64(self.parts) == np.uint64(part))
-            end = at + len(which)
-            window[at:end], keys[at:end], digests[at:end] = windows[which], chunk[which, band], chunk_digests[which]
-            at = end
-        return window, keys, digests
-
-
-def _band_file(keys: np.ndarray, digests: np.ndarray) -> str | None:
-    """The path of the band file when ``keys`` and ``digests`` are its memory maps as :meth:`NearDuplicate.end`
-    makes them -- all rows; the key columns, and the digest column after them -- else None."""
-    if not (isinstance(keys, np.memmap) and isinstance(digests, np.memmap)) or keys.ndim != 2 or \
-            not keys.filename or keys.filename != digests.filename:
-        return None
-    try:
-        shape, dtype, _ = npy_layout(keys.filename)
-    except (OSError, ValueError):
-        return None
-    row = dtype.itemsize * shape[1]
-    if dtype != np.dtype("<u8") or keys.dtype != dtype or digests.dtype != dtype or \
-            shape != (len(keys), keys.shape[1] + 1) or digests.shape != (shape[0],) or \
-            keys.strides != (row, dtype.itemsize) or digests.strides != (row,):
-        return None
-    start = keys.__array_interface__["data"][0]
-    if digests.__array_interface__["data"][0] - start != dtype.itemsize * keys.shape[1]:
-        return None
-    return keys.filename
-
-
-@dataclass
-class NearPartial:
-    """What one partition gives back: its candidate pairs (global ids, possibly exact copies, possibly also found
-    by another partition), their estimated Jaccard similarity, and its bucket figures."""
-
-    pairs: np.ndarray
-    similarity: np.ndarray
-    capped_buckets: int
-    largest_bucket: int
-
-
-# -- the whole scan's windows -----------------------------------------------------------------------------------
-
-
-class ScanWindows:
-    """The windows of all shards of a scan, with global ids in scan order (shard order, then row).
-
-    Window ``i`` of the shard at position ``s`` has id ``offsets[s] + i``; :meth:`shard_of` gives the position back.
-    ``first_copy[id]`` is the id of the first window with the same content hash, so a window is an exact copy of an
-    earlier one when ``first_copy[id] != id``. ``order`` sorts the ids by content, then id; ``group_starts`` and
-    ``group_sizes`` give the start (in ``order``) and size of every run of equal content. Ids are int32 when the
-    scan has fewer than 2**31 windows; a scan of one shard uses the shard's arrays as they are (no copy).
-    """
-
-    def __init__(self, states: list[ShardState]):
-        self.states = states
-        self.offsets = np.zeros(len(states) + 1, dtype=np.int64)
-        np.cumsum([len(st.rows) for st in states], out=self.offsets[1:])
-        self.count = int(self.offsets[-1])
-        index = np.int32 if self.count < 2 ** 31 else np.int64
-
-        def joined(name, empty):
-            return _joined([getattr(st, name) for st in states], empty)
-
-        self.rows = joined("rows", np.zeros(0, np.uint32))
-        self.lengths = joined("lengths", np.zeros(0, np.uint32))
-        self.domains = joined("domains", np.zeros(0, np.uint8))
-        self.content = joined("content", np.zeros((0, 2), np.uint64))
-        # Exact copies: sort by content, then id; a run of equal content is one group, its first id the first copy.
-        order, new = _content_order(self.content)
-        self.order = order.astype(index)
-        del order
-        self.group_starts = np.flatnonzero(new).astype(index)
-        del new
-        self.group_sizes = np.diff(self.group_starts, append=index(self.count))
-        self.first_copy = np.empty(self.count, dtype=index)
-        self.first_copy[self.order] = np.repeat(self.order[self.group_starts], self.group_sizes)
-
-    def shard_of(self, windows: np.ndarray) -> np.ndarray:
-        """The position of each window's shard (in ``states``)."""
-        return np.searchsorted(self.offsets, windows, side="right") - 1
-
-    def uri(self, window: int) -> str:
-        return self.states[int(self.shard_of(window))].uri
-
-    def drop_entries(self, windows: np.ndarray) -> list[dict]:
-        """``{"uri", "row"}`` of each window id (in the order given)."""
-        uris = [st.uri for st in self.states]
-        return [{"uri": uris[s], "row": r} for s, r in zip(self.shard_of(windows).tolist(),
-                                                              self.rows[windows].tolist())]
-
-    def sizes(self, windows: np.ndarray | None = None) -> dict:
-        """Token and text-byte totals of the given windows (default: all)."""
-        lengths, domains = (self.lengths, self.domains) if windows is None else \
-            (self.lengths[windows], self.domains[windows])
-        tokens = domains == TOKENS
-        return {"tokens": int(lengths[tokens].sum(dtype=np.int64)),
-                "textBytes": int(lengths[~tokens].sum(dtype=np.int64))}
-
-    def group_finding(self, rule: Rule, members: np.ndarray, kind: str, message: str, cap: int,
-                      **evidence) -> Finding:
-        """A finding over windows of possibly several shards: instances carry the uri; members in id order."""
-        members = np.sort(members)
-        shown = members[:cap]
-        shards = np.unique(self.shard_of(members))
-        single = self.states[int(shards[0])].shard if len(shards) == 1 else None
-        finding = Finding(rule.id, rule.level, message, single.uri if single else None, kind=kind,
-                          count=int(len(members)), rows=self.rows[shown].astype(np.int64),
-                          offsets=np.full(len(shown), -1, dtype=np.int64),
-                          instance_uris=[self.states[s].uri for s in self.shard_of(shown).tolist()],
-                          truncated=len(members) > len(shown), evidence=evidence)
-        if single is not None and single.line_based:
-            finding.start_line = int(self.rows[members[0]]) + 1
-        return finding
-
-
-def _content_order(content: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """``(order, new)``: ``order`` sorts windows by content hash, equal contents in window order (the sort is
-    stable); ``new[k]`` says whether position ``k`` of ``order`` starts a run of equal content."""
-    order = np.lexsort((content[:, 1], content[:, 0]))
-    new = np.empty(len(order), dtype=bool)
-    new[:1] = True
-    for lane in (0, 1):  # one lane at a time: a sorted copy of one column, not of both
-        column = content[order, lane]
-        if lane == 0:
-            np.not_equal(column[1:], column[:-1], out=new[1:])
-        else:
-            new[1:] |= column[1:] != column[:-1]
-        del column
-    return order, new
-
-
-def _first_copies(content: np.ndarray) -> np.ndarray | None:
-    """Sorted indices of the windows whose content no earlier window has; None when that is every window."""
-    order, new = _content_order(content)
-    if new.all():
-        return None
-    return np.sort(order[new])
-
-
 def _unit(domain: int) -> tuple[str, str]:
-    """(what a window is called, what its length counts) for messages."""
+    """(what a unit is called, what its length counts) for messages."""
+    if domain == DOCUMENTS:
+        return "documents", "tokens"
     return ("windows", "tokens") if domain == TOKENS else ("documents", "UTF-8 bytes")
 
 
 def _size_evidence(domain: int, total: int, redundant: int) -> dict:
-    if domain == TOKENS:
+    if domain in (TOKENS, DOCUMENTS):
         return {"tokens": total, "redundantTokens": redundant}
     return {"textBytes": total, "redundantTextBytes": redundant}
 
@@ -395,63 +199,194 @@ def _fractions(scan: ScanWindows, duplicates: np.ndarray) -> dict:
     }
 
 
-def _ranges(bounds: np.ndarray, limit: int):
-    """Consecutive ranges ``(w0, w1)`` of the rows whose values lie between ``bounds[w]`` and ``bounds[w + 1]``:
-    each of at least one row, and of at most ``limit`` values unless its one row has more."""
-    rows = len(bounds) - 1
-    w0 = 0
-    while w0 < rows:
-        w1 = int(np.searchsorted(bounds, int(bounds[w0]) + limit, side="right")) - 1
-        w1 = min(rows, max(w1, w0 + 1))
-        yield w0, w1
-        w0 = w1
-
-
-_JOINS: dict = {}
-_JOINS_LOCK = threading.Lock()
-
-
-def _joined(parts: list, empty: np.ndarray) -> np.ndarray:
-    """The arrays of ``parts`` end to end (``empty`` when there are none), emptying the list: one array is returned
-    as it is, and otherwise the parts are let go once the result holds them.
-
-    Joining the very same array objects again (the other duplicate rule ending the same shard) gives the very same
-    result, not a copy: the two rules' per-window arrays are held once. The results are remembered by weak
-    references to them and to their parts (so nothing is kept alive here, and an entry counts only while all its
-    parts are alive: ``id`` values are not reused while their objects live); each process has its own.
-    """
-    if not parts:
-        return empty
-    if len(parts) == 1:
-        return parts.pop()
-    key = tuple(id(part) for part in parts)
-    with _JOINS_LOCK:
-        refs, result = _JOINS.get(key, ((), None))
-        out = result() if result is not None else None
-        if out is None or len(refs) != len(parts) or any(ref() is not part for ref, part in zip(refs, parts)):
-            out = np.concatenate(parts)
-            for stale in [k for k, (rs, r) in _JOINS.items() if r() is None or any(x() is None for x in rs)]:
-                del _JOINS[stale]
-            _JOINS[key] = ([weakref.ref(part) for part in parts], weakref.ref(out))
-    parts.clear()
-    return out
-
-
 def _check_int(rule_id: str, name: str, value, minimum: int, hint: str) -> int:
     if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
         raise ValueError(f"rule {rule_id}: {name} must be an integer >= {minimum}, got {value!r}; hint: {hint}")
     return value
 
 
+# -- clusters: keep policy, drop list and compact findings ------------------------------------------------------
+
+#: Clusters whose members a finding's message lists (the largest first); the others are in its evidence.
+TOP_CLUSTERS = 5
+#: Members of one listed cluster named in the message; evidence lists up to MEMBERS_LISTED of each cluster.
+MEMBERS_SHOWN = 4
+MEMBERS_LISTED = 100
+
+
+def _cluster_findings(rule, scan: ScanWindows, members: np.ndarray, labels: np.ndarray, cap: int, describe):
+    """``(findings, drop-list entries, dropped ids)`` of the clusters ``labels`` of units ``members``.
+
+    The keep policy of ``rule`` picks each cluster's kept member; every other member is dropped unless it is
+    protected. Clusters are grouped by the shards their members lie in -- one shard, a pair of shards, or more
+    ("across shards") -- and each group is one finding: the number of clusters, duplicate units and tokens, the
+    largest clusters first in the message (members named), all clusters (up to ``max_clusters``) in the evidence,
+    and every member (up to the instance cap) as its instances."""
+    if len(members) == 0:
+        return [], [], np.zeros(0, dtype=np.int64)
+    members = np.asarray(members, dtype=np.int64)
+    labels = np.asarray(labels, dtype=np.int64)
+    uris = [st.uri for st in scan.states]
+    shard = scan.shard_of(members)
+    choice = rule.policy.choose(labels, members, shard, scan.lengths[members], uris)
+    dropped_at = np.flatnonzero(choice.drop)
+    dropped = members[dropped_at]
+    kept = members[choice.kept_of]
+    # The drop list: each dropped member with its cluster, the kept copy and why.
+    entries = []
+    for i, m, k in zip(dropped_at.tolist(), dropped.tolist(), kept[dropped_at].tolist()):
+        what, unit = _unit(int(scan.domains[m]))
+        entry = scan.location(m)
+        kept_at = scan.location(k)
+        entry.update(unit=what[:-1], rule=rule.id, cluster=hex_digest(scan.content[k]),
+                     kept={"uri": kept_at["uri"], "row": kept_at["row"], "offset": kept_at["offset"]},
+                     reason=rule.policy.reason(int(choice.rank[i]), int(choice.rank[choice.kept_of[i]]),
+                                               int(scan.lengths[m]), int(scan.lengths[k]), unit))
+        entries.append(entry)
+    # Clusters by their shards: (lowest shard, highest shard, number of distinct shards).
+    order = np.lexsort((members, labels))
+    members, labels, shard, kept = members[order], labels[order], shard[order], kept[order]
+    drop_sorted = choice.drop[order]
+    starts = np.flatnonzero(np.r_[True, labels[1:] != labels[:-1]])
+    sizes = np.diff(np.append(starts, len(labels)))
+    low = np.minimum.reduceat(shard, starts)
+    high = np.maximum.reduceat(shard, starts)
+    pair_of = np.unique(np.column_stack((np.repeat(np.arange(len(starts)), sizes), shard)), axis=0)
+    spread = np.bincount(pair_of[:, 0], minlength=len(starts))
+    across = spread > 2
+    low, high = np.where(across, -1, low), np.where(across, -1, high)
+    drops = np.add.reduceat(drop_sorted.astype(np.int64), starts)
+    drop_tokens = np.add.reduceat(np.where(drop_sorted, scan.lengths[members].astype(np.int64), 0), starts)
+    findings = []
+    groups = np.unique(np.column_stack((low, high)), axis=0)
+    for lo, hi in groups.tolist():
+        which = np.flatnonzero((low == lo) & (high == hi))
+        # Largest clusters first (members), then the one whose first member comes first.
+        which = which[np.lexsort((members[starts[which]], -sizes[which]))]
+        what, unit = _unit(int(scan.domains[members[starts[which[0]]]]))
+        findings.append(_group_finding(rule, scan, which, starts, sizes, members, kept, drops, drop_tokens,
+                                       (lo, hi), cap, describe, what, unit))
+    return findings, entries, dropped
+
+
+def _group_finding(rule, scan, which, starts, sizes, members, kept, drops, drop_tokens, shards, cap, describe,
+                   what, unit) -> Finding:
+    lo, hi = shards
+    uris = [st.uri for st in scan.states]
+    named = not (lo >= 0 and lo == hi)  # within one shard, the finding names it once
+    listed = which[:rule._max_clusters()]
+    cluster_list = []
+    lines = []
+    for rank, c in enumerate(which[:max(len(listed), TOP_CLUSTERS)].tolist()):
+        ids = members[starts[c]:starts[c] + sizes[c]]
+        keeper = int(kept[starts[c]])
+        extra = describe(ids)
+        cluster = {"cluster": hex_digest(scan.content[keeper]), "members": int(sizes[c]),
+                   "dropped": int(drops[c]), "droppedTokens" if unit == "tokens" else "droppedBytes":
+                       int(drop_tokens[c]), "kept": scan.location(keeper),
+                   "others": [scan.location(m) for m in ids[:MEMBERS_LISTED + 1].tolist() if m != keeper][
+                       :MEMBERS_LISTED], **extra}
+        if sizes[c] - 1 > MEMBERS_LISTED:
+            cluster["othersTruncated"] = True
+        if rank < len(listed):
+            cluster_list.append(cluster)
+        if rank < TOP_CLUSTERS:
+            others = [scan.where(m, named) for m in ids.tolist() if m != keeper]
+            shown = ", ".join(others[:MEMBERS_SHOWN]) + (f" and {len(others) - MEMBERS_SHOWN:,} more"
+                                                         if len(others) > MEMBERS_SHOWN else "")
+            similarity = f", {extra['summary']}" if "summary" in extra else ""
+            lines.append(f"({rank + 1}) {int(sizes[c]):,} {what}{similarity}: keep {scan.where(keeper, named)} "
+                         f"({int(scan.lengths[keeper]):,} {unit}); drop {shown}.")
+    for cluster in cluster_list:
+        cluster.pop("summary", None)
+    if lo < 0:
+        place = "across three or more shards"
+        kind = f"{rule.cluster_kind}-across"
+    elif lo == hi:
+        place = f"within {uris[lo]}"
+        kind = rule.cluster_kind
+    else:
+        place = f"between {uris[lo]} and {uris[hi]}"
+        kind = f"{rule.cluster_kind}-between-{_shard_set_digest([uris[lo], uris[hi]])}"
+    n_drop, n_tokens = int(drops[which].sum()), int(drop_tokens[which].sum())
+    member_ids = members[_ragged(starts[which], sizes[which])]
+    domain = int(scan.domains[members[starts[which[0]]]])
+    message = (f"{len(which):,} cluster(s) of {rule.cluster_noun} {what} {place}: {n_drop:,} duplicate {what} "
+               f"({n_tokens:,} {unit}) to drop, {int(sizes[which].sum()):,} {what} in all. "
+               f"{rule.method_note(domain)} Largest first: " + " ".join(lines))
+    if len(which) > TOP_CLUSTERS:
+        listed_note = "all of them" if len(listed) == len(which) else \
+            f"the first {len(listed):,}; max_clusters under [rule.{rule.id}] lists more"
+        message += (f" {len(which) - TOP_CLUSTERS:,} more cluster(s) are in the SARIF/JSON evidence "
+                    f"(clusterList: {listed_note}) and all in the drop list.")
+    message += " --drop-list FILE writes each copy to drop with its cluster, the copy kept and why."
+    finding = scan.group_finding(rule, member_ids, kind, message, cap, clusters=int(len(which)),
+                                 duplicates=n_drop, **{"duplicateTokens" if unit == "tokens" else
+                                                       "duplicateBytes": n_tokens},
+                                 unit=what[:-1], clusterList=cluster_list,
+                                 clustersTruncated=bool(len(listed) < len(which)),
+                                 **rule.evidence())
+    if lo >= 0 and lo == hi:
+        finding.uri = uris[lo]
+    return finding
+
+
+def _ragged(starts: np.ndarray, sizes: np.ndarray) -> np.ndarray:
+    """The positions ``starts[i] .. starts[i] + sizes[i] - 1`` of every range, back to back."""
+    sizes = np.asarray(sizes, dtype=np.int64)
+    first = np.cumsum(sizes) - sizes
+    return np.arange(int(sizes.sum()), dtype=np.int64) + np.repeat(np.asarray(starts, dtype=np.int64) - first, sizes)
+
+
+def _over_limit(states) -> dict:
+    """Documents compared by their first tokens only, and how the documents of token shards were read."""
+    out = {}
+    over = sum(int(st.stats.get("documentsOverLimit", 0)) for st in states)
+    if over:
+        out["documentsOverLimit"] = over
+    reading: dict = {}
+    for st in states:
+        found = getattr(st, "reading", None)
+        if found:
+            entry = reading.setdefault(found[0], {"shards": 0, "why": found[1]})
+            entry["shards"] += 1
+    if reading:
+        out["documentReading"] = reading  # arrangement -> shards read so, and the reason of the first
+    return out
+
+
+def _shard_set_digest(uris: list[str]) -> str:
+    import hashlib
+
+    return hashlib.sha256("\x1f".join(uris).encode()).hexdigest()[:12]
+
+
 # -- the rules --------------------------------------------------------------------------------------------------
 
 
+UNITS = ("document", "window")
+
+#: Options both rules take: the unit compared in token shards and the keep policy (see corpuscle.kernels.keep).
+COMMON_OPTIONS = {"unit": "document", "keep": "first", "prefer": [], "protect": []}
+
+
 class _DuplicateRule(Rule):
-    """Shared by both rules: the windows of a batch and the per-shard arrays of them."""
+    """Shared by both rules: the units of a batch (documents or windows) and the per-shard arrays of them."""
 
     needs = {"tokens_column": "int-list", "text_column": "text"}  # either of them: see missing()
     needs_any = True
     outputs = (DROP_LIST,)
+
+    def __init__(self, **options):
+        super().__init__(**options)
+        unit = self.opts["unit"]
+        if unit not in UNITS:
+            raise ValueError(f"rule {self.id}: unit must be \"document\" or \"window\", got {unit!r}; hint: "
+                             "\"document\" compares the documents packed in token rows, \"window\" whole rows")
+        self.policy = KeepPolicy.from_options(self.id, self.opts)
+        # Documents open at a cut would have to be carried between the parts of a split shard: in document mode a
+        # large shard is scanned whole by one process (window mode joins parts, see merge).
+        self.splittable = unit == "window"
 
     def missing(self, batch, settings):
         """Either column is enough: token rows when the shard has them, documents otherwise."""
@@ -460,16 +395,47 @@ class _DuplicateRule(Rule):
         return (f"neither a token column {settings.tokens_column!r} (integer lists) nor a text column "
                 f"{settings.text_column!r} (strings); one of them is needed")
 
+    def infer(self, batch, settings):
+        if self.opts["unit"] != "document" or window_domain(batch, settings) != TOKENS or not len(batch):
+            return None
+        return infer_arrangement(batch, settings)
+
     def begin(self, shard, settings):
         state = super().begin(shard, settings)
-        state.parts = {"rows": [], "lengths": [], "domains": [], "content": []}
+        state.parts = {"rows": [], "offsets": [], "lengths": [], "domains": [], "content": []}
+        state.stream = None
+        state.arrangement = None
         return state
 
+    def _units(self, state, batch) -> "tuple[Windows, Units | None]":
+        """The units of a batch: its windows (rows or text documents), or the token documents complete after it
+        (with their tokens, for shingles)."""
+        settings = state.settings
+        if self.opts["unit"] == "window" or window_domain(batch, settings) != TOKENS:
+            return batch_windows(batch, settings), None
+        if state.stream is None:
+            state.stream = DocumentStream()
+            state.arrangement, state.reading = state.inferred or infer_arrangement(batch, settings)
+        units, windows = state.stream.add(batch, settings, state.arrangement)
+        return windows, units
+
+    def _closing(self, state) -> "tuple[Windows, Units] | None":
+        """The document open at the end of the shard, as units."""
+        stream = state.__dict__.pop("stream", None)
+        arrangement = state.__dict__.pop("arrangement", None)
+        # How the documents were read (a heuristic when inferred), for the corpus figures.
+        state.reading = (arrangement, state.__dict__.pop("reading", "")) if arrangement else None
+        if stream is None:
+            return None
+        units, windows = stream.close()
+        state.count(documentsOverLimit=stream.over_limit)
+        return (windows, units) if len(units) else None
+
     def _keep(self, state, windows: Windows, select: np.ndarray | None = None) -> None:
-        """Keep the rows, lengths, domains and content hashes of the batch's windows (or of ``select`` of them).
-        When all of them are kept, the batch's own arrays are kept: both rules of this module hold the same arrays
-        then, and :meth:`end` joins them into arrays the two states share (see :func:`_joined`)."""
-        names = ("rows", "lengths", "content", "domains")
+        """Keep the rows, offsets, lengths, domains and content hashes of the batch's units (or of ``select`` of
+        them). When all of them are kept, the batch's own arrays are kept: both rules of this module hold the same
+        arrays then, and :meth:`end` joins them into arrays the two states share (see :func:`_joined`)."""
+        names = ("rows", "offsets", "lengths", "content", "domains")
         if select is not None and len(select) < len(windows.local):
             for name in names:
                 state.parts[name].append(getattr(windows, name)[select])
@@ -483,25 +449,36 @@ class _DuplicateRule(Rule):
         # array twice, not the whole state. The arrays may be shared with the other rule's state: they are never
         # changed in place.
         state.rows = _joined(parts.pop("rows"), np.zeros(0, np.uint32))
+        state.offsets = _joined(parts.pop("offsets"), np.zeros(0, np.uint32))
         state.lengths = _joined(parts.pop("lengths"), np.zeros(0, np.uint32))
         state.domains = _joined(parts.pop("domains"), np.zeros(0, np.uint8))
         state.content = _joined(parts.pop("content"), np.zeros((0, 2), np.uint64))
         return state
 
-    splittable = True
+    #: By default (unit = "document") a large shard is scanned whole; with unit = "window" it may be split (set per
+    #: instance in __init__).
+    splittable = False
 
     def merge(self, first, second):
-        """The windows of both parts, ``first``'s then ``second``'s (one window per row: nothing spans a cut).
-        ``near-duplicate`` joins its parts after the shuffle has taken their band keys (each part's piece gives its
-        windows the ids that follow on from the previous part's), so only the window tables are joined here."""
+        """The windows of both parts, ``first``'s then ``second``'s (one window per row: nothing spans a cut; only
+        window mode splits). ``near-duplicate`` joins its parts after the shuffle has taken their band keys (each
+        part's piece gives its windows the ids that follow on from the previous part's), so only the window tables
+        are joined here."""
         merged = super().merge(first, second)
-        for name in ("rows", "lengths", "domains", "content"):
+        for name in ("rows", "offsets", "lengths", "domains", "content"):
             setattr(merged, name, np.concatenate([getattr(first, name), getattr(second, name)]))
         return merged
 
     def _max_clusters(self) -> int:
         return _check_int(self.id, "max_clusters", self.opts["max_clusters"], 0,
-                          f"findings listed before one summary finding; the default is {DEFAULT_MAX_CLUSTERS}")
+                          f"clusters listed with their members in each finding; the default is {DEFAULT_MAX_CLUSTERS}")
+
+    def _clusters_result(self, scan: "ScanWindows", members: np.ndarray, labels: np.ndarray, cap: int,
+                         describe) -> tuple[list, list, np.ndarray]:
+        """Findings (one per shard, shard pair, or across shards), drop-list entries and the dropped ids of the
+        clusters given as ``members`` (unit ids) with their cluster ``labels``; ``describe(label, ids)`` gives
+        evidence of one cluster (e.g. its similarity)."""
+        return _cluster_findings(self, scan, members, labels, cap, describe)
 
 
 def cluster_sizes(sizes) -> dict:
@@ -517,104 +494,105 @@ def cluster_sizes(sizes) -> dict:
 
 
 class ExactDuplicate(_DuplicateRule):
-    """Windows (token rows) or documents (text) whose content is identical, within a shard or across shards.
-    Every extra copy is trained on once more per epoch: it weights that content as several examples, makes
-    verbatim memorisation more likely, and spends tokens that new text would have used; copies that straddle a
-    train/validation split also inflate evaluation. Content is compared by a 128-bit hash of the token ids, or
-    of the document's UTF-8 bytes exactly as stored (no normalization); the chance that two different windows
-    share it is about 2**-128 (see the module notes of rules/duplicates.py). Empty windows are left to
-    empty-document."""
+    """Documents (or windows) whose content is identical, within a shard or across shards. Every extra copy is
+    trained on once more per epoch: it weights that content as several examples, makes verbatim memorisation more
+    likely, and spends tokens that new text would have used; copies that straddle a train/validation split also
+    inflate evaluation. In token shards the unit is the document as the document reading finds it (separators,
+    position restarts, one per row; spanning rows, batches and shards), located by its first token (row, offset)
+    and its length; with unit = "window" it is the whole row. Content is compared by a 128-bit hash of the token
+    ids, or of a text document's UTF-8 bytes exactly as stored (no normalization); see the module notes of
+    rules/duplicates.py for its collision figures. Empty units are left to empty-document."""
 
     id = "exact-duplicate"
     level = Level.warning
-    summary = "Identical windows (the same token ids) or byte-identical documents, within a shard or across shards."
+    summary = "Identical documents (or windows): the same token ids or the same bytes, within or across shards."
     kinds = {
-        "copies-*": "one group of identical windows or documents (its content hash after the dash)",
-        "more-groups": "the groups beyond the listed maximum",
+        "copies": "the groups of identical documents or windows within one shard",
+        "copies-between-*": "the groups of identical documents or windows spread over two shards (digest of both)",
+        "copies-across": "the groups of identical documents or windows spread over three or more shards",
     }
-    help = ("Keep the first copy of each group (scan order: shard order, then row) and drop the others: "
-            "`corpuscle scan ... --drop-list FILE` writes one JSON line {\"uri\", \"row\"} per window to drop. "
-            "Deduplicate before packing and tokenizing, and across every shard that goes into one run.")
-    options = {"max_clusters": DEFAULT_MAX_CLUSTERS}
+    help = ("Keep one copy of each group and drop the others: `corpuscle scan ... --drop-list FILE` writes one "
+            "JSON line per copy to drop (uri, row, offset, length, the group, the copy kept and why). Choose the "
+            "copy to keep with keep = \"first\" | \"longest\", prefer = [path globs, best first] and protect = "
+            "[path globs never dropped] under [rule.exact-duplicate]. Deduplicate before packing and tokenizing, and "
+            "across every shard that goes into one run.")
+    options = {"max_clusters": DEFAULT_MAX_CLUSTERS, **COMMON_OPTIONS}
+    cluster_kind = "copies"
+    cluster_noun = "identical"
 
     def __init__(self, **options):
         super().__init__(**options)
         self._max_clusters()
 
+    def method_note(self, domain: int) -> str:
+        what = "text bytes" if domain == 1 else "token ids"
+        return f"Compared by a 128-bit content hash of the {what}."
+
+    def evidence(self) -> dict:
+        return {"method": "128-bit content hash"}
+
     def feed(self, state, batch):
-        self._keep(state, batch_windows(batch, state.settings))
+        windows, _ = self._units(state, batch)
+        self._keep(state, windows)
+
+    def end(self, state):
+        closing = self._closing(state)
+        if closing is not None:
+            self._keep(state, closing[0])
+        return super().end(state)
 
     def corpus(self, states):
         scan = ScanWindows(states)
         cap = states[0].cap if states else 0
         sizes, starts = scan.group_sizes, scan.group_starts
         repeated = np.flatnonzero(sizes >= 2)
-        # Largest groups first, then the one whose first copy comes first.
-        first = scan.order[starts[repeated]]
-        repeated = repeated[np.lexsort((first, -sizes[repeated]))]
-        listed = repeated[:self._max_clusters()]
-        findings = []
-        for g in listed.tolist():
-            members = scan.order[starts[g]:starts[g] + sizes[g]]
-            findings.append(self._group(scan, members, cap))
-        if len(repeated) > len(listed):
-            findings.append(self._rest(scan, repeated[len(listed):], cap))
-        copies = np.flatnonzero(scan.first_copy != np.arange(scan.count, dtype=scan.first_copy.dtype))
-        metrics = {"exactDuplicates": {"groups": int(len(repeated)), **_fractions(scan, copies)},
+        members = scan.order[_ragged(starts[repeated], sizes[repeated])].astype(np.int64)
+        labels = np.repeat(repeated, sizes[repeated])
+
+        def describe(ids):
+            return {"contentHash": hex_digest(scan.content[ids[0]])}
+
+        findings, entries, dropped = self._clusters_result(scan, members, labels, cap, describe)
+        metrics = {"exactDuplicates": {"groups": int(len(repeated)), "unit": self.opts["unit"],
+                                       "dropped": int(len(dropped)), **_fractions(scan, dropped),
+                                       **_over_limit(states)},
                    "exactDuplicateClusterSizes": cluster_sizes(sizes[repeated])}
-        return CorpusResult(findings, metrics, {DROP_LIST: scan.drop_entries(copies)})
-
-    def _group(self, scan: ScanWindows, members: np.ndarray, cap: int) -> Finding:
-        head = int(members[0])
-        domain = int(scan.domains[head])
-        what, unit = _unit(domain)
-        length = int(scan.lengths[head])
-        copies = len(members)
-        extra = "extra copy adds" if copies == 2 else "extra copies add"
-        message = (f"{copies:,} {what} are exact copies of each other ({length:,} {unit} each); the "
-                   f"{copies - 1:,} {extra} {length * (copies - 1):,} {unit} per epoch and weight this content "
-                   f"{copies}x. The first copy is {scan.uri(head)} row "
-                   f"{int(scan.rows[head]):,}: keep it and drop the others (--drop-list FILE writes the rows to "
-                   "drop).")
-        return scan.group_finding(self, members, f"copies-{hex_digest(scan.content[head])}", message, cap,
-                                  copies=copies, contentHash=hex_digest(scan.content[head]),
-                                  **_size_evidence(domain, length * copies, length * (copies - 1)))
-
-    def _rest(self, scan: ScanWindows, groups: np.ndarray, cap: int) -> Finding:
-        heads = scan.order[scan.group_starts[groups]]
-        extra = int((scan.group_sizes[groups] - 1).sum())
-        message = (f"{len(groups):,} more groups of exact copies ({extra:,} extra copies) are not listed one by "
-                   f"one (max_clusters = {self._max_clusters():,}); the instances are their first copies. They "
-                   "are in the corpus figures and in the drop list (--drop-list FILE). Raise max_clusters under "
-                   "[rule.exact-duplicate] to list them.")
-        return scan.group_finding(self, heads, "more-groups", message, cap, groups=int(len(groups)),
-                                  extraCopies=extra)
+        return CorpusResult(findings, metrics, {DROP_LIST: entries})
 
 
 class NearDuplicate(_DuplicateRule):
-    """Windows (token rows) or documents (text) that are near-duplicates: their sets of n-token shingles (or
-    n-word shingles after lowercasing) have an estimated Jaccard similarity at or above the threshold. Near
-    copies -- the same page with a different header, a boilerplate licence, a document re-tokenized after a
-    small edit -- act like exact copies in training: repeated content, more memorisation, less new text per
-    token. The similarity is estimated with MinHash signatures and found with locality-sensitive hashing
-    (b bands of r values): a heuristic, so a pair close to the threshold can be missed or included by chance
-    (the standard error of an estimate s is sqrt(s(1-s)/num_perm)). Exact copies are reported by exact-duplicate;
-    a cluster here has at least two different contents."""
+    """Documents (or windows) that are near-duplicates: their sets of n-token shingles (or n-word shingles after
+    lowercasing, in text) have a Jaccard similarity at or above the threshold. Near copies -- the same page with a
+    different header, a boilerplate licence, a document re-tokenized after a small edit -- act like exact copies in
+    training: repeated content, more memorisation, less new text per token. In token shards the unit is the
+    document as the document reading finds it (located by its first token: row, offset, and its length); with
+    unit = "window" the whole row. Candidates are found with MinHash signatures (of a consistent sample of the
+    shingles, see shingle_sample) and locality-sensitive hashing (b bands of r values) -- a heuristic search, so a
+    pair close to the threshold can be missed -- and every candidate pair is then verified against the exact
+    Jaccard similarity of the two full shingle sets (computed from the stored 32-bit shingle hashes): what is
+    reported is exact. With verify = false the MinHash estimate is reported instead, and says so. Exact copies
+    are reported by exact-duplicate; a cluster here has at least two different contents."""
 
     id = "near-duplicate"
     level = Level.warning
-    summary = "Windows or documents whose estimated Jaccard similarity (MinHash LSH) is at or above the threshold."
+    summary = ("Documents (or windows) whose Jaccard similarity of shingles is at or above the threshold (MinHash "
+               "LSH candidates, verified exactly).")
     kinds = {
-        "cluster-*": "one cluster of near-duplicate windows or documents (its representative's content hash after the dash)",
-        "more-clusters": "the clusters beyond the listed maximum",
+        "clusters": "the clusters of near-duplicate documents or windows within one shard",
+        "clusters-between-*": "the clusters spread over two shards (digest of both)",
+        "clusters-across": "the clusters spread over three or more shards",
     }
-    help = ("Keep the first window of each cluster (scan order: shard order, then row) and drop the others: "
-            "`corpuscle scan ... --drop-list FILE` writes one JSON line {\"uri\", \"row\"} per window to drop. "
-            "Near-deduplicate the documents before packing. If the listed windows are meant to be alike (shared "
-            "templates), raise threshold under [rule.near-duplicate].")
+    help = ("Keep one member of each cluster and drop the others: `corpuscle scan ... --drop-list FILE` writes one "
+            "JSON line per copy to drop (uri, row, offset, length, the cluster, the copy kept and why). Choose the "
+            "copy to keep with keep = \"first\" | \"longest\", prefer = [path globs, best first] and protect = "
+            "[path globs never dropped] under [rule.near-duplicate]. Near-deduplicate the documents before packing. "
+            "If the listed documents are meant to be alike (shared templates), raise threshold.")
     options = {"threshold": 0.8, "num_perm": 128, "seed": 1, "n": 5, "max_clusters": DEFAULT_MAX_CLUSTERS,
-               "max_bucket": DEFAULT_MAX_BUCKET, "signature_folder": "", "memory_limit_mb": 1024}
+               "max_bucket": DEFAULT_MAX_BUCKET, "signature_folder": "", "memory_limit_mb": 1024,
+               "verify": True, "shingle_sample": DEFAULT_SHINGLE_SAMPLE, **COMMON_OPTIONS}
     keyed = True  # the band keys are grouped by a partitioned shuffle (partition / reduce_partition)
+    cluster_kind = "clusters"
+    cluster_noun = "near-duplicate"
 
     def __init__(self, **options):
         super().__init__(**options)
@@ -631,8 +609,18 @@ class NearDuplicate(_DuplicateRule):
                    f"windows per LSH bucket paired in full; the default is {DEFAULT_MAX_BUCKET}")
         _check_int(self.id, "memory_limit_mb", self.opts["memory_limit_mb"], 0,
                    "megabytes of band keys held in memory before they go to disk; the default is 1024")
+        if not isinstance(self.opts["verify"], bool):
+            raise ValueError(f"rule {self.id}: verify must be true or false, got {self.opts['verify']!r}; hint: "
+                             "true checks every candidate pair against its exact Jaccard similarity")
+        _check_int(self.id, "shingle_sample", self.opts["shingle_sample"], 1,
+                   f"MinHash takes one shingle in this many (and at least {SAMPLE_LEAST} per unit); 1 takes all")
+        self.verify = self.opts["verify"]
+        self.sample = self.opts["shingle_sample"]
         self.threshold = float(threshold)
-        self.bands, self.rows_per_band = optimal_bands(self.threshold, self.minhash.num_perm)
+        # Verified candidates cost only their verification: the bands lean towards recall (false negatives weigh
+        # 0.8, false positives 0.2); unverified, the balance of datasketch's default (0.5, 0.5).
+        weights = RECALL_WEIGHTS if self.verify else (0.5, 0.5)
+        self.bands, self.rows_per_band = optimal_bands(self.threshold, self.minhash.num_perm, weights)
         folder = self.opts["signature_folder"]
         if not isinstance(folder, str):
             raise ValueError(f"rule {self.id}: signature_folder must be a folder path (a string), got {folder!r}; "
@@ -645,10 +633,14 @@ class NearDuplicate(_DuplicateRule):
     def begin(self, shard, settings):
         state = super().begin(shard, settings)
         state.spill = None
+        state.shingle_spill = None
         return state
 
     def feed(self, state, batch):
-        windows = batch_windows(batch, state.settings)
+        windows, units = self._units(state, batch)
+        if units is not None:
+            self._sign_units(state, windows, units)
+            return
         n = self.minhash.n
         if windows.domain == TOKENS:
             flat = batch.flat(state.settings.tokens_column)
@@ -665,9 +657,22 @@ class NearDuplicate(_DuplicateRule):
 
             def shingled_hashes(w0, w1):
                 return word_shingle_hashes(text.array.slice(w0, w1 - w0), n)
-        # Shingles are hashed a range of rows at a time (at least one row, at most about _SHINGLE_VALUES tokens or
-        # text bytes otherwise): their scratch memory is some 40 bytes per token.
-        shingled = []  # windows with at least one shingle, by range
+        self._sign(state, windows, sizes, shingled_hashes)
+
+    def _sign_units(self, state, windows: Windows, units: Units) -> None:
+        n = self.minhash.n
+
+        def shingled_hashes(w0, w1):
+            return multilinear_shingle_hashes(units.words, units.bounds[w0:w1 + 1], n)
+
+        self._sign(state, windows, units.bounds, shingled_hashes)
+
+    def _sign(self, state, windows: Windows, sizes: np.ndarray, shingled_hashes) -> None:
+        """Shingle the batch's units a range at a time (at least one unit, at most about _SHINGLE_VALUES tokens or
+        text bytes otherwise: their scratch memory is some 40 bytes per token), store the shingle hashes of those
+        with at least one shingle (for the exact verification) and their MinHash signatures (of the sample), and
+        keep their rows, offsets, lengths and hashes."""
+        shingled = []  # units with at least one shingle, by range
         for w0, w1 in _ranges(sizes, _SHINGLE_VALUES):
             hashes, offsets = shingled_hashes(w0, w1)
             local = np.flatnonzero(offsets[1:] > offsets[:-1])
@@ -675,15 +680,22 @@ class NearDuplicate(_DuplicateRule):
                 continue
             if state.spill is None:
                 state.spill = SignatureSpill(self.spill_folder, self.minhash.num_perm)
+                if self.verify:
+                    state.shingle_spill = (ShingleSpill(self.spill_folder), ShingleEndsSpill(self.spill_folder))
+            if self.verify:
+                first, last = int(offsets[local[0]]), int(offsets[local[-1] + 1])
+                state.shingle_spill[0].append(hashes[first:last].reshape(-1, 1))
+                state.shingle_spill[1].append_counts(np.diff(offsets)[local])
+            sampled, sample_offsets = sample_shingles(hashes, offsets, self.sample, SAMPLE_LEAST)
             for lo in range(0, len(local), _SIGNATURE_WINDOWS):
                 chosen = local[lo:lo + _SIGNATURE_WINDOWS]
                 first, last = int(chosen[0]), int(chosen[-1])
-                block = signatures(hashes, offsets[first:last + 2], self.minhash.num_perm, self.minhash.seed)
+                block = signatures(sampled, sample_offsets[first:last + 2], self.minhash.num_perm, self.minhash.seed)
                 state.spill.append(block[chosen - first])
             shingled.append(local + w0)
-            del hashes, offsets
+            del hashes, offsets, sampled, sample_offsets
         if shingled:
-            # Shingled windows are non-empty, so each is one of ``windows``.
+            # Shingled units are non-empty, so each is one of ``windows``.
             self._keep(state, windows, np.searchsorted(windows.local, np.concatenate(shingled)))
 
     def end(self, state):
@@ -693,8 +705,13 @@ class NearDuplicate(_DuplicateRule):
         signatures at a time) and the state holds read-only memory maps of it (``keys`` and ``digests``), which take
         no memory until read: :class:`ShardBands` reads the file itself, block by block, rather than the maps. Held
         in memory, they would be most of what a shard's state holds (8 bytes per band and window, of about 100)."""
+        closing = self._closing(state)
+        if closing is not None:
+            self._sign_units(state, *closing)
         state = super().end(state)
         spill = state.__dict__.pop("spill")
+        shingle_spill = state.__dict__.pop("shingle_spill", None)
+        state.shingles_paths = tuple(f.close() for f in shingle_spill) if shingle_spill else None
         state.signatures_path = spill.close() if spill is not None else None
         if spill is None or spill.windows == 0:
             state.keys = np.zeros((0, self.bands), dtype=np.uint64)
@@ -719,7 +736,8 @@ class NearDuplicate(_DuplicateRule):
         del slim.keys, slim.digests
         source = ShardBands(state.keys, state.digests, _first_copies(state.content), parts)
         count = len(state.rows)
-        return slim, self._spill([BandPiece(count, state.signatures_path, source=source, part=p)
+        shingles = getattr(state, "shingles_paths", None)
+        return slim, self._spill([BandPiece(count, state.signatures_path, source=source, part=p, shingles=shingles)
                                   for p in range(parts)])
 
     def _spill(self, pieces: list) -> list:
@@ -750,7 +768,7 @@ class NearDuplicate(_DuplicateRule):
                 with os.fdopen(fd, "wb") as fh:
                     np.save(fh, values)
                 mapped.append(np.load(path, mmap_mode="r"))
-            out.append(BandPiece(piece.windows, piece.signatures, entries=tuple(mapped)))
+            out.append(BandPiece(piece.windows, piece.signatures, entries=tuple(mapped), shingles=piece.shingles))
         return out
 
     def reduce_partition(self, pieces):
@@ -771,8 +789,35 @@ class NearDuplicate(_DuplicateRule):
             del window, piece_keys, piece_digests
         found = self._bucket_candidates(keys, ids, digests)
         del keys, ids, digests
-        similarity = self._verify(found.pairs, offsets, [piece.signatures for piece in pieces])
+        if self.verify and all(piece.shingles for piece in pieces if piece.windows):
+            similarity = self._verify_exact(found.pairs, offsets, [piece.shingles for piece in pieces])
+        else:
+            similarity = self._verify(found.pairs, offsets, [piece.signatures for piece in pieces])
         return NearPartial(found.pairs, similarity, found.capped_buckets, found.largest_bucket)
+
+    def _verify_exact(self, pairs: np.ndarray, offsets: np.ndarray, paths: list) -> np.ndarray:
+        """The exact Jaccard similarity of each pair's shingle sets (of their 32-bit shingle hashes), read back
+        from the shingle files of their shards a chunk of pairs at a time; see
+        :func:`corpuscle.kernels.lsh.exact_jaccard`."""
+        similarity = np.empty(len(pairs), dtype=np.float64)
+        for lo in range(0, len(pairs), _EXACT_PAIRS):
+            chunk = pairs[lo:lo + _EXACT_PAIRS]
+            needed, where = np.unique(chunk, return_inverse=True)
+            where = where.reshape(chunk.shape)
+            shard = np.searchsorted(offsets, needed, side="right") - 1
+            cuts = np.flatnonzero(np.diff(shard)) + 1
+            hashes, counts = [], []
+            for a, b in zip(np.concatenate(([0], cuts)).tolist(), np.concatenate((cuts, [len(needed)])).tolist()):
+                s = int(shard[a])
+                found, found_offsets = read_shingle_sets(*paths[s], needed[a:b] - offsets[s])
+                hashes.append(found)
+                counts.append(np.diff(found_offsets))
+            counts = np.concatenate(counts)
+            set_offsets = np.zeros(len(counts) + 1, dtype=np.int64)
+            np.cumsum(counts, out=set_offsets[1:])
+            values, set_offsets = unique_sets(np.concatenate(hashes), set_offsets)
+            similarity[lo:lo + len(chunk)] = exact_jaccard(values, set_offsets, where)
+        return similarity
 
     def _bucket_candidates(self, keys: np.ndarray, ids: np.ndarray, digests: np.ndarray) -> Candidates:
         """:func:`corpuscle.kernels.lsh.partition_candidates` of a partition's entries, in finer partitions of at most about
@@ -829,27 +874,53 @@ class NearDuplicate(_DuplicateRule):
         label = np.full(scan.count, -1, dtype=np.int64)
         label[distinct] = clusters(pairs, distinct)
         label = label[scan.first_copy]  # an exact copy belongs to its first copy's cluster
-        members = np.bincount(label[distinct], minlength=scan.count)  # distinct contents per cluster
-        in_cluster = members[label] >= 2
-        drop = np.flatnonzero(in_cluster & (label != ids))
-        near = drop[scan.first_copy[drop] == drop]  # distinct contents beyond the first: this rule's share
+        members_per = np.bincount(label[distinct], minlength=scan.count)  # distinct contents per cluster
+        in_cluster = np.flatnonzero(members_per[label] >= 2)
+        # Verified pairs by cluster, for the lowest and mean similarity of each.
+        pair_label = label[pairs[:, 0]]
+        by_pair = np.argsort(pair_label, kind="stable")
+        pair_label, pair_similarity = pair_label[by_pair], similarity[by_pair]
+        measure = "exact Jaccard" if self.verify else "estimated Jaccard (MinHash, heuristic)"
 
-        heads = np.flatnonzero((label == ids) & (members >= 2))
-        # Largest first (distinct contents, then all windows), then the one whose first window comes first.
-        windows_per = np.bincount(label[in_cluster], minlength=scan.count)
-        heads = heads[np.lexsort((heads, -windows_per[heads], -members[heads]))]
-        listed = heads[:self._max_clusters()]
-        findings = self._findings(scan, listed, label, pairs, similarity, found.capped_buckets, cap)
-        if len(heads) > len(listed):
-            findings.append(self._rest(scan, heads[len(listed):], members, cap))
+        def describe(group):
+            head = int(label[group[0]])
+            lo, hi = np.searchsorted(pair_label, head), np.searchsorted(pair_label, head, side="right")
+            sims = pair_similarity[lo:hi]
+            distinct_here = int(np.count_nonzero(scan.first_copy[group] == group))
+            lowest, mean = float(sims.min()), float(sims.mean())
+            return {"distinct": distinct_here, "exactCopies": int(len(group) - distinct_here),
+                    "similarityMin": round(lowest, 4), "similarityMean": round(mean, 4),
+                    "verifiedPairs": int(len(sims)),
+                    "summary": f"{measure} {lowest:.2f} at the lowest over {len(sims):,} pair(s)"}
+
+        findings, entries, dropped = self._clusters_result(scan, in_cluster, label[in_cluster], cap, describe)
+        heads = np.unique(label[in_cluster])
         metrics = {"nearDuplicates": {
             "threshold": self.threshold, "bands": self.bands, "rowsPerBand": self.rows_per_band,
             "numPerm": self.minhash.num_perm, "shingleSize": self.minhash.n, "clusters": int(len(heads)),
-            **_fractions(scan, near),
+            "unit": self.opts["unit"], "similarity": measure, "shingleSample": self.sample,
+            "dropped": int(len(dropped)), **_fractions(scan, dropped[scan.first_copy[dropped] == dropped]),
             "candidatePairs": int(len(found.pairs)), "verifiedPairs": int(len(pairs)),
-            "cappedBuckets": found.capped_buckets, "largestBucket": found.largest_bucket,
-        }, "nearDuplicateClusterSizes": cluster_sizes(members[heads])}
-        return CorpusResult(findings, metrics, {DROP_LIST: scan.drop_entries(drop)})
+            "cappedBuckets": found.capped_buckets, "largestBucket": found.largest_bucket, **_over_limit(states),
+        }, "nearDuplicateClusterSizes": cluster_sizes(members_per[heads])}
+        return CorpusResult(findings, metrics, {DROP_LIST: entries})
+
+    def method_note(self, domain: int) -> str:
+        shingle = "word" if domain == 1 else "token"
+        if self.verify:
+            return (f"Similarity is the exact Jaccard similarity of their {self.minhash.n}-{shingle} "
+                    f"shingle sets (every candidate verified; threshold {self.threshold:g}); the candidates come "
+                    f"from MinHash LSH ({self.minhash.num_perm} permutations, b x r = {self.bands} x "
+                    f"{self.rows_per_band}), a heuristic search that can miss a pair near the threshold.")
+        return (f"Similarity is an estimate (MinHash with {self.minhash.num_perm} permutations of a sample of the "
+                f"{self.minhash.n}-{shingle} shingles, LSH b x r = {self.bands} x {self.rows_per_band}, "
+                f"threshold {self.threshold:g}): a heuristic, not verified (verify = false).")
+
+    def evidence(self) -> dict:
+        return {"threshold": self.threshold, "bands": self.bands, "rowsPerBand": self.rows_per_band,
+                "numPerm": self.minhash.num_perm, "shingleSize": self.minhash.n,
+                "method": "exact Jaccard of shingle sets (verified MinHash LSH candidates)" if self.verify else
+                "MinHash LSH estimate (heuristic)"}
 
     @staticmethod
     def _candidates(partials: list, first: np.ndarray) -> tuple[Candidates, np.ndarray]:
@@ -883,64 +954,6 @@ class NearDuplicate(_DuplicateRule):
                 block[a:b] = read_rows(paths[s], needed[a:b] - offsets[s])
             similarity[lo:lo + len(chunk)] = estimated_jaccard(block[where[:, 0]], block[where[:, 1]])
         return similarity
-
-    def _findings(self, scan, heads, label, pairs, similarity, capped, cap) -> list[Finding]:
-        if len(heads) == 0:
-            return []
-        # Verified pairs by cluster, for the lowest and mean similarity of each.
-        pair_label = label[pairs[:, 0]]
-        by_pair = np.argsort(pair_label, kind="stable")
-        pair_label, similarity = pair_label[by_pair], similarity[by_pair]
-        # Windows by cluster, in id order.
-        members = np.flatnonzero(np.isin(label, heads))
-        members = members[np.argsort(label[members], kind="stable")]
-        member_label = label[members]
-        out = []
-        for head in heads.tolist():
-            lo, hi = np.searchsorted(member_label, head), np.searchsorted(member_label, head, side="right")
-            group = members[lo:hi]
-            distinct = group[scan.first_copy[group] == group]
-            p_lo, p_hi = np.searchsorted(pair_label, head), np.searchsorted(pair_label, head, side="right")
-            sims = similarity[p_lo:p_hi]
-            out.append(self._cluster(scan, head, distinct, len(group) - len(distinct), sims, capped, cap))
-        return out
-
-    def _cluster(self, scan, head, distinct, copies, sims, capped, cap) -> Finding:
-        domain = int(scan.domains[head])
-        what, unit = _unit(domain)
-        lowest, mean = float(sims.min()), float(sims.mean())
-        total = int(scan.lengths[distinct].sum())
-        shingles = f"{self.minhash.n}-{'token' if domain == TOKENS else 'word'} shingles"
-        message = (f"{len(distinct):,} {what} are near-duplicates: estimated Jaccard similarity of their "
-                   f"{shingles} {lowest:.2f} at the lowest, {mean:.2f} on average over {len(sims):,} verified "
-                   f"pair(s) ({total:,} {unit} in all). This is an estimate, a heuristic and not a proof: MinHash LSH "
-                   f"with {self.minhash.num_perm} permutations in b x r = {self.bands} x {self.rows_per_band} "
-                   f"(bands x rows), threshold {self.threshold:g}.")
-        if copies:
-            message += f" {copies:,} exact cop{'y' if copies == 1 else 'ies'} of these {what} are reported by " \
-                       "exact-duplicate."
-        if capped:
-            message += (f" {capped:,} LSH bucket(s) were too large to pair in full (max_bucket), so clusters may "
-                        "come out split.")
-        message += (f" The first is {scan.uri(head)} row {int(scan.rows[head]):,}: keep it and drop the others "
-                    "(--drop-list FILE writes the rows to drop).")
-        return scan.group_finding(
-            self, distinct, f"cluster-{hex_digest(scan.content[head])}", message, cap,
-            windows=int(len(distinct)), exactCopies=int(copies), similarityMin=round(lowest, 4),
-            similarityMean=round(mean, 4), verifiedPairs=int(len(sims)), threshold=self.threshold,
-            bands=self.bands, rowsPerBand=self.rows_per_band, numPerm=self.minhash.num_perm,
-            shingleSize=self.minhash.n, method="MinHash LSH estimate (heuristic)",
-            **_size_evidence(domain, total, total - int(scan.lengths[head])))
-
-    def _rest(self, scan, heads, members, cap) -> Finding:
-        windows = int(members[heads].sum())
-        message = (f"{len(heads):,} more near-duplicate clusters ({windows:,} distinct windows or documents) are "
-                   f"not listed one by one (max_clusters = {self._max_clusters():,}); the instances are their "
-                   "first windows. They are estimates like the listed ones (MinHash LSH, heuristic), counted in "
-                   "the corpus figures and included in the drop list (--drop-list FILE). Raise max_clusters under "
-                   "[rule.near-duplicate] to list them.")
-        return scan.group_finding(self, heads, "more-clusters", message, cap, clusters=int(len(heads)),
-                                  windows=windows)
 
 
 RULES = [NearDuplicate, ExactDuplicate]

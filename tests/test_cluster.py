@@ -16,6 +16,7 @@ from __future__ import annotations
 import json
 import os
 import pickle
+import re
 import subprocess
 import sys
 
@@ -34,7 +35,8 @@ from corpuscle.io.sources import discover
 from corpuscle.kernels.lsh import band_keys, candidate_pairs, partition_candidates, signature_digests
 
 from tests.shards import findings, write
-from tests.test_duplicates import datasketch_clusters, jaccard, members, miss_probability, mutate, shingles_of
+from tests.test_duplicates import clusters as clusters_in
+from tests.test_duplicates import exact_clusters, jaccard, miss_probability, mutate, shingles_of
 from tests.test_progress import Recorder, row_group_bytes
 
 VOCAB = 50_000
@@ -108,8 +110,10 @@ def comparable(report, rename=lambda uri: uri) -> tuple:
             return [fix(v) for v in value]
         return value
 
-    found = [(f.rule_id, f.kind, fix(f.uri), f.count, fix(f.instances()), f.evidence, fix(f.message))
-             for f in report.findings]
+    # A finding over two shards names them by a digest of their uris in its kind: renamed uris, another digest.
+    found = [(f.rule_id, re.sub(r"-between-[0-9a-f]{12}$", "-between", f.kind), fix(f.uri), f.count,
+              fix(f.instances()), fix(f.evidence), fix(f.message)) for f in report.findings]
+    found.sort(key=repr)  # (findings are ordered by kind, so by those digests too)
     metrics = {k: v for k, v in report.metrics.items() if k != "seconds"}
     notes = [(n.level, n.rule_id, fix(n.uri), fix(n.message)) for n in report.notes]
     return found, metrics, notes, fix(report.outputs)
@@ -124,13 +128,17 @@ def check_against_references(report, shards, near, exact) -> None:
         groups.setdefault(tuple(w), []).append(key)
     expected = {frozenset(g) for g in groups.values() if len(g) > 1}
     assert len(expected) == 3  # a.5 with b.7 and b.8; a.0 with c.4; c.1 with c.6
-    assert {frozenset(members(f)) for f in findings(report, "exact-duplicate")} == expected
-    # Near-duplicates: the clusters of datasketch's MinHashLSH pipeline; every planted pair (Jaccard >= 0.96,
-    # missed with probability below 1%: banding probability, MMDS section 3.4) inside one of them.
-    clusters = {frozenset(members(f)) for f in findings(report, "near-duplicate")}
-    reference, _ = datasketch_clusters({key: (tuple(w), shingles_of(w)) for key, w in window.items()})
-    assert clusters == set(reference)
-    b, r = 9, 13  # datasketch's MinHashLSH (b, r) for threshold 0.8 and 128 permutations (test_duplicates.py)
+    assert {frozenset(c) for c in clusters_in(report, "exact-duplicate")} == expected
+    # Near-duplicates: the clusters of the exact reference (Python sets, Jaccard >= 0.8) with the exact copies of
+    # their members; every planted pair (Jaccard >= 0.96, missed with probability below 1%: banding probability,
+    # MMDS section 3.4) inside one of them.
+    clusters = {frozenset(c) for c in clusters_in(report, "near-duplicate")}
+    reference = exact_clusters({key: (tuple(w), shingles_of(w)) for key, w in window.items()})
+    first: dict = {}
+    for key, w in window.items():
+        first.setdefault(tuple(w), key)
+    assert clusters == {frozenset(k for k in window if first[tuple(window[k])] in c) for c in reference}
+    b, r = 12, 10  # datasketch's (b, r) for threshold 0.8, 128 permutations, weights (0.2, 0.8) (test_duplicates.py)
     pairs = [((URIS[s], i), (URIS[d], j)) for (s, i), (d, j), _ in near]
     assert sum(miss_probability(jaccard(window[x], window[y]), b, r) for x, y in pairs) < 0.01
     for x, y in pairs:
@@ -192,7 +200,7 @@ def test_a_keyed_rule_splits_its_state_and_leaves_it_unchanged(tmp_path):
 
     state = scan_shard(discover(["a.parquet"])[0], settings, report_rules).states[rule.id]
     slim, pieces = rule.partition(state, 3)
-    assert len(pieces) == 3 and not hasattr(slim, "keys") and state.keys.shape == (33, 9)
+    assert len(pieces) == 3 and not hasattr(slim, "keys") and state.keys.shape == (33, 12)
     # Every band key of the 30 first copies lands in the partition of its value modulo 3, once; the 3 copies
     # within the shard are left out.
     entries = sorted((int(k), int(w)) for piece in pieces for k, w in zip(piece.keys, piece.window))
@@ -225,11 +233,13 @@ def test_shards_split_over_the_workers_report_what_a_whole_local_scan_reports(cl
     rng = np.random.default_rng(21)  # the corpus whose planted pairs check_against_references accepts
     shards, near, exact = write_corpus(rng)
     write(URIS["b"], {"input_ids": shards["b"]}, row_group_size=8)  # a and b can be cut between row groups
-    local = scan_with(LocalExecutor(1), ["data"])
+    # Rows are the duplicate rules' unit here: documents (the default) are not carried across parts.
+    windows = {"near-duplicate": {"unit": "window"}, "exact-duplicate": {"unit": "window"}}
+    local = scan_with(LocalExecutor(1), ["data"], rule=windows)
     monkeypatch.setattr(split, "SPLIT_BYTES", 0)  # the parts are planned here, so this reaches the scan
     planned, plan = [], split.plan
     monkeypatch.setattr(split, "plan", lambda *args, **kwargs: planned.append(plan(*args, **kwargs)) or planned[-1])
-    settings = Settings()
+    settings = Settings(rule=windows)
     remote = run(discover(["data"]), settings, select_rules(settings, registry()), executor=cluster)
     # a and b in two parts each; c (JSON Lines in one read block) and d (not Parquet) are scanned whole
     assert [None if parts is None else len(parts) for parts in planned] == [2, 2, None, None]
@@ -424,3 +434,20 @@ def _arrow_threads() -> int:
 def test_a_local_cluster_worker_decodes_with_one_arrow_thread(cluster):
     """Each worker of --cluster local runs one task at a time on one core, as a process of the local pool does."""
     assert sorted(cluster.client.run(_arrow_threads).values()) == [1, 1]
+
+
+def test_packed_documents_on_the_cluster_report_what_a_local_scan_reports(cluster):
+    """Duplicate documents packed at any offset of two shards (tests/test_duplicates.py packed_corpus): the
+    workers carry the open document across batches as a local scan does, and the shuffle finds the same clusters."""
+    from tests.shards import pack
+    from tests.test_duplicates import packed_corpus
+
+    docs, planted = packed_corpus(np.random.default_rng(17))
+    for name in ("a", "b"):
+        write(f"packed/{name}.parquet", {"input_ids": pack(docs[name], 97, eos=2, pad=0, positions=False)["input_ids"]},
+              row_group_size=5)
+    settings = dict(eos_id=2, pad_id=0, only=("near-duplicate", "exact-duplicate"))
+    local = scan_with(LocalExecutor(1), ["packed"], **settings)
+    remote = scan_with(cluster, ["packed"], **settings)
+    assert comparable(remote) == comparable(local)
+    assert len(clusters_in(local, "exact-duplicate")) == 25 and len(clusters_in(local, "near-duplicate")) >= 15

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import pickle
 
+import corpuscle.kernels.bands as bands
 import corpuscle.kernels.spill as spill_files
 import corpuscle.rules.duplicates as duplicates
 import numpy as np
@@ -26,10 +27,9 @@ from corpuscle.rules.duplicates import ExactDuplicate, NearDuplicate
 from corpuscle.settings import Settings
 from datasketch import MinHash
 
-from tests.shards import findings
 from tests.test_duplicates import (
-    datasketch_clusters,
-    members,
+    clusters,
+    exact_clusters,
     run_dedup,
     shingles_of,
     text_corpus,
@@ -99,8 +99,9 @@ def summary(report) -> tuple:
 def tiny_steps(monkeypatch) -> None:
     """Every step that bounds the rules' memory made tiny, so that each loop runs many times."""
     for name, value in (("_SHINGLE_VALUES", 50), ("_SIGNATURE_WINDOWS", 2), ("_VERIFY_PAIRS", 3),
-                        ("_PARTITION_WINDOWS", 3), ("_REDUCE_ENTRIES", 16)):
+                        ("_EXACT_PAIRS", 2), ("_REDUCE_ENTRIES", 16)):
         monkeypatch.setattr(duplicates, name, value)
+    monkeypatch.setattr(bands, "_PARTITION_WINDOWS", 3)
     monkeypatch.setattr(spill_files, "_VERIFY_BLOCK_ROWS", 4)
 
 
@@ -113,15 +114,19 @@ def test_the_steps_that_bound_memory_do_not_change_a_token_report(monkeypatch):
     tiny_steps(monkeypatch)
     small = run_dedup(paths)
     assert summary(small) == summary(default)
-    # The clusters are datasketch's, and the exact copies those of Python equality.
+    # The clusters are those of the exact reference (Python sets, Jaccard >= 0.8) with the exact copies of their
+    # members, and the exact copies those of Python equality.
     window = {(f"data/{name}.parquet", row): w for name, rows in shards.items() for row, w in enumerate(rows)}
-    reference, _ = datasketch_clusters({key: (tuple(w), shingles_of(w)) for key, w in window.items()})
-    assert {frozenset(members(f)) for f in findings(small, "near-duplicate")} == set(reference)
+    reference = exact_clusters({key: (tuple(w), shingles_of(w)) for key, w in window.items()})
+    first: dict = {}
+    for key, w in window.items():
+        first.setdefault(tuple(w), key)
+    expected = {frozenset(k for k in window if first[tuple(window[k])] in c) for c in reference}
+    assert {frozenset(c) for c in clusters(small, "near-duplicate")} == expected
     groups: dict = {}
     for key, w in window.items():
         groups.setdefault(tuple(w), []).append(key)
-    assert sorted(members(f) for f in findings(small, "exact-duplicate")) == sorted(
-        g for g in groups.values() if len(g) > 1)
+    assert sorted(clusters(small, "exact-duplicate")) == sorted(g for g in groups.values() if len(g) > 1)
 
 
 def test_the_steps_that_bound_memory_do_not_change_a_text_report(monkeypatch):
@@ -134,8 +139,10 @@ def test_the_steps_that_bound_memory_do_not_change_a_text_report(monkeypatch):
     assert summary(small) == summary(default)
     doc = {("text/part-0.jsonl", row): line["text"] for row, line in enumerate(lines) if line is not None}
     doc.update({("text/part-1.jsonl", 0): lines[4]["text"], ("text/part-1.jsonl", 1): "a short one"})
-    reference, _ = datasketch_clusters({key: (text, shingles_of(words_of(text))) for key, text in doc.items()})
-    assert {frozenset(members(f)) for f in findings(small, "near-duplicate")} == set(reference)
+    reference = exact_clusters({key: (text, shingles_of(words_of(text))) for key, text in doc.items()})
+    # Line 4's exact copy in part-1 joins its cluster.
+    expected = {c | ({("text/part-1.jsonl", 0)} if ("text/part-0.jsonl", 4) in c else set()) for c in reference}
+    assert {frozenset(c) for c in clusters(small, "near-duplicate")} == expected
     assert len(reference) == 2
 
 
@@ -160,7 +167,7 @@ def test_both_rules_hold_their_per_window_arrays_once():
     (alone,) = fed_states(path, [ExactDuplicate()], batch_tokens=300)
     # Reference: the non-empty rows and their lengths, in Python.
     kept = [row for row, w in enumerate(rows) if w]
-    for name in ("rows", "lengths", "domains", "content"):
+    for name in ("rows", "offsets", "lengths", "domains", "content"):
         assert getattr(near, name) is getattr(exact, name)  # one array for both rules
         np.testing.assert_array_equal(getattr(exact, name), getattr(alone, name))
     assert exact.rows.tolist() == kept and exact.rows.dtype == np.uint32
@@ -182,7 +189,7 @@ def test_text_windows_without_words_keep_the_near_duplicate_arrays_apart():
 
 def test_band_keys_go_to_a_file_and_both_ways_of_reading_them_agree(monkeypatch):
     monkeypatch.setattr(spill_files, "_VERIFY_BLOCK_ROWS", 4)
-    monkeypatch.setattr(duplicates, "_PARTITION_WINDOWS", 3)
+    monkeypatch.setattr(bands, "_PARTITION_WINDOWS", 3)
     rng = np.random.default_rng(6)
     rows = [rng.integers(0, 50_000, 40).tolist() for _ in range(25)]
     rows[20], rows[21] = list(rows[2]), list(rows[2])  # exact copies within the shard: not in the shuffle

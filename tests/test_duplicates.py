@@ -30,16 +30,16 @@ from corpuscle.cli import main
 from corpuscle.engine.registry import registry
 from corpuscle.engine.scan import select_rules
 from corpuscle.kernels.hashing import content_hashes
-from corpuscle.kernels.minhash import WORD_CLASS, shingle_hash, shingle_hashes, signatures
+from corpuscle.kernels.minhash import WORD_CLASS, sample_shingles, shingle_hash, signatures
 from corpuscle.kernels.spill import SignatureSpill
 from corpuscle.kernels.windows import TOKENS
 from corpuscle.report import droplist, sarif
-from corpuscle.rules.duplicates import NearDuplicate
+from corpuscle.rules.duplicates import DEFAULT_SHINGLE_SAMPLE, SAMPLE_LEAST, NearDuplicate
 from corpuscle.settings import SettingsError
 from datasketch import MinHash, MinHashLSH
 from datasketch.lsh import _optimal_param
 
-from tests.shards import findings, validate_sarif, write
+from tests.shards import findings, run, validate_sarif, write
 
 RULES = ("near-duplicate", "exact-duplicate")
 VOCAB = 50_000
@@ -107,7 +107,55 @@ def datasketch_clusters(windows: dict, threshold: float = 0.8) -> list[frozenset
 
 
 def members(finding) -> list[tuple[str, int]]:
-    return [(inst["uri"], inst["row"]) for inst in finding.instances()]
+    """Every unit a finding names (its instances), in scan order."""
+    return [(inst.get("uri", finding.uri), inst["row"]) for inst in finding.instances()]
+
+
+def clusters_of(finding) -> list[list[tuple[str, int]]]:
+    """The clusters a finding lists in its evidence, each as (uri, row) of its members in scan order."""
+    return [sorted([(m["uri"], m["row"]) for m in [c["kept"], *c["others"]]], key=_scan_order)
+            for c in finding.evidence["clusterList"]]
+
+
+def clusters(report, rule_id) -> list[list[tuple[str, int]]]:
+    """All clusters of a rule in a report (over its findings)."""
+    return [c for f in findings(report, rule_id) for c in clusters_of(f)]
+
+
+def _scan_order(key):
+    return key
+
+
+def exact_clusters(windows: dict, threshold: float = 0.8) -> list[frozenset]:
+    """Reference clusters by exact Jaccard of Python shingle sets: the pairs of distinct contents at or above the
+    threshold, joined by graph search; exact copies folded into their first copy (``windows`` maps key ->
+    (content, shingles) in scan order). Returns the clusters of first copies."""
+    first, seen = {}, {}
+    for key, (content, shingles) in windows.items():
+        if shingles:
+            first[key] = seen.setdefault(content, key)
+    heads = [k for k in first if first[k] == k]
+    sets = {k: set(windows[k][1]) for k in heads}
+    edges = {k: set() for k in heads}
+    for i, a in enumerate(heads):
+        for b in heads[i + 1:]:
+            if len(sets[a] & sets[b]) / len(sets[a] | sets[b]) >= threshold:
+                edges[a].add(b)
+                edges[b].add(a)
+    found, done = [], set()
+    for start in heads:
+        if start in done:
+            continue
+        component, todo = set(), [start]
+        while todo:
+            node = todo.pop()
+            if node not in component:
+                component.add(node)
+                todo += edges[node]
+        done |= component
+        if len(component) >= 2:
+            found.append(frozenset(component))
+    return found
 
 
 def miss_probability(s: float, b: int, r: int) -> float:
@@ -199,15 +247,15 @@ def test_planted_near_duplicates_across_two_parquet_shards():
     paths = write_tokens(shards)
     report = run_dedup(paths)
     near = findings(report, "near-duplicate")
-    clusters = [set(members(f)) for f in near]
+    found = [set(c) for c in clusters(report, "near-duplicate")]
     window = {(f"data/{name}.parquet", row): w for name, rows in shards.items() for row, w in enumerate(rows)}
 
-    # The (b, r) chosen: datasketch's MinHashLSH parameters for threshold 0.8 and 128 permutations.
-    b, r = _optimal_param(0.8, 128, 0.5, 0.5)
-    assert (b, r) == (9, 13)
-    assert all((f.evidence["bands"], f.evidence["rowsPerBand"]) == (b, r) for f in near)
+    # Verified candidates: the bands lean towards recall (weights 0.2 / 0.8 in datasketch's own optimisation).
+    b, r = _optimal_param(0.8, 128, 0.2, 0.8)
+    assert (b, r) == (12, 10)
     metrics = report.metrics["nearDuplicates"]
     assert (metrics["bands"], metrics["rowsPerBand"], metrics["threshold"]) == (b, r, 0.8)
+    assert metrics["similarity"] == "exact Jaccard" and metrics["unit"] == "document"
 
     # Every planted pair with exact Jaccard >= 0.9 (Python sets) is in one reported cluster. The pairs are planted
     # at >= 0.96, where the chance of missing any of them is below 1% (banding probability, MMDS section 3.4).
@@ -216,36 +264,38 @@ def test_planted_near_duplicates_across_two_parquet_shards():
     assert len(strong) == 5
     assert sum(miss_probability(jaccard(window[(a, ra)], window[(c, rc)]), b, r) for a, ra, c, rc in strong) < 0.01
     for a, ra, c, rc in strong:
-        assert any({(a, ra), (c, rc)} <= cluster for cluster in clusters), (a, ra, c, rc)
-    # No reported pair has exact Jaccard below 0.6.
-    for cluster in clusters:
-        listed = sorted(cluster)
-        for i, x in enumerate(listed):
-            for y in listed[i + 1:]:
-                assert jaccard(window[x], window[y]) >= 0.6, (x, y)
+        assert any({(a, ra), (c, rc)} <= cluster for cluster in found), (a, ra, c, rc)
 
-    # The clusters equal datasketch's (MinHashLSH candidates verified by MinHash.jaccard, exact copies folded),
-    # and so do the lowest and mean estimated similarity of each.
-    reference, similarity = datasketch_clusters({key: (tuple(w), shingles_of(w)) for key, w in window.items()})
-    assert {frozenset(c) for c in clusters} == set(reference)
+    # Every reported cluster is (the exact copies of) a cluster of the exact reference -- components of the pairs
+    # whose exact Jaccard of Python shingle sets is >= 0.8 -- and every verified pair is at or above the threshold.
+    reference = exact_clusters({key: (tuple(w), shingles_of(w)) for key, w in window.items()})
+    first = {}
+    for key, w in window.items():
+        first.setdefault(tuple(w), key)
+    for cluster in found:
+        heads = frozenset(first[tuple(window[k])] for k in cluster)
+        assert heads in reference, cluster
+        assert cluster == {k for k in window if first[tuple(window[k])] in heads}
+    strong_heads = [c for c in reference if any({(a, ra), (x, rx)} <= c for a, ra, x, rx in strong)]
+    assert len(found) >= len(strong_heads)
     for f in near:
-        listed = members(f)
-        sims = [s for pair, s in similarity.items() if pair <= set(listed)]
-        assert f.evidence["similarityMin"] == round(min(sims), 4)
-        assert f.evidence["similarityMean"] == round(sum(sims) / len(sims), 4)
-        assert f.evidence["verifiedPairs"] == len(sims)
-        assert listed == sorted(listed, key=lambda k: (k[0] != "data/a.parquet", k[1]))  # scan order, first kept
-        assert f.count == len(listed) and f.evidence["windows"] == len(listed)
-        assert f.level.name == "warning" and "estimate" in f.message and "heuristic" in f.message
-        assert "b x r = 9 x 13" in f.message and "threshold 0.8" in f.message and "--drop-list" in f.message
+        for c in f.evidence["clusterList"]:
+            keys = sorted((m["uri"], m["row"]) for m in [c["kept"], *c["others"]])
+            distinct = sorted({first[tuple(window[k])] for k in keys})
+            sims = [jaccard(window[x], window[y]) for i, x in enumerate(distinct) for y in distinct[i + 1:]]
+            assert c["similarityMin"] >= 0.8  # no reported pair below the threshold
+            if len(distinct) == 2:  # one verified pair: its exact Jaccard, as Python sets give it
+                assert c["similarityMin"] == c["similarityMean"] == round(sims[0], 4)
+            assert c["distinct"] == len(distinct) and c["exactCopies"] == len(keys) - len(distinct)
+        assert f.level.name == "warning" and "exact Jaccard" in f.message and "heuristic search" in f.message
+        assert "b x r = 12 x 10" in f.message and "threshold 0.8" in f.message and "--drop-list" in f.message
 
-    # The copy of a.parquet row 0 in b.parquet row 25 is exact: counted, not listed, in the near cluster of row 0.
-    with_copy = next(f for f in near if ("data/a.parquet", 0) in members(f))
-    assert ("data/b.parquet", 25) not in members(with_copy) and with_copy.evidence["exactCopies"] == 1
-    assert "reported by exact-duplicate" in with_copy.message
+    # The copy of a.parquet row 0 in b.parquet row 25 is exact: a member of the near cluster of row 0.
+    with_copy = next(c for c in found if ("data/a.parquet", 0) in c)
+    assert ("data/b.parquet", 25) in with_copy
     # Corpus figures: distinct windows beyond each cluster's first, and their tokens (512 each).
-    beyond = sum(len(c) - 1 for c in reference)
-    assert metrics["clusters"] == len(reference)
+    beyond = sum(len({first[tuple(window[k])] for k in c}) - 1 for c in found)
+    assert metrics["clusters"] == len(found)
     assert (metrics["windows"], metrics["duplicateWindows"], metrics["duplicateTokens"]) == (80, beyond, 512 * beyond)
     assert metrics["windowFraction"] == beyond / 80 and metrics["tokenFraction"] == beyond / 80
     assert metrics["verifiedPairs"] >= beyond and metrics["candidatePairs"] >= metrics["verifiedPairs"]
@@ -271,21 +321,27 @@ def test_planted_near_duplicates_in_a_text_shard():
     # Planted: one word changed (Jaccard 0.967) and a change of case and punctuation only (Jaccard 1).
     assert text_jaccard(("text/part-0.jsonl", 4), ("text/part-0.jsonl", 10)) >= 0.96
     assert text_jaccard(("text/part-0.jsonl", 7), ("text/part-0.jsonl", 12)) == 1.0
-    clusters = {frozenset(members(f)) for f in near}
-    # Line 4 has an exact copy in part-1 (reported by exact-duplicate), so the cluster lists lines 4 and 10.
-    assert clusters == {frozenset({("text/part-0.jsonl", 4), ("text/part-0.jsonl", 10)}),
-                        frozenset({("text/part-0.jsonl", 7), ("text/part-0.jsonl", 12)})}
-    reference, _ = datasketch_clusters({key: (text, shingles_of(words_of(text))) for key, text in doc.items()})
-    assert clusters == set(reference)
-    by_first = {members(f)[0]: f for f in near}
-    assert by_first[("text/part-0.jsonl", 4)].evidence["exactCopies"] == 1
-    assert "5-word shingles" in by_first[("text/part-0.jsonl", 4)].message
+    found = {frozenset(c) for c in clusters(report, "near-duplicate")}
+    # Line 4 has an exact copy in part-1: a member of the cluster of lines 4 and 10 (and exact-duplicate's too).
+    assert found == {frozenset({("text/part-0.jsonl", 4), ("text/part-0.jsonl", 10), ("text/part-1.jsonl", 0)}),
+                     frozenset({("text/part-0.jsonl", 7), ("text/part-0.jsonl", 12)})}
+    reference = exact_clusters({key: (text, shingles_of(words_of(text))) for key, text in doc.items()})
+    assert set(reference) == {frozenset({("text/part-0.jsonl", 4), ("text/part-0.jsonl", 10)}),
+                              frozenset({("text/part-0.jsonl", 7), ("text/part-0.jsonl", 12)})}
+    # One finding within part-0 (lines 7 and 12), one between the two shards (the cluster of line 4).
+    within = next(f for f in near if f.uri == "text/part-0.jsonl")
+    between = next(f for f in near if f.uri is None)
+    assert clusters_of(within) == [[("text/part-0.jsonl", 7), ("text/part-0.jsonl", 12)]]
+    assert between.evidence["clusterList"][0]["exactCopies"] == 1
+    assert between.kind.startswith("clusters-between-")
     # A JSON Lines finding in one shard points at the line of its first document (1-based).
-    assert by_first[("text/part-0.jsonl", 7)].uri == "text/part-0.jsonl"
-    assert by_first[("text/part-0.jsonl", 7)].start_line == 8
+    assert within.start_line == 8
     size = {key: len(text.encode()) for key, text in doc.items() if text}
     metrics = report.metrics["nearDuplicates"]
     assert metrics["duplicateTextBytes"] == size[("text/part-0.jsonl", 10)] + size[("text/part-0.jsonl", 12)]
+    # The exact Jaccard of the pair (4, 10), as Python sets of word shingles give it.
+    pair = between.evidence["clusterList"][0]
+    assert pair["similarityMin"] == round(text_jaccard(("text/part-0.jsonl", 4), ("text/part-0.jsonl", 10)), 4)
     assert metrics["tokens"] == 0
     # Documents with words: 30 lines less null, empty, blank and the two word-free ones, plus part-1's two.
     assert metrics["windows"] == 30 - 5 + 2
@@ -308,15 +364,19 @@ def test_exact_duplicates_across_shards_with_exact_members():
                 groups.setdefault(tuple(w), []).append((f"data/{name}.parquet", row))
     expected = sorted((g for g in groups.values() if len(g) > 1), key=lambda g: (-len(g), g[0]))
     exact = findings(report, "exact-duplicate")
-    assert sorted((members(f) for f in exact), key=lambda g: (-len(g), g[0])) == expected
+    assert sorted(clusters(report, "exact-duplicate"), key=lambda g: (-len(g), g[0])) == expected
     assert len(expected) == 5  # the triple, a.0 / b.25, [1, 2, 3] three times, [7] * 40, [5]; not [7] * 39
-    triple = next(f for f in exact if members(f)[0] == ("data/a.parquet", 14))
-    assert members(triple) == [("data/a.parquet", 14), ("data/b.parquet", 20), ("data/b.parquet", 21)]
-    assert (triple.count, triple.evidence["copies"], triple.evidence["tokens"],
-            triple.evidence["redundantTokens"]) == (3, 3, 3 * 512, 2 * 512)
-    assert triple.uri is None and "exact copies" in triple.message and "a.parquet row 14" in triple.message
-    within = next(f for f in exact if members(f)[0] == ("data/a.parquet", 40))  # [1, 2, 3] twice in a, once in b
-    assert members(within) == [("data/a.parquet", 40), ("data/a.parquet", 43), ("data/b.parquet", 40)]
+    # Every group spans both shards: one finding between them, the largest groups first.
+    (between,) = exact
+    assert between.uri is None and between.kind.startswith("copies-between-")
+    assert between.evidence["clusters"] == 5 and between.count == sum(len(g) for g in expected)
+    triple, within = between.evidence["clusterList"][:2]
+    assert clusters_of(between)[:2] == [[("data/a.parquet", 14), ("data/b.parquet", 20), ("data/b.parquet", 21)],
+                                        [("data/a.parquet", 40), ("data/a.parquet", 43), ("data/b.parquet", 40)]]
+    assert (triple["members"], triple["dropped"], triple["droppedTokens"]) == (3, 2, 2 * 512)
+    assert triple["kept"] == {"uri": "data/a.parquet", "row": 14, "offset": 0, "length": 512}
+    assert "(1) 3 documents: keep data/a.parquet row 14 (512 tokens); drop data/b.parquet row 20, " \
+           "data/b.parquet row 21." in between.message
     extra = sum(len(g) - 1 for g in expected)
     extra_tokens = sum(len(shards[g[0][0][5]][g[0][1]]) * (len(g) - 1) for g in expected)
     windows = sum(1 for rows in shards.values() for w in rows if w)
@@ -336,18 +396,20 @@ def test_exact_duplicate_documents_are_byte_identical_text():
     report = run_dedup(["t.parquet", "t.jsonl"])
     exact = findings(report, "exact-duplicate")
     # Reference: Python string equality; JSON Lines rows are line indices (the blank line counts).
-    assert [members(f) for f in exact] == [[("t.parquet", 0), ("t.parquet", 1), ("t.parquet", 7),
-                                            ("t.jsonl", 0), ("t.jsonl", 2)]]
+    assert [sorted(members(f)) for f in exact] == [sorted([("t.parquet", 0), ("t.parquet", 1), ("t.parquet", 7),
+                                                           ("t.jsonl", 0), ("t.jsonl", 2)])]
     size = len(docs[0].encode("utf-8"))
-    assert exact[0].evidence["textBytes"] == 5 * size and exact[0].evidence["redundantTextBytes"] == 4 * size
+    assert exact[0].evidence["duplicateBytes"] == 4 * size and exact[0].evidence["duplicates"] == 4
     assert "documents" in exact[0].message and "UTF-8 bytes" in exact[0].message
     # Lowercased text and a trailing space give the same words: near-duplicates of the first copy, not exact ones.
     # The decomposed spelling is a different word (other code points), and four words are one shingle (n = 5):
     # it has no shingle in common with the others (reference: words_of, the regex split).
     assert words_of(docs[3]) != words_of(docs[0]) == words_of(docs[2]) == words_of(docs[6])
     near = findings(report, "near-duplicate")
-    assert [members(f) for f in near] == [[("t.parquet", 0), ("t.parquet", 2), ("t.parquet", 6)]]
-    assert near[0].evidence["exactCopies"] == 4 and near[0].evidence["similarityMin"] == 1.0
+    (cluster,) = near[0].evidence["clusterList"]
+    assert sorted(clusters_of(near[0])[0]) == sorted([("t.parquet", r) for r in (0, 1, 2, 6, 7)] +
+                                                     [("t.jsonl", 0), ("t.jsonl", 2)])
+    assert cluster["exactCopies"] == 4 and cluster["distinct"] == 3 and cluster["similarityMin"] == 1.0
 
 
 def test_content_hashes_agree_between_equal_and_mixed_lengths():
@@ -404,7 +466,11 @@ def test_content_hash_follows_its_documented_definition():
 
 def read_drop_list(path) -> list[tuple[str, int]]:
     with open(path) as fh:
-        return [(e["uri"], e["row"]) for e in map(json.loads, fh)]
+        entries = list(map(json.loads, fh))
+    for e in entries:  # every entry names its cluster, the copy kept and why
+        assert set(e) == {"uri", "row", "offset", "length", "unit", "rule", "cluster", "kept", "reason"}, e
+        assert set(e["kept"]) == {"uri", "row", "offset"} and e["reason"]
+    return [(e["uri"], e["row"]) for e in entries]
 
 
 def test_the_drop_list_leaves_no_duplicate_on_a_rescan(tmp_path):
@@ -415,10 +481,11 @@ def test_the_drop_list_leaves_no_duplicate_on_a_rescan(tmp_path):
                                        "--jobs", "1"])
     assert result.exit_code == 0, result.output
     dropped = read_drop_list("drop.jsonl")
-    # Reference: every exact copy but the first (Python equality) and every window of a datasketch cluster but
-    # its first, with the exact copies of its members; once each, in scan order.
+    # Reference: every exact copy but the first (Python equality) and every window of a cluster of the exact
+    # reference (Python sets, Jaccard >= 0.8) but its first, with the exact copies of its members; once each, in
+    # scan order.
     window = {(f"data/{name}.parquet", row): w for name, rows in shards.items() for row, w in enumerate(rows)}
-    reference, _ = datasketch_clusters({key: (tuple(w), shingles_of(w)) for key, w in window.items()})
+    reference = exact_clusters({key: (tuple(w), shingles_of(w)) for key, w in window.items()})
     first = {}
     for key, w in window.items():
         first.setdefault(tuple(w), key)
@@ -510,7 +577,7 @@ def test_two_jobs_give_the_same_findings_as_one_and_leave_no_files(tmp_path, mon
     assert comparable(one) == comparable(two)
     assert all(rule.spill_folder.startswith(str(spill_root)) for rule in one.rules + two.rules
                if rule.id == "near-duplicate")
-    assert len(findings(one, "near-duplicate")) >= 5 and len(findings(one, "exact-duplicate")) == 2
+    assert len(clusters(one, "near-duplicate")) >= 5 and len(clusters(one, "exact-duplicate")) == 2
 
 
 def test_signatures_are_spilled_to_an_npy_file_and_removed_by_corpus(tmp_path, monkeypatch):
@@ -535,13 +602,23 @@ def test_signatures_are_spilled_to_an_npy_file_and_removed_by_corpus(tmp_path, m
     # Reference: NumPy's .npy reader gives back the signatures of the 30 non-empty windows.
     rows = pq.read_table("a.parquet").column("input_ids").to_pylist()
     flat = np.concatenate([np.array(w, dtype=np.int64) for w in rows[:30]])
-    expected = signatures(*shingle_hashes(flat, np.arange(31) * 64, 5))
+    # Token documents (here one per row: no eos known) are shingled with the multilinear family.
+    from corpuscle.kernels.minhash import multilinear_shingle_hashes
+    from corpuscle.kernels.units import as_words
+
+    expected = signatures(*sample_shingles(*multilinear_shingle_hashes(as_words(flat), np.arange(31) * 64, 5),
+                                           DEFAULT_SHINGLE_SAMPLE, SAMPLE_LEAST))
     stored = np.load(state.signatures_path, mmap_mode="r")
     assert isinstance(stored, np.memmap) and stored.shape == (30, 128)
     np.testing.assert_array_equal(stored, expected)
     np.testing.assert_array_equal(np.load(state.signatures_path), expected)
     del stored
-    assert state.rows.tolist() == list(range(30)) and state.keys.shape == (30, 9)
+    assert state.rows.tolist() == list(range(30)) and state.keys.shape == (30, 12)
+    # The shingle hashes of every window, for the exact verification (NumPy's reader again).
+    shingles, ends = (np.load(path) for path in state.shingles_paths)
+    hashes, offsets = multilinear_shingle_hashes(as_words(flat), np.arange(31) * 64, 5)
+    np.testing.assert_array_equal(shingles[:, 0], hashes)
+    np.testing.assert_array_equal(ends[:, 0], offsets[1:])
     rule.corpus([state])
     assert not os.path.exists(rule.spill_folder)
 
@@ -563,25 +640,23 @@ def test_a_spill_file_is_a_standard_npy_file(tmp_path):
         spill.append(np.zeros((1, 3), np.uint32))
 
 
-def test_max_clusters_lists_the_largest_and_summarises_the_rest(tmp_path):
+def test_max_clusters_lists_the_largest_and_leaves_the_rest_to_the_drop_list(tmp_path):
     rng = np.random.default_rng(9)
     base = [rng.integers(0, VOCAB, 256).tolist() for _ in range(3)]
     rows = [base[0], mutate(rng, base[0], 1), mutate(rng, base[0], 1), base[1], mutate(rng, base[1], 1),
             base[2], mutate(rng, base[2], 1), base[2], base[2], base[1]]
     write("a.parquet", {"input_ids": rows})
     report = run_dedup(["a.parquet"], **{"near-duplicate": {"max_clusters": 1}, "exact-duplicate": {"max_clusters": 1}})
-    near = findings(report, "near-duplicate")
-    listed = [f for f in near if f.kind.startswith("cluster-")]
-    rest = [f for f in near if f.kind == "more-clusters"]
-    # Largest first: three distinct windows around base 0 beat the pairs around bases 1 and 2.
-    assert [members(f) for f in listed] == [[("a.parquet", 0), ("a.parquet", 1), ("a.parquet", 2)]]
-    assert len(rest) == 1 and rest[0].count == 2 and members(rest[0]) == [("a.parquet", 3), ("a.parquet", 5)]
-    assert rest[0].evidence == {"clusters": 2, "windows": 4} and "max_clusters = 1" in rest[0].message
-    exact = findings(report, "exact-duplicate")
-    assert [members(f) for f in exact if f.kind.startswith("copies-")] == [[("a.parquet", 5), ("a.parquet", 7),
-                                                                           ("a.parquet", 8)]]
-    more = next(f for f in exact if f.kind == "more-groups")
-    assert members(more) == [("a.parquet", 3)] and more.evidence == {"groups": 1, "extraCopies": 1}
+    (near,) = findings(report, "near-duplicate")
+    # One finding for the shard: three clusters; the largest (four windows around base 2: two distinct, two exact
+    # copies) listed in the evidence, the count and the instances cover all ten windows.
+    assert near.kind == "clusters" and near.evidence["clusters"] == 3 and near.evidence["clustersTruncated"]
+    assert clusters_of(near) == [[("a.parquet", 5), ("a.parquet", 6), ("a.parquet", 7), ("a.parquet", 8)]]
+    assert near.count == 10 and near.evidence["duplicates"] == 7
+    assert "(1) 4 documents, exact Jaccard" in near.message and "(3) 3 documents, exact Jaccard" in near.message
+    (exact,) = findings(report, "exact-duplicate")
+    assert clusters_of(exact) == [[("a.parquet", 5), ("a.parquet", 7), ("a.parquet", 8)]]
+    assert exact.evidence["clusters"] == 2 and exact.count == 5
     assert report.metrics["nearDuplicates"]["clusters"] == 3
     # The drop list still holds every cluster: all but rows 0, 3 and 5.
     assert [e["row"] for e in droplist.entries(report)] == [1, 2, 4, 6, 7, 8, 9]
@@ -598,9 +673,20 @@ def test_options_are_validated_with_a_hint():
         NearDuplicate(bands=4)
     with pytest.raises(SettingsError, match="rule near-duplicate: threshold"):
         select_rules(Settings(rule={"near-duplicate": {"threshold": 1.5}}), registry())
-    # Other thresholds and permutation counts take datasketch's (b, r).
-    rule = NearDuplicate(threshold=0.5, num_perm=64)
+    # Other thresholds and permutation counts take datasketch's (b, r): its default weights without verification,
+    # recall-leaning weights (false negatives 0.8) with it.
+    rule = NearDuplicate(threshold=0.5, num_perm=64, verify=False)
     assert (rule.bands, rule.rows_per_band) == _optimal_param(0.5, 64, 0.5, 0.5)
+    rule = NearDuplicate(threshold=0.5, num_perm=64)
+    assert (rule.bands, rule.rows_per_band) == _optimal_param(0.5, 64, 0.2, 0.8)
+    with pytest.raises(ValueError, match="unit must be"):
+        NearDuplicate(unit="row")
+    with pytest.raises(ValueError, match="keep must be one of first, longest"):
+        NearDuplicate(keep="last")
+    with pytest.raises(ValueError, match="prefer must be a list of path globs"):
+        NearDuplicate(prefer=[3])
+    with pytest.raises(ValueError, match="verify must be true or false"):
+        NearDuplicate(verify="yes")
 
 
 def test_a_shard_without_windows_is_skipped_with_a_reason(tmp_path):
@@ -620,9 +706,304 @@ def test_sarif_with_duplicate_findings_validates_against_the_schema(tmp_path):
     validate_sarif(log)  # OASIS SARIF 2.1.0 schema
     results = log["runs"][0]["results"]
     assert {r["ruleId"] for r in results} == set(RULES)
-    across = next(r for r in results if r["ruleId"] == "exact-duplicate" and r["properties"]["count"] == 3)
+    across = next(r for r in results if r["ruleId"] == "exact-duplicate")
     assert len(across["locations"]) == 2  # both shards
-    assert across["properties"]["instances"] == [{"row": 14, "uri": "data/a.parquet"},
-                                                 {"row": 20, "uri": "data/b.parquet"},
-                                                 {"row": 21, "uri": "data/b.parquet"}]
-    assert log["runs"][0]["properties"]["metrics"]["nearDuplicates"]["bands"] == 9
+    assert across["properties"]["count"] == 5  # two groups: a.0 with b.25, a.14 with b.20 and b.21
+    assert across["properties"]["instances"] == [{"row": 0, "offset": 0, "uri": "data/a.parquet"},
+                                                 {"row": 14, "offset": 0, "uri": "data/a.parquet"},
+                                                 {"row": 20, "offset": 0, "uri": "data/b.parquet"},
+                                                 {"row": 21, "offset": 0, "uri": "data/b.parquet"},
+                                                 {"row": 25, "offset": 0, "uri": "data/b.parquet"}]
+    assert log["runs"][0]["properties"]["metrics"]["nearDuplicates"]["bands"] == 12
+
+
+# -- documents in packed shards ---------------------------------------------------------------------------------
+
+EOS = 2
+
+
+def packed_corpus(rng, originals: int = 120, seq_len: int = 97):
+    """Documents of random ids (lengths 20 to 400: many run over several rows of ``seq_len``), packed with an eos
+    after each into two shards: shard a holds the originals with some exact and near copies of its own; shard b
+    other documents with exact and near copies of shard a's. Near copies change 1 to 3 tokens, or drop one.
+    Returns (documents per shard, planted (source, copy) pairs as (shard, index))."""
+    docs = {"a": [rng.integers(3, VOCAB, int(rng.integers(20, 400))).tolist() for _ in range(originals)],
+            "b": [rng.integers(3, VOCAB, int(rng.integers(20, 400))).tolist() for _ in range(60)]}
+    planted = []
+
+    def near(doc):
+        if rng.random() < 0.3:
+            out = list(doc)
+            del out[int(rng.integers(1, len(out) - 1))]
+            return out
+        return mutate(rng, doc, int(rng.integers(1, 4)))
+
+    for i in range(0, 40, 2):  # copies within shard a, inserted among the originals
+        docs["a"].append(list(docs["a"][i]) if i % 4 == 0 else near(docs["a"][i]))
+        planted.append((("a", i), ("a", len(docs["a"]) - 1)))
+    for i in range(40, 100, 2):  # copies in shard b
+        at = int(rng.integers(0, len(docs["b"]) + 1))
+        docs["b"].insert(at, list(docs["a"][i]) if i % 4 == 0 else near(docs["a"][i]))
+        planted = [(s, (c[0], c[1] + 1) if c[0] == "b" and c[1] >= at else c) for s, c in planted]
+        planted.append((("a", i), ("b", at)))
+    return docs, planted
+
+
+def starts_of(docs: list, seq_len: int) -> list[tuple[int, int]]:
+    """(row, offset) of each document's first token once packed with an eos after each (plain Python)."""
+    out, at = [], 0
+    for doc in docs:
+        out.append(divmod(at, seq_len))
+        at += len(doc) + 1
+    return out
+
+
+@pytest.mark.parametrize("arrangement", ["separators", "positions"])
+def test_packed_documents_are_found_as_documents_at_their_first_token(tmp_path, monkeypatch, arrangement):
+    rng = np.random.default_rng(17)
+    seq_len = 97
+    docs, planted = packed_corpus(rng)
+    from tests.shards import pack
+
+    paths = []
+    for name in ("a", "b"):
+        cols = pack(docs[name], seq_len, eos=EOS, pad=0, positions=arrangement == "positions")
+        paths.append(write(f"p/{name}.parquet", {"input_ids": cols["input_ids"],
+                                                 **({"position_ids": cols["position_ids"]}
+                                                    if arrangement == "positions" else {})}, row_group_size=5))
+    settings = Settings(only=RULES, eos_id=EOS, pad_id=0)
+    report = scan(paths, settings, jobs=1)
+    # Documents run over rows and batches: small batches give the very same report.
+    import corpuscle.io.sources as sources
+
+    default_batch = sources.DEFAULT_BATCH_TOKENS
+    monkeypatch.setattr(sources, "DEFAULT_BATCH_TOKENS", 300)
+    small = scan(paths, settings, jobs=1)
+    assert [(f.kind, f.message, f.evidence) for f in small.findings] == \
+        [(f.kind, f.message, f.evidence) for f in report.findings]
+    monkeypatch.setattr(sources, "DEFAULT_BATCH_TOKENS", default_batch)
+    # The local pool of two processes (states and pieces travel through pickle) reports the same.
+    pooled = scan(paths, settings, jobs=2)
+    assert comparable(pooled)[:2] == comparable(report)[:2] and pooled.outputs == report.outputs
+
+    # How the documents were read (a heuristic when inferred) is in the corpus figures.
+    reading = report.metrics["exactDuplicates"]["documentReading"]
+    assert list(reading) == [{"positions": "position-restarts"}.get(arrangement, arrangement)]
+    assert reading[list(reading)[0]]["shards"] == 2
+    where = {(name, i): (f"p/{name}.parquet", *rc)
+             for name in docs for i, rc in enumerate(starts_of(docs[name], seq_len))}
+    document = {(name, i): d + [EOS] for name in docs for i, d in enumerate(docs[name])}  # a document ends in its eos
+    located = {where[k]: k for k in where}
+    reported = []
+    for rule in RULES:
+        for f in findings(report, rule):
+            for c in f.evidence["clusterList"]:
+                members_here = [c["kept"], *c["others"]]
+                keys = [located[(m["uri"], m["row"], m["offset"])] for m in members_here]  # exact first tokens
+                assert all(m["length"] == len(document[k]) for m, k in zip(members_here, keys))
+                reported.append((rule, set(keys)))
+    # Exact copies: every planted one, with its original (Python equality of the id lists).
+    exact_planted = [(s, c) for s, c in planted if document[s] == document[c]]
+    assert len(exact_planted) == 25
+    for s, c in exact_planted:
+        assert any(rule == "exact-duplicate" and {s, c} <= keys for rule, keys in reported), (s, c)
+    # Near copies with exact Jaccard >= 0.9 (Python sets of 5-token shingles): at least 90% reported together with
+    # their original (the banding curve misses a pair at 0.9 with probability about 0.006, MMDS section 3.4).
+    near_planted = [(s, c) for s, c in planted if document[s] != document[c]
+                    and jaccard(document[s], document[c]) >= 0.9]
+    assert len(near_planted) >= 15
+    found = [(s, c) for s, c in near_planted if any(rule == "near-duplicate" and {s, c} <= keys
+                                                    for rule, keys in reported)]
+    assert len(found) >= 0.9 * len(near_planted), (len(found), len(near_planted))
+    # No reported near pair below the threshold: every pair of distinct contents in a cluster whose similarity is
+    # reported is at or above 0.8 in Python sets, or the cluster joins it through other members.
+    for rule, keys in reported:
+        if rule != "near-duplicate":
+            continue
+        distinct = {tuple(document[k]): k for k in sorted(keys)}
+        listed = list(distinct.values())
+        best = [max(jaccard(document[x], document[y]) for y in listed if y != x) for x in listed]
+        assert min(best) >= 0.8, keys
+    # The drop list names each dropped document by row, offset and length, and the copy kept.
+    dropped = droplist.entries(report)
+    assert all({"row", "offset", "length", "kept", "cluster", "reason"} <= set(e) for e in dropped)
+    for e in dropped:  # an exact-duplicate entry drops a copy of the very ids it keeps
+        kept = document[located[(e["kept"]["uri"], e["kept"]["row"], e["kept"]["offset"])]]
+        assert document[located[(e["uri"], e["row"], e["offset"])]] == kept or e["rule"] == "near-duplicate"
+
+
+def test_window_unit_compares_whole_rows(tmp_path):
+    rng = np.random.default_rng(17)
+    docs, planted = packed_corpus(rng)
+    from tests.shards import pack
+
+    paths = [write(f"p/{name}.parquet", {"input_ids": pack(docs[name], 97, eos=EOS, pad=0,
+                                                             positions=False)["input_ids"]})
+             for name in ("a", "b")]
+    windows = {"near-duplicate": {"unit": "window"}, "exact-duplicate": {"unit": "window"}}
+    by_window = scan(paths, Settings(only=RULES, eos_id=EOS, pad_id=0, rule=windows), jobs=1)
+    by_document = scan(paths, Settings(only=RULES, eos_id=EOS, pad_id=0), jobs=1)
+    # Rows of a packed shard hold shifted copies: as windows, hardly anything repeats.
+    rows = {(f"p/{n}.parquet", r): w for n in ("a", "b")
+            for r, w in enumerate(pq.read_table(f"p/{n}.parquet").column("input_ids").to_pylist())}
+    groups: dict = {}
+    for key, w in rows.items():
+        groups.setdefault(tuple(w), []).append(key)
+    assert sorted(clusters(by_window, "exact-duplicate")) == sorted(g for g in groups.values() if len(g) > 1)
+    assert by_window.metrics["exactDuplicates"]["unit"] == "window"
+    assert by_window.metrics["exactDuplicates"]["windows"] == len(rows)
+    assert len(clusters(by_document, "exact-duplicate")) == 25
+    assert all(c["kept"]["offset"] == 0 for f in findings(by_window, "exact-duplicate")
+               for c in f.evidence["clusterList"])
+
+
+def test_long_documents_are_compared_by_their_first_tokens(tmp_path, monkeypatch):
+    import corpuscle.kernels.units as units
+
+    monkeypatch.setattr(units, "MAX_DOCUMENT_TOKENS", 50)
+    rng = np.random.default_rng(2)
+    head = rng.integers(3, VOCAB, 60).tolist()
+    docs = [head + rng.integers(3, VOCAB, 40).tolist(), head + rng.integers(3, VOCAB, 45).tolist(),
+            rng.integers(3, VOCAB, 30).tolist()]
+    from tests.shards import pack
+
+    write("l.parquet", {"input_ids": pack(docs, 32, eos=EOS, positions=False)["input_ids"]})
+    report = run("l.parquet", only=("exact-duplicate",), eos_id=EOS)
+    # The two long documents agree in their first 50 tokens: compared by them, they are one group; the report
+    # counts them as over the limit.
+    assert clusters(report, "exact-duplicate") == [[("l.parquet", 0), ("l.parquet", 3)]]
+    assert report.metrics["exactDuplicates"]["documentsOverLimit"] == 2
+    (f,) = findings(report, "exact-duplicate")
+    assert [c["kept"]["length"] for c in f.evidence["clusterList"]] == [101]  # the full length, eos included
+
+
+# -- the keep policy --------------------------------------------------------------------------------------------
+
+
+def mirror_site(rng):
+    """An original crawl (site/) and a mirror of it (mirror/) that sorts first: the mirror repeats the pages word
+    for word or with a footer line added; the original also has pages of its own."""
+    vocabulary = sorted({"".join(rng.choice(SYLLABLES, size=3)) for _ in range(2000)})
+    pages = [" ".join(rng.choice(vocabulary, size=200)) for _ in range(12)]
+    write_lines("crawl/site/pages.jsonl", [{"text": p} for p in pages])
+    mirrored = [pages[i] if i % 2 else pages[i] + " mirrored by example mirror" for i in range(8)]
+    write_lines("crawl/mirror/pages.jsonl", [{"text": p} for p in mirrored])
+    return pages, mirrored
+
+
+def test_the_keep_policy_keeps_the_original_over_its_mirror(tmp_path):
+    rng = np.random.default_rng(8)
+    pages, mirrored = mirror_site(rng)
+    # By default the first copy in scan order is kept: the mirror, which sorts first.
+    plain = run_dedup(["crawl"])
+    assert {e["uri"] for e in droplist.entries(plain)} == {"crawl/site/pages.jsonl"}
+    prefer = {"prefer": ["crawl/site/*"]}
+    report = run_dedup(["crawl"], **{"near-duplicate": prefer, "exact-duplicate": prefer})
+    dropped = droplist.entries(report)
+    # Every mirrored page is dropped, each once, and the original kept: exact copies (odd pages) by
+    # exact-duplicate, pages with the footer by near-duplicate.
+    assert [(e["uri"], e["row"]) for e in dropped] == [("crawl/mirror/pages.jsonl", r) for r in range(8)]
+    for e in dropped:
+        assert e["kept"] == {"uri": "crawl/site/pages.jsonl", "row": e["row"], "offset": 0}
+        assert e["reason"] == "the kept copy is under the preferred path 'crawl/site/*'; this one is under no " \
+                              "preferred path"
+        assert e["rule"] == ("exact-duplicate" if e["row"] % 2 else "near-duplicate")
+        assert e["length"] == len(mirrored[e["row"]].encode())
+    # One copy per cluster: dropping the list leaves every page once (Python check over the remaining texts).
+    kept_texts = pages + [m for r, m in enumerate(mirrored) if ("crawl/mirror/pages.jsonl", r) not in
+                          {(e["uri"], e["row"]) for e in dropped}]
+    assert len(kept_texts) == 12
+    # Protected paths are never dropped: the mirror protected too keeps both copies of every page.
+    guarded = {"prefer": ["crawl/site/*"], "protect": ["crawl/mirror/*"]}
+    both = run_dedup(["crawl"], **{"near-duplicate": guarded, "exact-duplicate": guarded})
+    assert droplist.entries(both) == []
+    assert len(clusters(both, "exact-duplicate")) == 4 and len(clusters(both, "near-duplicate")) == 4
+
+
+def test_keep_longest_keeps_the_page_with_its_footer(tmp_path):
+    rng = np.random.default_rng(8)
+    pages, mirrored = mirror_site(rng)
+    longest = {"keep": "longest"}
+    report = run_dedup(["crawl"], **{"near-duplicate": longest, "exact-duplicate": longest})
+    dropped = {(e["uri"], e["row"]): e for e in droplist.entries(report)}
+    # The pages with the footer (even rows of the mirror) are longer than the originals: those are kept.
+    for r in range(0, 8, 2):
+        e = dropped[("crawl/site/pages.jsonl", r)]
+        assert e["kept"]["uri"] == "crawl/mirror/pages.jsonl" and e["reason"].startswith("keep = longest: the kept")
+    # Exact copies are as long as each other: the first in scan order (the mirror) stays.
+    for r in range(1, 8, 2):
+        assert dropped[("crawl/site/pages.jsonl", r)]["reason"] == \
+            "keep = longest: as long as the kept copy, which comes first in scan order"
+
+
+# -- verification -----------------------------------------------------------------------------------------------
+
+
+def test_unverified_similarity_is_an_estimate_and_says_so(tmp_path):
+    rng = np.random.default_rng(5)
+    write_lines("text/part-0.jsonl", text_corpus(rng))
+    report = run_dedup(["text"], **{"near-duplicate": {"verify": False}})
+    (f,) = findings(report, "near-duplicate")
+    assert "an estimate" in f.message and "not verified (verify = false)" in f.message
+    assert f.evidence["method"] == "MinHash LSH estimate (heuristic)"
+    assert report.metrics["nearDuplicates"]["similarity"] == "estimated Jaccard (MinHash, heuristic)"
+    # b x r are datasketch's own for threshold 0.8 and 128 permutations with its default weights.
+    assert (report.metrics["nearDuplicates"]["bands"], report.metrics["nearDuplicates"]["rowsPerBand"]) == \
+        _optimal_param(0.8, 128, 0.5, 0.5)
+
+
+def test_a_candidate_below_the_threshold_is_not_reported(tmp_path):
+    """Verified, the reported similarity is the exact Jaccard of the shingle sets (Python sets); unverified, the
+    MinHash estimate; and a candidate whose exact similarity is below the threshold is left out."""
+    rng = np.random.default_rng(13)
+    base = rng.integers(3, VOCAB, 300).tolist()
+    rows = [base, mutate(rng, base, 8)]
+    write("v.parquet", {"input_ids": rows})
+    exact = jaccard(rows[0], rows[1])  # about 0.77
+
+    def similarity(**options):
+        found = findings(run("v.parquet", only=("near-duplicate",), rule={"near-duplicate": options}),
+                         "near-duplicate")
+        return [c["similarityMin"] for f in found for c in f.evidence["clusterList"]]
+
+    assert similarity(threshold=0.5) == [round(exact, 4)]
+    (estimate,) = similarity(threshold=0.5, verify=False)
+    assert estimate != round(exact, 4) and abs(estimate - exact) < 0.2
+    # Just above the exact value: the pair is still a candidate (it shares many bands), but not reported.
+    report = run("v.parquet", only=("near-duplicate",), rule={"near-duplicate": {"threshold": exact + 0.0005}})
+    assert findings(report, "near-duplicate") == [] and report.metrics["nearDuplicates"]["verifiedPairs"] == 0
+
+
+def test_a_sampled_scan_compares_only_documents_read_whole(tmp_path):
+    """With --sample, row groups are skipped: a document that runs into a skipped row group is a fragment and is
+    not compared; every document reported starts where the packing put one and has its full length."""
+    from corpuscle.engine.sampling import Sample
+
+    from tests.shards import pack
+
+    rng = np.random.default_rng(17)
+    docs, _ = packed_corpus(rng)
+    paths = [write(f"s/{name}.parquet", {"input_ids": pack(docs[name], 97, eos=EOS, pad=0,
+                                                             positions=False)["input_ids"]}, row_group_size=4)
+             for name in ("a", "b")]
+    report = scan(paths, Settings(only=RULES, eos_id=EOS, pad_id=0), jobs=1, sample=Sample(0.5, seed=3))
+    truth = {(f"s/{name}.parquet", *rc): len(d) + 1 for name in docs
+             for rc, d in zip(starts_of(docs[name], 97), docs[name])}
+    members_seen = [m for rule in RULES for f in findings(report, rule) for c in f.evidence["clusterList"]
+                    for m in [c["kept"], *c["others"]]]
+    assert members_seen  # some clusters lie wholly in the row groups read
+    for m in members_seen:
+        assert truth[(m["uri"], m["row"], m["offset"])] == m["length"], m
+    full = scan(paths, Settings(only=RULES, eos_id=EOS, pad_id=0), jobs=1)
+    assert report.metrics["exactDuplicates"]["windows"] < full.metrics["exactDuplicates"]["windows"]
+    # Every unit the rule kept of a sampled shard is a whole document: its first token and length as packed.
+    from corpuscle.engine.scan import scan_shard
+    from corpuscle.io.sources import discover
+    from corpuscle.rules.duplicates import ExactDuplicate
+
+    shard = discover(["s/a.parquet"])[0]
+    state = scan_shard(shard, Settings(eos_id=EOS, pad_id=0), [ExactDuplicate()],
+                       sample=Sample(0.5, seed=3)).states["exact-duplicate"]
+    units = list(zip(state.rows.tolist(), state.offsets.tolist(), state.lengths.tolist()))
+    assert 0 < len(units) < len(docs["a"])
+    assert all(truth[("s/a.parquet", row, offset)] == length for row, offset, length in units), units

@@ -18,7 +18,6 @@ from corpuscle.kernels import ngrams
 from corpuscle.report import droplist, sarif
 
 from tests.shards import findings, pack, validate_sarif, write
-
 from tests.tiny_tokenizers import EOS, invented_words, sentences, train_bpe
 
 RULE = "eval-overlap"

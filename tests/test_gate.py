@@ -373,7 +373,7 @@ def test_rows_and_offsets_are_0_based_and_sarif_says_which_line_is_meant(tmp_pat
 # -- many findings of one rule -----------------------------------------------------------------------------------
 
 
-def test_many_duplicate_clusters_in_one_shard_take_one_block_with_the_five_largest(tmp_path):
+def test_many_duplicate_clusters_in_one_shard_take_one_line_with_the_five_largest(tmp_path):
     from tests.shards import write
 
     words = ["kettle", "harbour", "lantern", "pebble", "orchard", "meadow", "thimble", "compass", "saddle",
@@ -383,13 +383,14 @@ def test_many_duplicate_clusters_in_one_shard_take_one_block_with_the_five_large
     texts = notes + notes + notes[:1]  # 12 pairs of copies, the first note three times
     write("dups.jsonl", {"text": texts})
     result = scan("dups.jsonl", "--only", "exact-duplicate", "--json", "r.json")
-    found = json.loads(open("r.json").read())["findings"]
-    assert sorted(f["count"] for f in found) == [2] * 11 + [3]
+    (found,) = json.loads(open("r.json").read())["findings"]
+    assert found["count"] == 25
+    assert sorted(c["members"] for c in found["evidence"]["clusterList"]) == [2] * 11 + [3]
     lines = result.stdout.splitlines()
-    start = lines.index("WARN  exact-duplicate  in dups.jsonl: 12 findings, 25 copies in all; the 5 largest:")
+    start = next(i for i, line in enumerate(lines) if line.startswith("WARN  exact-duplicate  dups.jsonl: 25 copies"))
     assert lines[start + 1] == "      3 copies: row 0 = row 12 = row 24"
-    assert all(line.startswith("      2 copies: row ") for line in lines[start + 2:start + 6])
-    assert lines[start + 6] == "      and 7 more findings (14 copies), listed in the SARIF/JSON report"
+    assert [lines[start + k] for k in range(2, 6)] == [f"      2 copies: row {r} = row {r + 12}" for r in (1, 2, 3, 4)]
+    assert lines[start + 6] == "      and 7 more clusters, listed in the SARIF/JSON report"
     assert lines[start + 7].startswith("      fix: ")
     assert sum(1 for line in lines if line.startswith("WARN")) == 1
 
@@ -405,13 +406,14 @@ def test_a_finding_across_shards_is_suppressed_when_every_shard_matches_and_take
     config('[[suppress]]\nrule = "exact-duplicate"\npath = "mirror/*"\njustification = "mirror only"\n')
     result = scan(*args)
     log = sarif_of("r.sarif")
-    assert len(log["runs"][0]["results"]) == 3 and not any("suppressions" in r for r in log["runs"][0]["results"])
-    assert result.exit_code == 1  # each cluster also lists main/t.jsonl, which the entry does not match
+    # one finding for the three clusters between the two shards
+    assert len(log["runs"][0]["results"]) == 1 and not any("suppressions" in r for r in log["runs"][0]["results"])
+    assert result.exit_code == 1  # the finding also lists main/t.jsonl, which the entry does not match
     assert any(n["message"]["text"].startswith("stale suppression")
                for n in log["runs"][0]["invocations"][0]["toolExecutionNotifications"])
     config('[[suppress]]\nrule = "exact-duplicate"\npath = "m*"\njustification = "both folders are mirrors"\n')
     result = scan(*args)
-    assert [len(r.get("suppressions", [])) for r in sarif_of("r.sarif")["runs"][0]["results"]] == [1, 1, 1]
+    assert [len(r.get("suppressions", [])) for r in sarif_of("r.sarif")["runs"][0]["results"]] == [1]
     assert result.exit_code == 0
     # levels: off in one folder, warning in the other -> the clusters stay, at the highest level in force
     config('[paths."mirror"]\nrule.exact-duplicate.level = "off"\n[paths."main"]\nrule.exact-duplicate.level = '

@@ -252,12 +252,14 @@ def test_the_demo_report_names_every_rule_with_a_result_and_draws_its_figures(tm
     assert m["documentLengthHistogram"]["bytes"]["documents"] == m["documentBytes"]["documents"]
     assert page.values("plot-shift") == [m["labelShiftRows"][k] for k in sorted(m["labelShiftRows"], key=int)]
     assert sum(page.values("plot-padding")) == m["paddingPerRow"]["rows"]
-    # Duplicate clusters: the plotted clusters are the report's, and each is one finding of the rule.
+    # Duplicate clusters: the plotted clusters are the ones the findings list.
     for kind in ("exact", "near"):
         sizes = m[f"{kind}DuplicateClusterSizes"]
         drawn = page.values("plot-clusters", kind)
         assert sum(drawn) == sizes["clusters"] == sum(sizes["counts"])
-        counts = [f["count"] for f in report["findings"] if f["rule"] == f"{kind}-duplicate"]
+        # every cluster is listed in its finding's evidence; near-duplicate sizes count distinct contents
+        counts = [c["distinct" if kind == "near" else "members"] for f in report["findings"]
+                  if f["rule"] == f"{kind}-duplicate" for c in f["evidence"]["clusterList"]]
         assert sizes["clusters"] == len(counts) and sizes["largest"] == max(counts)
         edges = sizes["edges"]
         assert sizes["counts"] == [sum(1 for c in counts if a <= c < b) for a, b in zip(edges[:-1], edges[1:])]

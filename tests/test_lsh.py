@@ -366,3 +366,84 @@ def test_clusters_refuse_unknown_or_repeated_ids():
         clusters([(0, 5)], 3)
     with pytest.raises(ValueError, match="must be distinct"):
         clusters([], [1, 1, 2])
+
+
+# --- the near-duplicate rule's bands, its shingle sample, exact verification -----------------------------------
+
+
+def test_candidate_rate_of_the_rules_bands_follows_the_banding_curve():
+    # The (b, r) near-duplicate takes when it verifies candidates: datasketch's optimisation with weights 0.2 for
+    # false positives and 0.8 for false negatives. Mining of Massive Datasets, section 3.4: a pair of Jaccard
+    # similarity s becomes a candidate with probability 1 - (1 - s**r)**b.
+    from corpuscle.rules.duplicates import RECALL_WEIGHTS
+
+    b, r = optimal_bands(0.8, 128, RECALL_WEIGHTS)
+    assert (b, r) == (12, 10)  # the bands datasketch's search chooses for these weights
+    rng = np.random.default_rng(7)
+    per_similarity = 400
+    for similarity in (0.5, 0.7, 0.8, 0.9):
+        hashes, offsets = flatten(pairs_with_exact_jaccard(rng, similarity, per_similarity))
+        found = candidate_pairs(band_keys(signatures(hashes, offsets), b, r)).pairs
+        partners = found[(found[:, 0] % 2 == 0) & (found[:, 1] == found[:, 0] + 1)]
+        expected = 1 - (1 - similarity**r) ** b
+        low, high = binomial_interval(per_similarity, expected)
+        assert low <= len(partners) <= high, (similarity, len(partners), expected * per_similarity)
+
+
+def test_candidates_of_sampled_shingles_follow_the_curve_of_the_samples_jaccard():
+    # With the rule's shingle sample (one in 16, at least 48 a window), each pair is a candidate with probability
+    # 1 - (1 - s'**r)**b where s' is the exact Jaccard of the two samples (Python sets): the count of candidate
+    # pairs lies within 4 standard deviations of the sum of those probabilities (a sum of independent Bernoulli
+    # trials; normal approximation), and s' lies close to s.
+    from corpuscle.kernels.minhash import sample_shingles
+    from corpuscle.rules.duplicates import DEFAULT_SHINGLE_SAMPLE, SAMPLE_LEAST
+
+    b, r = 12, 10
+    rng = np.random.default_rng(8)
+    for similarity, union in ((0.9, 1600), (0.8, 3200), (0.9, 60)):
+        windows = pairs_with_exact_jaccard(rng, similarity, 300, union=union)
+        hashes, offsets = flatten(windows)
+        sampled, sample_offsets = sample_shingles(hashes, offsets, DEFAULT_SHINGLE_SAMPLE, SAMPLE_LEAST)
+        found = candidate_pairs(band_keys(signatures(sampled, sample_offsets), b, r)).pairs
+        partners = len(found[(found[:, 0] % 2 == 0) & (found[:, 1] == found[:, 0] + 1)])
+        probabilities = []
+        for i in range(0, len(windows), 2):
+            a = set(sampled[sample_offsets[i]:sample_offsets[i + 1]].tolist())
+            c = set(sampled[sample_offsets[i + 1]:sample_offsets[i + 2]].tolist())
+            s = len(a & c) / len(a | c)
+            probabilities.append(1 - (1 - s**r) ** b)
+        mean = sum(probabilities)
+        sd = math.sqrt(sum(p * (1 - p) for p in probabilities))
+        assert abs(partners - mean) <= 4 * sd + 1, (similarity, union, partners, mean)
+        assert partners >= 0.85 * len(probabilities) if similarity == 0.9 else True
+
+
+def test_exact_jaccard_equals_python_sets():
+    from corpuscle.kernels.lsh import exact_jaccard, unique_sets
+
+    rng = np.random.default_rng(12)
+    windows = [rng.integers(0, 60, int(rng.integers(0, 80))).astype(np.uint32) for _ in range(50)]
+    hashes, offsets = flatten(windows)
+    values, set_offsets = unique_sets(hashes, offsets)
+    for i, w in enumerate(windows):  # reference: sorted(set(...))
+        assert values[set_offsets[i]:set_offsets[i + 1]].tolist() == sorted(set(w.tolist()))
+    pairs = rng.integers(0, 50, (500, 2))
+    got = exact_jaccard(values, set_offsets, pairs)
+    for (a, c), j in zip(pairs.tolist(), got.tolist()):
+        sa, sc = set(windows[a].tolist()), set(windows[c].tolist())
+        assert j == (len(sa & sc) / len(sa | sc) if sa | sc else 0.0)
+
+
+def test_a_shingle_sample_is_the_documented_subset():
+    from corpuscle.kernels.minhash import sample_shingles
+
+    rng = np.random.default_rng(3)
+    windows = [rng.integers(0, 2**32, n, dtype=np.uint64).astype(np.uint32) for n in (0, 1, 30, 48, 49, 300, 5000)]
+    hashes, offsets = flatten(windows)
+    sampled, sample_offsets = sample_shingles(hashes, offsets, 8, 48)
+    for i, w in enumerate(windows):  # reference: the module's rule in plain Python
+        limit = min(2**32, math.floor(max(1 / 8, 48 / max(len(w), 1)) * 2**32))
+        assert sampled[sample_offsets[i]:sample_offsets[i + 1]].tolist() == [h for h in w.tolist() if h < limit]
+    assert np.diff(sample_offsets).tolist()[:5] == [0, 1, 30, 48, 49]  # a window of at most 48 whole
+    unchanged = sample_shingles(hashes, offsets, 1, 48)
+    assert unchanged[0] is hashes and np.array_equal(unchanged[1], offsets)

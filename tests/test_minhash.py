@@ -325,3 +325,45 @@ def test_bad_arrays_are_refused_with_a_hint():
         signatures(np.array([1], dtype=np.uint32), [0, 1], chunk=0)
     with pytest.raises(TypeError, match="texts must be strings"):
         word_shingle_hashes([1, 2, 3])
+
+
+def test_document_hashes_follow_their_definition_and_ignore_where_a_document_sits():
+    from corpuscle.kernels.hashing import _STREAM_BASES, document_hashes
+    from corpuscle.kernels.minhash import _mix64_int
+    from corpuscle.kernels.units import as_words
+
+    mask = (1 << 64) - 1
+    rng = np.random.default_rng(4)
+    docs = [rng.integers(0, 50_000, n).tolist() for n in (1, 7, 5000, 9000, 7)]
+    docs[4] = list(docs[1])
+    flat = np.array([t for d in docs for t in d], dtype=np.int64)
+    offsets = np.concatenate(([0], np.cumsum([len(d) for d in docs])))
+    got = document_hashes(as_words(flat), offsets)
+    for d, h in zip(docs, got.tolist()):  # reference: the formula in Python integers
+        mixed = [t & 0xFFFF_FFFF for t in d]
+        expected = []
+        for lane, base in enumerate(_STREAM_BASES):
+            value = sum(m * pow(base, j, 1 << 64) for j, m in enumerate(mixed)) & mask
+            value ^= (len(d) * 0x9E3779B97F4A7C15 + lane) & mask
+            expected.append(_mix64_int(value))
+        assert h == expected
+    assert got[1].tolist() == got[4].tolist() and len({tuple(h) for h in got.tolist()}) == 4
+    # int32 storage hashes as int64 does
+    np.testing.assert_array_equal(document_hashes(as_words(flat.astype(np.int32)), offsets), got)
+
+
+def test_multilinear_shingle_hashes_follow_their_definition():
+    from corpuscle.kernels.minhash import _multilinear_keys, multilinear_shingle_hashes
+    from corpuscle.kernels.units import as_words
+
+    rng = np.random.default_rng(5)
+    windows = [rng.integers(-5, 2**31, n).tolist() for n in (0, 1, 3, 4, 5, 6, 200)]
+    flat = np.array([t for w in windows for t in w], dtype=np.int64)
+    offsets = np.concatenate(([0], np.cumsum([len(w) for w in windows])))
+    hashes, shingle_offsets = multilinear_shingle_hashes(as_words(flat), offsets, 5)
+    keys = [int(k) for k in _multilinear_keys(5)]
+    for i, w in enumerate(windows):  # reference: the formula in Python integers, shingles as in shingles_of
+        shingles = [w[j:j + 5] for j in range(len(w) - 4)] if len(w) >= 5 else ([w] if w else [])
+        expected = [((keys[5 + len(s)] + sum(keys[k] * (t & 0xFFFF_FFFF) for k, t in enumerate(s)))
+                     & ((1 << 64) - 1)) >> 32 for s in shingles]
+        assert hashes[shingle_offsets[i]:shingle_offsets[i + 1]].tolist() == expected

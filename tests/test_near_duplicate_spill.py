@@ -38,8 +38,10 @@ def test_spilled_band_keys_give_the_same_findings(tmp_path):
     held = run(paths, only=("near-duplicate",))
     spilled = run(paths, only=("near-duplicate",), rule={"near-duplicate": {"memory_limit_mb": 0}})
     assert summary(held) == summary(spilled)
-    clusters = [f for f in held.findings if f.rule_id == "near-duplicate"]
-    assert sorted(f.count for f in clusters) == [2, 3, 3, 3]  # the three triples and the pair built above
+    found = [f for f in held.findings if f.rule_id == "near-duplicate"]
+    # The three triples (over all three shards: one finding) and the pair built above (between shards 1 and 2).
+    assert sorted(c["members"] for f in found for c in f.evidence["clusterList"]) == [2, 3, 3, 3]
+    assert sorted(f.kind.split("-")[1] for f in found) == ["across", "between"]
 
 
 @pytest.mark.parametrize("parts", [1, 3])

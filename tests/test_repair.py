@@ -203,6 +203,10 @@ def python_documents(cols, pad):
     return docs
 
 
+#: The duplicate rules comparing whole windows (rows) rather than documents: the drop list names windows.
+WINDOWS = {"exact-duplicate": {"unit": "window"}, "near-duplicate": {"unit": "window"}}
+
+
 def test_duplicate_windows_of_a_packed_shard_are_dropped_with_best_fit(tmp_path):
     seq_len = 128
     docs = documents(4, 300, 200)
@@ -212,7 +216,7 @@ def test_duplicate_windows_of_a_packed_shard_are_dropped_with_best_fit(tmp_path)
     cols = {k: v + [v[i] for i in copied] for k, v in cols.items()}
     src = write(tmp_path / "in" / "dup.parquet", cols, row_group_size=32)
     before = sha256(src)
-    facts = dict(eos_id=EOS, pad_id=PAD, seq_len=seq_len)
+    facts = dict(eos_id=EOS, pad_id=PAD, seq_len=seq_len, rule=WINDOWS)  # whole windows written twice
     scan = run(src, **facts)
     assert sorted(e["row"] for e in scan.outputs["drop-list"]) == list(range(rows, rows + 4))
     result = repair([src], str(tmp_path / "out"), Settings(**facts), repack="best-fit", jobs=1)
@@ -278,7 +282,7 @@ def test_best_fit_repack_of_short_documents_is_best_fit_decreasing_exactly(tmp_p
     cols = pack(docs, seq_len, eos=EOS, pad=PAD)
     cols = {k: v + [v[i] for i in (3, 4)] for k, v in cols.items()}  # two windows written twice
     src = write(tmp_path / "in" / "short.parquet", cols)
-    facts = dict(eos_id=EOS, pad_id=PAD, seq_len=seq_len)
+    facts = dict(eos_id=EOS, pad_id=PAD, seq_len=seq_len, rule=WINDOWS)
     result = repair([src], str(tmp_path / "out"), Settings(**facts), repack="best-fit", jobs=1)
     assert result.exit_code == 0, result.still_found
     got = read(tmp_path / "out" / "short.parquet")

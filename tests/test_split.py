@@ -382,13 +382,16 @@ def test_near_duplicates_across_cuts_match_whole_scan(tmp_path, cut):
         if dst != 85:
             ids[dst][63] = ids[src][63] % (VOCAB - 3) + 3 if ids[src][63] + 1 >= VOCAB else ids[src][63] + 1
     path = write(tmp_path / "a.parquet", {"input_ids": ids}, row_group_size=10)
-    settings = dict(vocab_size=VOCAB, only=("near-duplicate", "exact-duplicate"))
+    # Rows are the unit here: documents (the default) are not carried across the parts of a split shard.
+    settings = dict(vocab_size=VOCAB, only=("near-duplicate", "exact-duplicate"),
+                    rule={"near-duplicate": {"unit": "window"}, "exact-duplicate": {"unit": "window"}})
     whole = report([path], **settings)
     assert report([path], SerialParts(3), **settings) == whole
     assert len(cut[0]) == 3
     near = [f for f in whole["findings"] if f["rule"] == "near-duplicate"]
-    # a cluster lists its distinct contents (row 85, an exact copy of row 1, is exact-duplicate's)
-    assert sorted(sorted(i["row"] for i in f["instances"]) for f in near) == [[1, 40], [12, 61], [30, 31], [50, 88]]
+    # the clusters list their members, row 85 (an exact copy of row 1) too
+    assert sorted(sorted([c["kept"]["row"]] + [o["row"] for o in c["others"]]) for f in near
+                  for c in f["evidence"]["clusterList"]) == [[1, 40, 85], [12, 61], [30, 31], [50, 88]]
 
 
 def test_a_part_that_stopped_ends_the_shard_but_keyed_rules_keep_every_part(tmp_path, cut):
@@ -398,7 +401,7 @@ def test_a_part_that_stopped_ends_the_shard_but_keyed_rules_keep_every_part(tmp_
 
     path = write(tmp_path / "a.parquet", {"input_ids": [[i % 7 + 3] * 30 for i in range(40)]}, row_group_size=10)
     shard = discover([path])[0]
-    s = Settings(vocab_size=VOCAB, only=("near-duplicate", "token-range"))
+    s = Settings(vocab_size=VOCAB, only=("near-duplicate", "token-range"), rule={"near-duplicate": {"unit": "window"}})
     rules = select_rules(s, registry())
     parts = split.plan(shard, s, 2)
     results = [scan_shard(shard, s, rules, part=part) for part in parts]

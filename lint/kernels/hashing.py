@@ -111,3 +111,104 @@ def content_hashes(values: np.ndarray, starts: np.ndarray, ends: np.ndarray, dom
 def hex_digest(content: np.ndarray) -> str:
     """A content hash as 32 hex digits (stable across runs: fingerprints of findings use it)."""
     return f"{int(content[0]):016x}{int(content[1]):016x}"
+
+
+# -- documents of a token stream ---------------------------------------------------------------------------------
+
+#: Odd bases of the two polynomial lanes of :func:`document_hashes` (fixed pseudo-random numbers).
+_STREAM_BASES = (0x9FB21C651E98DF25, 0xC2B2AE3D27D4EB4F)
+#: Tokens per block of the prefix sums of :func:`document_hashes` (bounds the small power tables).
+_STREAM_BLOCK = 1 << 12
+#: Tokens per chunk of the running sums (their scratch, 8 bytes a token, stays in a core's cache).
+_STREAM_CHUNK = 1 << 15
+
+
+def _powers(base: int, count: int) -> np.ndarray:
+    """``base**0 .. base**(count - 1)`` modulo 2**64."""
+    out = np.full(count, base, dtype=np.uint64)
+    if count:
+        out[0] = 1
+        np.multiply.accumulate(out, out=out)
+    return out
+
+
+def _inverse(base: int) -> int:
+    """The inverse of an odd number modulo 2**64 (Newton's iteration doubles the correct bits each step)."""
+    inv = base
+    for _ in range(6):
+        inv = (inv * (2 - base * inv)) & 0xFFFF_FFFF_FFFF_FFFF
+    return inv
+
+
+_STREAM_TABLES = [(_powers(b, _STREAM_BLOCK), _powers(_inverse(b), _STREAM_BLOCK),
+                   int(_powers(b, _STREAM_BLOCK + 1)[-1]), int(_powers(_inverse(b), _STREAM_BLOCK + 1)[-1]))
+                  for b in _STREAM_BASES]
+
+
+def document_hashes(words: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+    """128-bit content hash of each document ``words[offsets[i]:offsets[i + 1]]`` of a token stream, shape
+    ``(documents, 2)``, uint64: equal token ids, equal hash; stable across runs.
+
+    ``words`` holds the documents' token ids modulo 2**32 as uint64 (:func:`corpuscle.kernels.units.as_words`,
+    shared with the shingle hashes); the documents lie back to back. Each of two lanes is the polynomial
+    ``sum_j m_j * x**j`` modulo 2**64 over the document's words ``m_j``, with its own odd base ``x``, evaluated
+    for every document at once from one running sum over the whole stream::
+
+        P[i] = sum_{t < i} m_t * x**t,    lane(doc [s, e)) = (P[e] - P[s]) * x**(-s)
+
+    (odd numbers are invertible modulo 2**64); the running sum is made a block of :data:`_STREAM_BLOCK` tokens at
+    a time (a multiply and a cumulative sum per token and lane, no gather), and each lane is finished with the
+    document's length and ``mix64``. This is a fingerprint, not a universal hash: for documents not built against
+    it two different ones share both lanes with probability about 2**-128 (heuristic), but crafted inputs can
+    collide (polynomial hashing modulo a power of two is weak against Thue-Morse-like sequences, from memory).
+    Window rows keep :func:`content_hashes`, whose guarantee is stated in the module notes.
+    """
+    from corpuscle.kernels.minhash import mix64
+
+    offsets = np.asarray(offsets, dtype=np.int64)
+    count = len(offsets) - 1
+    out = np.empty((count, 2), dtype=np.uint64)
+    if count <= 0:
+        return out.reshape(0, 2)
+    lo, hi = int(offsets[0]), int(offsets[-1])
+    size = hi - lo
+    block = _STREAM_BLOCK
+    blocks = -(-size // block) if size else 1
+    whole = size // block  # blocks read in place; the last, partial one is copied into a padded block
+    grid = words[lo:lo + whole * block].reshape(whole, block)
+    if whole < blocks:
+        last = np.zeros((1, block), dtype=np.uint64)
+        last[0, :size - whole * block] = words[lo + whole * block:hi]
+    bounds = offsets - lo
+    b_of, u_of = bounds // block, bounds % block
+    lengths = np.diff(offsets).astype(np.uint64)
+    inside = u_of > 0
+    # Per lane: the local prefix sums (m_t * x**u summed within each block), made a chunk of blocks at a time so
+    # that the scratch stays in cache; only the block sums and the prefixes at the boundaries are kept.
+    chunk_blocks = max(1, _STREAM_CHUNK // block)
+    scratch = np.empty((min(chunk_blocks, blocks), block), dtype=np.uint64)
+    sums = np.zeros((len(_STREAM_TABLES), blocks), dtype=np.uint64)
+    before = np.zeros((len(_STREAM_TABLES), len(bounds)), dtype=np.uint64)
+    for r0 in range(0, blocks, chunk_blocks):
+        r1 = min(blocks, r0 + chunk_blocks)
+        a, z = np.searchsorted(b_of, [r0, r1])
+        here = np.arange(a, z)[inside[a:z]]
+        local = scratch[:r1 - r0]
+        source = grid[r0:r1] if r1 <= whole else np.concatenate([grid[r0:whole], last])
+        for lane, (small, _, _, _) in enumerate(_STREAM_TABLES):
+            np.multiply(source, small, out=local)  # m_t * x**u within each block
+            np.cumsum(local, axis=1, out=local)
+            sums[lane, r0:r1] = local[:, -1]
+            before[lane, here] = local[b_of[here] - r0, u_of[here] - 1]
+    for lane, (_, inv_small, big, inv_big) in enumerate(_STREAM_TABLES):
+        # Block prefixes: BP[j] = sum over earlier blocks of x**(j'B) * (their sum).
+        block_pow = _powers(big, blocks + 1)
+        prefix_blocks = np.zeros(blocks + 1, dtype=np.uint64)
+        np.cumsum(sums[lane] * block_pow[:blocks], out=prefix_blocks[1:])
+        # P at every boundary: BP[j] + x**(jB) * (local prefix before u within block j).
+        prefix = prefix_blocks[b_of] + block_pow[b_of] * before[lane]
+        inv_pow = inv_small[u_of[:-1]] * _powers(inv_big, blocks + 1)[b_of[:-1]]
+        lane_value = (prefix[1:] - prefix[:-1]) * inv_pow
+        lane_value ^= lengths * np.uint64(0x9E3779B97F4A7C15) + np.uint64(lane)
+        out[:, lane] = mix64(lane_value)
+    return out

@@ -356,3 +356,52 @@ def _ragged_arange(counts: np.ndarray) -> np.ndarray:
     total = int(counts.sum())
     return np.arange(total) - np.repeat(np.cumsum(counts) - counts, counts)
 
+
+# --- exact verification ---------------------------------------------------------
+
+
+def unique_sets(hashes, offsets) -> tuple[np.ndarray, np.ndarray]:
+    """Each window's shingle hashes as a set: sorted and without repeats, back to back.
+
+    ``hashes`` (uint32) and ``offsets`` as :func:`corpuscle.kernels.minhash.shingle_hashes` gives them; returns
+    ``(values, set_offsets)``. One sort of ``window << 32 | hash`` for all windows at once.
+    """
+    hashes = np.asarray(hashes, dtype=np.uint32)
+    offsets = np.asarray(offsets, dtype=np.int64)
+    counts = np.diff(offsets)
+    owner = np.repeat(np.arange(len(counts), dtype=np.uint64), counts)
+    keyed = (owner << np.uint64(32)) | hashes[offsets[0]:offsets[-1]].astype(np.uint64)
+    keyed.sort()  # (np.unique would do, but may hash rather than sort: a plain sort is faster here)
+    if len(keyed) > 1:
+        keyed = keyed[np.concatenate(([True], keyed[1:] != keyed[:-1]))]
+    set_offsets = np.zeros(len(counts) + 1, dtype=np.int64)
+    np.cumsum(np.bincount((keyed >> np.uint64(32)).astype(np.int64), minlength=len(counts)), out=set_offsets[1:])
+    return (keyed & np.uint64(0xFFFFFFFF)).astype(np.uint32), set_offsets
+
+
+def exact_jaccard(values, set_offsets, pairs) -> np.ndarray:
+    """The exact Jaccard similarity ``|A & B| / |A | B|`` of the sets of each pair, float64.
+
+    ``values``/``set_offsets`` are sets as :func:`unique_sets` gives them; ``pairs`` an ``(m, 2)`` array of set
+    indices. Vectorized over all pairs: the first set of every pair is laid out with its pair's number in the
+    high bits, the second likewise, and one ``np.isin`` over the two concatenations counts the common elements
+    (sets are free of repeats, so a pair-tagged element of A occurs in the tagged B at most once). Two empty sets
+    have similarity 0.
+    """
+    values = np.asarray(values, dtype=np.uint32)
+    set_offsets = np.asarray(set_offsets, dtype=np.int64)
+    pairs = np.asarray(pairs, dtype=np.int64).reshape(-1, 2)
+    sizes = np.diff(set_offsets)
+    size_a, size_b = sizes[pairs[:, 0]], sizes[pairs[:, 1]]
+
+    def tagged(which: np.ndarray, size: np.ndarray) -> np.ndarray:
+        tag = np.repeat(np.arange(len(pairs), dtype=np.uint64), size)
+        position = np.arange(int(size.sum())) + np.repeat(set_offsets[which] - (np.cumsum(size) - size), size)
+        return (tag << np.uint64(32)) | values[position].astype(np.uint64)
+
+    a, b = tagged(pairs[:, 0], size_a), tagged(pairs[:, 1], size_b)
+    common = np.bincount((a[np.isin(a, b, assume_unique=True)] >> np.uint64(32)).astype(np.int64),
+                         minlength=len(pairs))
+    union = size_a + size_b - common
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(union > 0, common / np.maximum(union, 1), 0.0)

@@ -118,7 +118,7 @@ class MinHashSettings:
         _check_seed(self.seed)
 
 
-def shingle_hashes(values, offsets, n: int = DEFAULT_N) -> tuple[np.ndarray, np.ndarray]:
+def shingle_hashes(values, offsets, n: int = DEFAULT_N, mixed=None) -> tuple[np.ndarray, np.ndarray]:
     """Hash every ``n``-token shingle of many windows.
 
     ``values`` is a flat 1-D integer array of token ids and ``offsets`` an
@@ -131,7 +131,9 @@ def shingle_hashes(values, offsets, n: int = DEFAULT_N) -> tuple[np.ndarray, np.
     in groups of about :data:`_SHINGLE_TOKENS` tokens, so the scratch arrays
     (about 24 bytes per token of a group) stay in a core's cache: on a batch of
     millions of tokens, numpy passes over whole arrays would be bound by memory
-    bandwidth, which the processes of a parallel scan share.
+    bandwidth, which the processes of a parallel scan share. ``mixed``, when
+    given, is ``mix64`` of ``values`` as uint64 (computed once and shared with
+    the content hash of documents); the result is the same.
     """
     _check_n(n)
     values = np.asarray(values)
@@ -152,14 +154,17 @@ def shingle_hashes(values, offsets, n: int = DEFAULT_N) -> tuple[np.ndarray, np.
     cuts = np.unique(np.concatenate(([0], np.searchsorted(offsets, marks), [len(lengths)])))
     for w0, w1 in zip(cuts[:-1].tolist(), cuts[1:].tolist()):
         _shingle_group(values, offsets[w0:w1 + 1], lengths[w0:w1], counts[w0:w1], n,
-                       hashes[shingle_offsets[w0]:shingle_offsets[w1]])
+                       hashes[shingle_offsets[w0]:shingle_offsets[w1]], mixed)
     return hashes, shingle_offsets
 
 
-def _shingle_group(values, offsets, lengths, counts, n: int, out: np.ndarray) -> None:
+def _shingle_group(values, offsets, lengths, counts, n: int, out: np.ndarray, mixed=None) -> None:
     """The shingle hashes of consecutive windows (``offsets`` into ``values``), written to ``out``."""
     first = int(offsets[0])
-    tokens = mix64(values[first : int(offsets[-1])].astype(np.uint64))
+    if mixed is not None:
+        tokens = mixed[first : int(offsets[-1])]
+    else:
+        tokens = mix64(values[first : int(offsets[-1])].astype(np.uint64))
     is_long = lengths >= n
     is_short = (lengths > 0) & ~is_long
     local = np.zeros(len(lengths) + 1, dtype=np.int64)
@@ -187,6 +192,110 @@ def _shingle_group(values, offsets, lengths, counts, n: int, out: np.ndarray) ->
             live = size > k
             partial[live] = partial[live] * np.uint64(POLY) + tokens[start[live] + k]
         out[local[short]] = _finish(partial)
+
+
+#: Keys of :func:`multilinear_shingle_hashes`: one per token position of a shingle, then one per shingle length.
+_SHINGLE_KEY_SEED = 0x51A6_1E5E_ED00_C0DE
+
+
+@lru_cache(maxsize=8)
+def _multilinear_keys(n: int) -> np.ndarray:
+    keys = mix64(np.arange(2 * n + 1, dtype=np.uint64) ^ np.uint64(_SHINGLE_KEY_SEED))
+    keys.flags.writeable = False
+    return keys
+
+
+def multilinear_shingle_hashes(words, offsets, n: int = DEFAULT_N) -> tuple[np.ndarray, np.ndarray]:
+    """Hash every ``n``-token shingle of many windows with one multiplication per token of a shingle: the
+    shingle hashes of token documents (:mod:`corpuscle.kernels.units`), where they are made for every token of a
+    corpus and verified exactly afterwards.
+
+    ``words`` are the token ids modulo 2**32 as uint64 (:func:`corpuscle.kernels.units.Units`), ``offsets`` as for
+    :func:`shingle_hashes`, and the windowing is the same (a window shorter than ``n`` is one shingle of all its
+    tokens). A shingle ``s_0 .. s_{L-1}`` (L = n, or the length of a short window) hashes to the top 32 bits of::
+
+        k_{n + L} + sum_j k_j * s_j   (mod 2**64)
+
+    with fixed pseudo-random 64-bit keys ``k`` (``mix64`` of fixed inputs): the multilinear family of
+    :mod:`corpuscle.kernels.hashing`, whose top 32 bits are strongly universal for keys drawn at random (from
+    memory: Lemire and Kaser, 2014) -- so two different shingles collide with probability about 2**-32. Not the
+    hash family of :func:`shingle_hash` (which mixes every token first and is what datasketch is fed in the tests):
+    cheaper, and used where no signature is compared with datasketch's.
+    """
+    _check_n(n)
+    words = np.asarray(words)
+    if words.ndim != 1 or words.dtype != np.uint64:
+        raise TypeError("words must be a 1-D uint64 array of token ids modulo 2**32; hint: Units.words")
+    offsets = _check_offsets(offsets, len(words), "offsets")
+    keys = _multilinear_keys(n)
+    lengths = np.diff(offsets)
+    counts = np.where(lengths >= n, lengths - n + 1, (lengths > 0).astype(np.int64))
+    shingle_offsets = np.zeros(len(lengths) + 1, dtype=np.int64)
+    np.cumsum(counts, out=shingle_offsets[1:])
+    hashes = np.empty(int(shingle_offsets[-1]), dtype=np.uint32)
+    first = int(offsets[0])
+    marks = first + np.arange(_SHINGLE_TOKENS, int(offsets[-1]) - first, _SHINGLE_TOKENS)
+    cuts = np.unique(np.concatenate(([0], np.searchsorted(offsets, marks), [len(lengths)])))
+    for w0, w1 in zip(cuts[:-1].tolist(), cuts[1:].tolist()):
+        lo, hi = int(offsets[w0]), int(offsets[w1])
+        group, size, count = words[lo:hi], lengths[w0:w1], counts[w0:w1]
+        out = hashes[shingle_offsets[w0]:shingle_offsets[w1]]
+        is_long = size >= n
+        if is_long.any():
+            starts = len(group) - n + 1
+            full = group[:starts] * keys[0]
+            for k in range(1, n):
+                full += group[k:k + starts] * keys[k]
+            full += keys[2 * n]
+            inside = np.where(is_long, count, 0)
+            pattern = np.tile(np.array([True, False]), len(size))
+            valid = np.repeat(pattern, np.column_stack((inside, size - inside)).ravel())
+            out[np.repeat(is_long, count)] = (full[valid[:starts]] >> np.uint64(32)).astype(np.uint32)
+        short = np.flatnonzero((size > 0) & ~is_long)
+        if len(short):
+            local = np.zeros(len(size) + 1, dtype=np.int64)
+            np.cumsum(count, out=local[1:])
+            start = offsets[w0:w1][short] - lo
+            length = size[short]
+            partial = keys[n + length].copy()
+            for k in range(n - 1):
+                live = length > k
+                partial[live] += group[start[live] + k] * keys[k]
+            out[local[short]] = (partial >> np.uint64(32)).astype(np.uint32)
+    return hashes, shingle_offsets
+
+
+def sample_shingles(hashes, shingle_offsets, rate: int, least: int) -> tuple[np.ndarray, np.ndarray]:
+    """The shingles a MinHash signature is made from when only a sample of them is used: in a window of ``c``
+    shingles, those whose hash is below ``2**32 * max(1 / rate, least / c)`` -- one in ``rate`` of a long
+    window's shingles, about ``least`` of a shorter one, every shingle of a window of at most ``least``.
+    ``rate`` 1 takes every shingle. Returns ``(hashes, shingle_offsets)`` of the sample, windows as given.
+
+    The sample is consistent: a shingle is taken or left by its hash value alone (under a threshold that depends
+    only on the window's size), so two windows whose shingle sets have Jaccard similarity ``s`` have samples of
+    about that similarity -- exactly so in expectation when both are long or of the same size; when a short window
+    meets one of another size, the thresholds differ by the ratio of their sizes and the samples' similarity is
+    about ``s`` times that ratio (a near copy made by small edits has nearly the same size). The sample serves the
+    search for candidates only; candidates are verified on the full shingle sets.
+    """
+    hashes = _as_uint32(hashes)
+    shingle_offsets = _check_offsets(shingle_offsets, len(hashes), "shingle_offsets")
+    if rate <= 1:
+        return hashes, shingle_offsets
+    lo = int(shingle_offsets[0])
+    local = shingle_offsets - lo
+    view = hashes[lo:int(shingle_offsets[-1])]
+    counts = np.diff(local)
+    share = np.maximum(1.0 / rate, least / np.maximum(counts, 1))
+    highest = (np.minimum(np.floor(share * 2.0 ** 32), 2.0 ** 32) - 1).astype(np.uint32)  # hash < limit
+    keep = view <= np.repeat(highest, counts)
+    taken = np.zeros(len(counts), dtype=np.int64)
+    nonempty = np.flatnonzero(counts > 0)
+    if len(nonempty):
+        taken[nonempty] = np.add.reduceat(keep, local[nonempty], dtype=np.int64)
+    new_offsets = np.zeros(len(counts) + 1, dtype=np.int64)
+    np.cumsum(taken, out=new_offsets[1:])
+    return view[keep], new_offsets
 
 
 def shingle_hash(shingle) -> int:

@@ -126,3 +126,60 @@ def npy_blocks(path: str):
             if fh.readinto(block.data) != block.nbytes:
                 raise OSError(f"{path} ends before its {shape[0]} rows; it was cut or changed during the scan")
             yield lo, block
+
+
+class ShingleSpill(SignatureSpill):
+    """The shingle hashes of every unit of one shard, back to back in unit order (uint32, one column), for the
+    exact verification of candidate pairs; :class:`ShingleEndsSpill` holds where each unit's hashes end."""
+
+    DTYPE = "<u4"
+    PREFIX = "shingles-"
+    WHAT = "shingle hashes"
+
+    def __init__(self, folder: str):
+        super().__init__(folder, 1)
+
+
+class ShingleEndsSpill(SignatureSpill):
+    """Per unit of one shard, the end of its shingle hashes in the :class:`ShingleSpill` file (uint64, one
+    column: the running count)."""
+
+    DTYPE = "<u8"
+    PREFIX = "shingle-ends-"
+    WHAT = "shingle offsets"
+
+    def __init__(self, folder: str):
+        super().__init__(folder, 1)
+        self.total = 0
+
+    def append_counts(self, counts: np.ndarray) -> None:
+        ends = self.total + np.cumsum(np.asarray(counts, dtype=np.uint64))
+        if len(ends):
+            self.total = int(ends[-1])
+        self.append(ends.reshape(-1, 1))
+
+
+def read_shingle_sets(shingles: str, ends: str, units: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The shingle hashes of the given units (sorted, distinct indices within the shard) from a shard's
+    :class:`ShingleSpill` and :class:`ShingleEndsSpill` files: ``(hashes, offsets)``, unit by unit in the order
+    given. The ranges are gathered with one fancy index into a memory map of the file, let go at once."""
+    units = np.asarray(units, dtype=np.int64)
+    if len(units) == 0:
+        return np.zeros(0, dtype=np.uint32), np.zeros(1, dtype=np.int64)
+    before = np.unique(np.concatenate([units, units[units > 0] - 1]))
+    found = read_rows(ends, before)[:, 0].astype(np.int64)
+    end = found[np.searchsorted(before, units)]
+    start = np.zeros(len(units), dtype=np.int64)
+    has = units > 0
+    start[has] = found[np.searchsorted(before, units[has] - 1)]
+    size = end - start
+    offsets = np.zeros(len(units) + 1, dtype=np.int64)
+    np.cumsum(size, out=offsets[1:])
+    shape, dtype, header = npy_layout(shingles)
+    if offsets[-1] == 0:
+        return np.zeros(0, dtype=np.uint32), offsets
+    position = np.arange(int(offsets[-1])) + np.repeat(start - offsets[:-1], size)
+    mapped = np.memmap(shingles, dtype=dtype, mode="r", offset=header, shape=(shape[0],))
+    hashes = np.asarray(mapped[position], dtype=np.uint32)
+    del mapped
+    return hashes, offsets

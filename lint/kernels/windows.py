@@ -10,15 +10,17 @@ import pyarrow.types as pat
 from corpuscle.io.batch import Batch, is_integer_list, is_text
 from corpuscle.kernels.hashing import content_hashes
 
-TOKENS, TEXT = 0, 1
-"""Window domains: rows of a token column, documents of a text column."""
+TOKENS, TEXT, DOCUMENTS = 0, 1, 2
+"""Unit domains: rows of a token column (windows), documents of a text column, documents of a token column (as the
+document reading finds them, see :mod:`corpuscle.kernels.units`)."""
 
 
 @dataclass
 class Windows:
     """The non-empty windows of one batch: batch-local index, shard row, length (tokens or UTF-8 bytes), content
     hash and domain of each; ``domain`` says whether they are token rows or text documents. Rows and lengths are
-    uint32 when they fit (always, but in shards of over 2**32 rows or windows of over 2**32 tokens or bytes)."""
+    uint32 when they fit (always, but in shards of over 2**32 rows or windows of over 2**32 tokens or bytes).
+    ``offsets`` is the offset of each unit's first token within its row (0 for rows and text documents)."""
 
     domain: int
     local: np.ndarray
@@ -26,6 +28,11 @@ class Windows:
     lengths: np.ndarray
     content: np.ndarray
     domains: np.ndarray
+    offsets: np.ndarray = None
+
+    def __post_init__(self):
+        if self.offsets is None:
+            self.offsets = np.zeros(len(self.rows), dtype=np.uint32)
 
 
 def window_domain(batch: Batch, settings) -> int | None:
@@ -65,11 +72,11 @@ def _windows(batch: Batch, settings) -> Windows:
             lengths[~pc.is_valid(array).to_numpy(zero_copy_only=False)] = 0  # Arrow allows bytes under a null
     local = np.flatnonzero(lengths > 0)
     content = content_hashes(values, offsets[local], offsets[local + 1], domain)
-    return Windows(domain, local, _narrow(batch.rows[local]), _narrow(lengths[local]), content,
+    return Windows(domain, local, narrow(batch.rows[local]), narrow(lengths[local]), content,
                    np.full(len(local), domain, dtype=np.uint8))
 
 
-def _narrow(values: np.ndarray) -> np.ndarray:
+def narrow(values: np.ndarray) -> np.ndarray:
     """Non-negative integers as uint32 when they all fit, else as they are."""
     if len(values) == 0 or int(values.max()) <= 0xFFFF_FFFF:
         return values.astype(np.uint32)

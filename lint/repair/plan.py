@@ -146,7 +146,7 @@ def plan_fixes(report, shards: list[Shard], requested: tuple[str, ...]) -> dict[
         uri = entry.get("uri")
         if uri not in found:
             continue
-        if entry.get("offset") is not None:
+        if entry.get("offset") is not None and entry.get("unit") != "window":  # a document, named by its start
             starts.setdefault(uri, []).append((int(entry["row"]) << 32) | int(entry["offset"]))
         else:
             rows.setdefault(uri, []).append(int(entry["row"]))

@@ -301,6 +301,7 @@ def _finding_line(f, group: list, rules: dict, causes: dict[str, str], rule_of: 
     state = f" [{_state(f)}]" if _state(f) else ""
     head = f"{MARK[f.level]} {f.rule_id}  {where}: {counted(count, units.unit(f))}{_estimate(f)}{at}{state}: "
     lines = [head + _clip(what, LINE - len(head))]
+    lines += _largest_clusters(group)
     if f.caused_by and f.caused_by in causes:
         lines.append(f"      fix: same cause as the {causes[f.caused_by]} finding above: fix that first.")
     else:
@@ -308,6 +309,34 @@ def _finding_line(f, group: list, rules: dict, causes: dict[str, str], rule_of: 
     if f.explains:
         named = sorted({rule_of[e] for e in f.explains if e in rule_of})
         lines.append(f"      cause of: {len(f.explains)} finding(s) below ({', '.join(named)})")
+    return lines
+
+
+def _largest_clusters(group: list) -> list[str]:
+    """For findings that list duplicate clusters in their evidence (``clusterList``): the largest few, one line each
+    ("3 copies: row 0 = row 12 = row 24"), and how many more the SARIF/JSON report holds."""
+    clusters = [(f, c) for f in group for c in f.evidence.get("clusterList") or () if isinstance(c, dict)]
+    if not clusters:
+        return []
+    clusters.sort(key=lambda fc: -int(fc[1].get("members", 0)))
+    lines = []
+    for f, cluster in clusters[:CLUSTERS]:
+        members = [cluster.get("kept") or {}] + list(cluster.get("others") or [])
+        shards = {m.get("uri") for m in members}
+
+        def place(member, f=f, shards=shards):
+            where = f"row {member.get('row', 0):,}"
+            if member.get("offset"):  # a document that starts inside its row (0: at the row's start)
+                where += f", {units.offset_word(f)} {member['offset']:,}"
+            named = len(shards) > 1 or f.uri is None or len(group) > 1  # the shard is not the line's own
+            return f"{member['uri']} {where}" if named else where
+
+        shown = " = ".join(place(m) for m in members[:3] if m)
+        total = int(cluster.get("members", len(members)))
+        more = f" (+{total - 3:,} more)" if total > 3 else ""
+        lines.append(f"      {counted(total, 'copies')}: {shown}{more}")
+    if len(clusters) > CLUSTERS:
+        lines.append(f"      and {len(clusters) - CLUSTERS:,} more clusters, listed in the SARIF/JSON report")
     return lines
 
 

@@ -1,12 +1,13 @@
 """Benchmark: a full scan of a generated tokenized Parquet shard against pyarrow just reading it.
 
-    python tests/perf/bench_scan.py [--tokens 50000000] [--seq-len 2048] [--keep DIR]
+    python tests/perf/bench_scan.py [--tokens 50000000] [--seq-len 2048] [--rules token|all] [--keep DIR]
 
 Writes one shard of packed windows (input_ids, shifted labels, position_ids; int32 lists) with at least
 ``--tokens`` tokens, then measures in this one run:
   (a) pyarrow reading the shard batch by batch (all columns, same batch size as the scan, one thread),
-  (b) ``corpuscle scan`` of it with the token-structure rules, in a child process (``--jobs 1``: one core, one
-      Arrow thread),
+  (b) ``corpuscle scan`` of it with the token-structure rules (``--rules all``: every rule, the default scan, the
+      duplicate rules comparing the shard's documents), in a child process (``--jobs 1``: one core, one Arrow
+      thread),
   (c) the ratio b / a,
   (d) the peak resident memory of the scanning process.
 The file is read once before timing so that both timings see a warm page cache.
@@ -80,9 +81,10 @@ def time_read(path: str, batch_size: int, use_threads: bool = True) -> float:
     return time.perf_counter() - started
 
 
-def time_scan(path: str) -> tuple[float, float, int]:
-    code = ("import sys, time; from lint import scan, Settings; from rules import registry; "
-            f"only=tuple(r for r in {RULES!r}.split(',') if r in registry()); "
+def time_scan(path: str, rules: str = "token") -> tuple[float, float, int]:
+    chosen = "()" if rules == "all" else f"tuple(r for r in {RULES!r}.split(',') if r in registry())"
+    code = ("import sys, time; from corpuscle import scan, Settings; from corpuscle.engine.registry import registry; "
+            f"only={chosen}; "
             f"t=time.perf_counter(); r=scan([{path!r}], Settings(only=only, vocab_size={VOCAB}), jobs=1); "
             "print(time.perf_counter()-t, [int(l.split()[1]) for l in open('/proc/self/status') if l.startswith('VmHWM')][0], len(r.findings))")
     out = subprocess.run([sys.executable, "-c", code], check=True, capture_output=True, text=True).stdout.split()
@@ -93,6 +95,8 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--tokens", type=int, default=50_000_000)
     parser.add_argument("--seq-len", type=int, default=2048)
+    parser.add_argument("--rules", choices=("token", "all"), default="token",
+                        help="token: the token-structure rules (default); all: every rule, the default scan")
     parser.add_argument("--keep", help="folder to write the shard into (kept); default: a temporary folder")
     args = parser.parse_args()
     folder = args.keep or tempfile.mkdtemp(prefix="corpuscle-bench-")
@@ -108,7 +112,7 @@ def main() -> None:
     batch_rows = max(1, DEFAULT_BATCH_TOKENS // args.seq_len)
     time_read(path, batch_rows)  # warm the page cache
     read_s = time_read(path, batch_rows, use_threads=False)  # one thread, as the scan with --jobs 1 decodes
-    scan_s, peak, found = time_scan(path)
+    scan_s, peak, found = time_scan(path, args.rules)
     print(f"shard: {rows:,} windows x {args.seq_len} = {tokens:,} tokens, {os.path.getsize(path) / 1e6:,.0f} MB")
     print(f"(a) pyarrow read, one thread     : {read_s:8.2f} s")
     print(f"(b) corpuscle scan (--jobs 1)    : {scan_s:8.2f} s  ({tokens / scan_s / 1e6:,.1f} M tokens/s, {found} findings)")
