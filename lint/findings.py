@@ -126,7 +126,8 @@ class Finding:
     @property
     def fingerprint(self) -> str:
         key = "\x1f".join([self.rule_id, self.uri or "*", self.kind])
-        return hashlib.sha256(key.encode()).hexdigest()[:32]
+        # A file name that is not valid UTF-8 arrives with surrogate escapes (os.fsdecode): hash its bytes.
+        return hashlib.sha256(key.encode("utf-8", "surrogateescape")).hexdigest()[:32]
 
     def instances(self) -> list[dict]:
         out = []

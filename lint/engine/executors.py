@@ -21,8 +21,10 @@ import os
 import shutil
 import tempfile
 import threading
+import time
 import uuid
 from concurrent.futures import ProcessPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
 from typing import Callable, Iterable, Iterator
 
 from corpuscle.engine.progress import Progress
@@ -70,6 +72,56 @@ def _one_arrow_thread() -> None:
     import pyarrow
 
     pyarrow.set_cpu_count(1)
+
+
+#: How often a pool process checks that the process that started the scan is still alive, in seconds.
+WATCH_SECONDS = 1.0
+
+
+def _pool_process(parent: int) -> None:
+    """Initializer of a pool process: one Arrow thread (:func:`_one_arrow_thread`); Ctrl-C is the parent's to
+    handle (it stops the pool); and a watch that ends this process when the scan's process ``parent`` is gone (it
+    was killed, e.g. by SIGKILL, and can no longer stop its pool), so no orphan keeps scanning."""
+    import signal
+
+    _one_arrow_thread()
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+    def watch() -> None:
+        while True:
+            time.sleep(WATCH_SECONDS)
+            if not _alive(parent):
+                os._exit(1)
+
+    threading.Thread(target=watch, name="corpuscle-parent-watch", daemon=True).start()
+
+
+def _alive(pid: int) -> bool:
+    """Whether a process ``pid`` exists on this machine (a zombie counts as gone)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            return fh.read().rsplit(b")", 1)[1].split()[0] != b"Z"
+    except OSError:
+        return True
+
+
+def stop_pool(pool) -> None:
+    """Stop a process pool at once: pending work is cancelled and its processes are ended (SIGTERM), without
+    waiting for the work they are doing (what ``shutdown(wait=True)`` would do on an interrupt)."""
+    processes = list((getattr(pool, "_processes", None) or {}).values())
+    pool.shutdown(wait=False, cancel_futures=True)
+    for process in processes:
+        with contextlib.suppress(Exception):
+            process.terminate()
+    for process in processes:
+        with contextlib.suppress(Exception):
+            process.join(5)
 
 
 @contextlib.contextmanager
@@ -124,8 +176,9 @@ class _SharedWork:
 
     def results(self) -> Iterator:
         done = {}
-        with ProcessPoolExecutor(max_workers=self.workers, mp_context=self.context,
-                                 initializer=_one_arrow_thread) as pool:
+        pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=self.context, initializer=_pool_process,
+                                   initargs=(os.getpid(),))
+        try:
             # Starting a pool process waits for the fork server to import the engine: let another thread wait.
             starter = threading.Thread(target=lambda: [self._feed(pool) for _ in range(self.workers)], daemon=True)
             starter.start()
@@ -137,12 +190,21 @@ class _SharedWork:
                 future = self.futures.pop(i, None)
                 if i in done:
                     yield done.pop(i)
-                elif future is not None:
-                    yield future.result()
-                else:  # the pool could not take it (broken, or shutting down after an error)
-                    with _arrow_threads(1):
-                        result = self.fn(self.items[i])
-                    yield result
+                    continue
+                if future is not None:
+                    try:
+                        yield future.result()
+                        continue
+                    except BrokenProcessPool:  # its process died (killed, out of memory): redo the item here
+                        pass
+                # the pool could not take it (broken, or shutting down after an error), or its process died
+                with _arrow_threads(1):
+                    result = self.fn(self.items[i])
+                yield result
+        except BaseException:  # an error, Ctrl-C, SIGTERM, or the caller stopped early: stop the pool now
+            stop_pool(pool)
+            raise
+        pool.shutdown(wait=True)
 
 
 class LocalExecutor:

@@ -5,6 +5,7 @@ from __future__ import annotations
 from urllib.parse import quote
 
 import orjson
+from corpuscle.report import dump_json
 from corpuscle.findings import Finding
 from corpuscle.version import __version__
 
@@ -13,8 +14,9 @@ INFORMATION_URI = "https://pypi.org/project/corpuscle/"
 
 
 def artifact_uri(uri: str) -> str:
-    """The shard's uri as given, percent-encoded where a URI reference needs it (spaces, '%', '#', '?')."""
-    return quote(uri, safe="/:@!$&'()*+,;=-._~")
+    """The shard's uri as given, percent-encoded where a URI reference needs it (spaces, '%', '#', '?'); the bytes
+    of a name that is not valid UTF-8 (surrogate escapes) are percent-encoded as they are on disk (RFC 3986 §2.1)."""
+    return quote(uri.encode("utf-8", "surrogateescape"), safe="/:@!$&'()*+,;=-._~")
 
 
 def _rule_entry(rule) -> dict:
@@ -82,7 +84,7 @@ def to_sarif(report) -> dict:
         }},
         "artifacts": [{"location": {"uri": artifact_uri(s.uri)}, "length": s.length} for s in report.shards],
         "invocations": [{
-            "executionSuccessful": not any(n.level.name == "error" for n in report.notes),
+            "executionSuccessful": not report.incomplete,
             "toolExecutionNotifications": [_notification(n) for n in report.notes],
         }],
         "results": [_result(f, rule_index, artifact_index) for f in report.findings],
@@ -92,4 +94,4 @@ def to_sarif(report) -> dict:
 
 
 def render(report) -> bytes:
-    return orjson.dumps(to_sarif(report), option=orjson.OPT_INDENT_2 | orjson.OPT_SERIALIZE_NUMPY)
+    return dump_json(to_sarif(report), orjson.OPT_INDENT_2)
