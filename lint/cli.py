@@ -14,7 +14,7 @@ import click
 from corpuscle.engine.progress import TerminalProgress
 from corpuscle.engine.sampling import Sample
 from corpuscle.engine.scan import run, select_rules
-from corpuscle.io.outputs import OutputProblem, check_outputs
+from corpuscle.io.outputs import OutputProblem, check_outputs, check_work_folders
 from corpuscle.io.sources import NoShardsFound, discover
 from corpuscle.report import droplist, printable, sarif, text, write_atomic
 from corpuscle.report import json as json_report
@@ -151,6 +151,7 @@ def scan(paths, config_path, sarif_path, json_path, drop_list_path, jobs, sample
         shards = discover(list(paths))
         outputs = {"--sarif": sarif_path, "--json": json_path, "--drop-list": drop_list_path}
         check_outputs(outputs, list(paths), shards)
+        check_work_folders(rules)
     except (SettingsError, NoShardsFound, OutputProblem) as exc:
         raise UsageProblem(str(exc)) from None
     sample = Sample(sample_fraction, sample_seed) if sample_fraction is not None else None

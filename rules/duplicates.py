@@ -90,7 +90,6 @@ import os
 import shutil
 import tempfile
 import threading
-import uuid
 import weakref
 from dataclasses import dataclass
 
@@ -109,7 +108,7 @@ from corpuscle.kernels.lsh import (
     signature_digests,
 )
 from corpuscle.kernels.minhash import MinHashSettings, shingle_hashes, signatures, word_shingle_hashes
-from corpuscle.kernels.spill import BandSpill, SignatureSpill, npy_blocks, npy_layout, read_rows
+from corpuscle.kernels.spill import BandSpill, SignatureSpill, npy_blocks, npy_layout, read_rows, run_folder
 from corpuscle.kernels.text import document_text
 from corpuscle.kernels.windows import TOKENS, Windows, batch_windows, window_domain
 from corpuscle.rules.api import Rule, ShardState, share
@@ -617,7 +616,8 @@ class NearDuplicate(_DuplicateRule):
                              "hint: leave it empty for the system temporary folder, or give a folder every worker "
                              "of a cluster mounts at the same path")
         # One folder per scan for the signature files: the path travels with the rule to worker processes.
-        self.spill_folder = os.path.join(folder or tempfile.gettempdir(), f"corpuscle-minhash-{uuid.uuid4().hex}")
+        # Named after this process, so that a later scan removes it if this one is killed (see run_folder).
+        self.spill_folder = run_folder(folder or tempfile.gettempdir(), "corpuscle-minhash")
         weakref.finalize(self, shutil.rmtree, self.spill_folder, True)  # an interrupted scan leaves nothing
 
     def begin(self, shard, settings):

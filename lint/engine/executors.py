@@ -29,6 +29,7 @@ from typing import Callable, Iterable, Iterator
 
 from corpuscle.engine.progress import Progress
 from corpuscle.engine.registry import FAMILIES
+from corpuscle.kernels.spill import run_folder
 
 #: How to install what ``--cluster`` needs.
 CLUSTER_INSTALL = "pip install 'corpuscle[cluster]'"
@@ -273,6 +274,18 @@ def _distributed():
     return distributed
 
 
+def local_security():
+    """``distributed.security.Security.temporary()``: a self-signed certificate and key made for this run, required
+    of every connection (TLS both ways).  Needs the ``cryptography`` package (in the ``cluster`` extra)."""
+    from distributed.security import Security
+
+    try:
+        return Security.temporary()
+    except ImportError:
+        raise ClusterUnavailable(f"--cluster local secures its scheduler with TLS, which needs the cryptography "
+                                 f"package: {CLUSTER_INSTALL}") from None
+
+
 def _kept(half):
     return half[0]
 
@@ -410,19 +423,27 @@ class DaskExecutor:
         self.client = None
         self._cluster = None
         self._scratch = None
+        #: The TLS settings of a local cluster (:func:`local_security`), or None.
+        self.security = None
 
     def __enter__(self) -> "DaskExecutor":
         distributed = _distributed()
         try:
             if self.address == "local":
-                self._scratch = tempfile.mkdtemp(prefix="corpuscle-dask-")  # the workers' files; removed in close()
+                # The workers' files; removed in close(), or by a later run if this one is killed (see run_folder).
+                self._scratch = run_folder(tempfile.gettempdir(), "corpuscle-dask")
+                os.makedirs(self._scratch, mode=0o700)
+                # TLS with a certificate made for this run alone (in memory, never on disk): the scheduler and the
+                # workers accept only peers that hold it, so another user of this machine cannot connect to the
+                # scheduler and run code on the workers (loopback is no boundary between users).
+                self.security = local_security()
                 self._cluster = distributed.LocalCluster(
                     n_workers=self.jobs or os.cpu_count() or 1, threads_per_worker=1, processes=True,
                     host="127.0.0.1", scheduler_port=0, dashboard_address=None, silence_logs=logging.ERROR,
-                    local_directory=self._scratch,
+                    local_directory=self._scratch, protocol="tls://", security=self.security,
                     # No dashboard; the scheduler's HTTP server (health checks) on a free loopback port, not 8787.
                     scheduler_kwargs={"dashboard_address": "127.0.0.1:0"})
-                self.client = distributed.Client(self._cluster, timeout=self.timeout)
+                self.client = distributed.Client(self._cluster, timeout=self.timeout, security=self.security)
                 # One task at a time per worker process, one core each: Arrow decodes with one thread, as in the
                 # local pool (its own pool would have the workers compete for the same cores).
                 self.client.run(_one_arrow_thread)

@@ -26,7 +26,7 @@ from corpuscle.engine.split import Part
 from corpuscle.engine.split import workers as split_workers
 from corpuscle.findings import Finding, Level
 from corpuscle.io.batch import Shard, enough_first_records, first_records, is_integer_list
-from corpuscle.io.sources import absolute, discover, open_shard
+from corpuscle.io.sources import Limits, absolute, discover, open_shard
 from corpuscle.rules.api import Rule, ShardState, Unmergeable, inferred_by
 from corpuscle.settings import Settings, SettingsError
 
@@ -64,6 +64,8 @@ class ShardResult:
     part: dict | None = None
     #: Internal errors of the engine on this shard (not of one rule): the shard's scan is incomplete.
     errors: list = field(default_factory=list)
+    #: What the reader says the user should know that is no defect (e.g. a compressed stream without checksum).
+    notices: list = field(default_factory=list)
 
 
 @dataclass
@@ -182,7 +184,8 @@ def _scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=No
     pending: list = []
     if part is not None:  # the facts were inferred from the shard's first records before the parts were read
         states = begin(part.inferred)
-    with open_shard(shard, tokens_column=facts.tokens_column, sample=sampling, part=part) as reader:
+    with open_shard(shard, tokens_column=facts.tokens_column, sample=sampling, part=part,
+                    limits=Limits.of(facts)) as reader:
         # rows, tokens and bytes consumed already reported to ``progress``
         told = (0, 0, part.lo if part is not None and shard.format == "jsonl" else 0)
 
@@ -237,7 +240,8 @@ def _scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=No
     if progress is not None and part is None:
         progress.shard_done(shard.uri, rows, tokens)
     return ShardResult(shard, final, skipped, crashed, facts, rows, tokens, time.perf_counter() - started,
-                       sampling.summary() if sampling is not None else None, joining, errors)
+                       sampling.summary() if sampling is not None else None, joining, errors,
+                       list(reader.notices))
 
 
 def merge_parts(results: list[ShardResult], rules: list[Rule]) -> tuple[ShardResult, list[Rule]]:
@@ -379,7 +383,11 @@ def _parts(shard: Shard, settings: Settings, rules: list[Rule], executor, sample
         held = ", ".join(rule.id for rule in rules if not rule.splittable)
         log.debug("%s is scanned whole: rule(s) %s cannot join parts of a shard", shard.uri, held)
         return None
-    parts = split.plan(shard, settings, processes, rules=tuple(rules))
+    try:
+        parts = split.plan(shard, settings, processes, rules=tuple(rules))
+    except Exception:  # noqa: BLE001 - a shard that cannot be planned is scanned whole (which reports why)
+        log.debug("%s cannot be split", shard.uri, exc_info=True)
+        return None
     if parts is not None:
         log.debug("%s is scanned in %s", shard.uri, split.describe(parts))
     return parts
@@ -510,6 +518,8 @@ def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], se
             notes.append(Note(Level.error, f"rule stopped on this shard after an internal error ({why}); "
                                            "its findings for the shard are incomplete", rule_id, result.shard.uri,
                               internal=True))
+        for notice in result.notices:
+            notes.append(Note(Level.note, notice, None, result.shard.uri))
         for why in result.errors:
             notes.append(Note(Level.error, f"the scan of this shard stopped after an internal error ({why}); its "
                                            "findings are incomplete", None, result.shard.uri, internal=True))

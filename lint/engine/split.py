@@ -23,7 +23,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 from corpuscle.engine.infer import infer_from_batch
 from corpuscle.io.batch import Shard, enough_first_records, first_records
-from corpuscle.io.sources import _open_input, is_uri, open_shard
+from corpuscle.io.sources import Limits, _open_input, is_uri, open_shard
 from corpuscle.rules.api import inferred_by
 from corpuscle.settings import Settings
 
@@ -89,7 +89,7 @@ def first_facts(shard: Shard, settings: Settings, rules: tuple = ()) -> tuple[Se
     no records."""
     facts = settings.for_path(shard.path)
     batches = []
-    with open_shard(shard, tokens_column=facts.tokens_column) as reader:
+    with open_shard(shard, tokens_column=facts.tokens_column, limits=Limits.of(facts)) as reader:
         for batch in reader:
             batches.append(batch)
             if enough_first_records(batches, facts.tokens_column):

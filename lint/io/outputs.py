@@ -93,3 +93,18 @@ def writable(flag: str, path: str) -> None:
                             f"({exc.strerror or exc}); choose a writable path") from None
     os.close(fd)
     os.unlink(probe)
+
+
+def check_work_folders(rules) -> None:
+    """Raise :class:`OutputProblem` when a folder a rule writes to during the scan (the MinHash signature files of
+    near-duplicate: ``signature_folder``, or the system temporary folder) cannot be written: said before scanning,
+    not as the rule's failure after it."""
+    for rule in rules:
+        folder = getattr(rule, "spill_folder", None)
+        if not isinstance(folder, str):
+            continue
+        try:
+            writable(f"[rule.{rule.id}] signature_folder", os.path.join(os.path.dirname(folder), "probe"))
+        except OutputProblem as exc:
+            raise OutputProblem(f"{exc} (set signature_folder under [rule.{rule.id}] or TMPDIR to a writable "
+                                "folder)") from None
