@@ -374,7 +374,7 @@ def test_mistyped_values_are_read_as_null_and_reported_per_row(tmp_path):
     problems = problems_of(batches)
     assert [(p.kind, p.row, p.column) for p in problems] == [("mistyped", 3, "input_ids"),
                                                              ("mistyped", 5, "input_ids")]
-    assert problems[0].detail == "column 'input_ids' holds list<str> here but list<number> in most rows"
+    assert problems[0].detail == "column 'input_ids' holds list<str> here but list<int> in most rows"
     assert table_of(batches).column("input_ids").to_pylist() == [[1, 2, 3], [4, 5], None, [6], None, [8, 9]]
     assert rows_of(batches) == [0, 1, 3, 4, 5, 6]
     report = run(tmp_path / "types.jsonl", only=("schema-mismatch",))

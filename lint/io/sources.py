@@ -12,6 +12,7 @@ import glob
 import os
 import re
 import stat
+import struct
 import zlib
 from dataclasses import dataclass
 from typing import Iterator
@@ -427,6 +428,16 @@ def _not_a_regular_file(path: str) -> str | None:
     return f"{what}, not a regular file: not opened (reading it could block or never end)"
 
 
+def local_path(path: str):
+    """A local path as pyarrow can open it: the str, or its bytes when the name is not valid UTF-8 (surrogate
+    escapes, as ``os.fsdecode`` gives such names)."""
+    try:
+        path.encode("utf-8")
+        return path
+    except UnicodeEncodeError:
+        return os.fsencode(path)
+
+
 def _open_input(uri: str):
     """A pyarrow input file for a URI, opened for random access (``open_input_file``): Parquet and Arrow IPC need
     it, and JSON Lines read it front to back but ask for its position (never decompressed here, whatever the name
@@ -479,6 +490,9 @@ class ParquetReader(ShardReader):
         source = self.shard.path
         if is_uri(source):
             source = _open_input(source)
+            self._resources.append(source)
+        elif not isinstance(local_path(source), str):
+            source = pa.OSFile(local_path(source), "rb")
             self._resources.append(source)
         try:
             pf = pq.ParquetFile(source, memory_map=False, page_checksum_verification=True)
@@ -541,7 +555,7 @@ class ArrowReader(ShardReader):
 
     def _batches(self) -> Iterator[Batch]:
         path = self.shard.path
-        source = _open_input(path) if is_uri(path) else pa.memory_map(path, "r")
+        source = _open_input(path) if is_uri(path) else pa.memory_map(local_path(path), "r")
         self._resources.append(source)
         magic = source.read(6)
         source.seek(0)
@@ -622,7 +636,7 @@ class JsonLinesReader(ShardReader):
 
     def _open(self):
         path = self.shard.path
-        raw = _open_input(path) if is_uri(path) else pa.OSFile(path, "rb")
+        raw = _open_input(path) if is_uri(path) else pa.OSFile(local_path(path), "rb")
         self._resources.append(raw)
         self._raw = raw  # its position is the bytes consumed as stored (compressed for .gz and .zst)
         if self.shard.compression == "gzip":
@@ -804,112 +818,148 @@ class DamagedStream(Exception):
 
 
 class _Inflater:
-    """A gzip file decoded with zlib as a stream of bytes (``read(n)``), member after member.
+    """A gzip file (RFC 1952) decoded with zlib as a stream of bytes (``read(n)``), member after member.
 
-    zlib checks each member's CRC-32 and length (RFC 1952), so a damaged byte anywhere is noticed, at the latest
-    at the end of its member.  When decoding fails, every byte decoded before the failure is returned first (the
-    failing step is redone in small steps from a copy of the decoder), and the next ``read`` raises
-    :class:`DamagedStream` with the position in the compressed file."""
+    Each member's header is read here, its deflate data inflated raw, and its CRC-32 and length (the trailer) are
+    checked against what was decoded, so a damaged byte anywhere is noticed, at the latest at the end of its
+    member.  When inflating fails, every byte decoded before the failure is returned first (the failing step is
+    redone a byte at a time from a copy of the decoder), and the next ``read`` raises :class:`DamagedStream` with
+    the position in the compressed file."""
 
     RAW_CHUNK = 1 << 16
-    SALVAGE_STEP = 64
 
     def __init__(self, raw):
         self.raw = raw
-        self.inflate = zlib.decompressobj(16 + zlib.MAX_WBITS)
-        self.pending = b""  # compressed bytes read but not yet given to the decoder
-        self.at = 0  # compressed bytes given to the decoder so far
-        self.started = False  # the current member has begun
+        self.pending = b""  # compressed bytes read but not yet used
+        self.at = 0  # compressed bytes used so far
+        self.inflate = None  # the current member's decoder, None between members
+        self.crc = self.size = 0
         self.error: DamagedStream | None = None
         self.done = False
 
     def tell(self) -> int:
         return self.at
 
-    def read(self, n: int) -> bytes:
-        out, got = [], 0
-        while got < n and not self.done:
-            if self.error is not None:
-                if out:
-                    break
-                raise self.error
-            if not self.pending:
-                self.pending = self.raw.read(self.RAW_CHUNK)
-                if not self.pending:
-                    if self.started:
-                        self.error = DamagedStream(f"the gzip stream ends early at byte {self.at:,} (cut off): "
-                                                   "the rest of the file is missing")
-                        continue
-                    self.done = True
-                    break
-            if not self.started and self.inflate.eof is False and self.at and not self._member_start():
-                continue
-            self.started = True
-            before = self.inflate.copy()
-            given = self.pending
-            try:
-                piece = self.inflate.decompress(given, n - got)
-            except zlib.error as exc:
-                piece, used = self._salvage(before, given, n - got)
-                self.error = DamagedStream(self._damage(exc, self.at + used))
-                out.append(piece)
-                got += len(piece)
-                continue
-            self.pending = self.inflate.unconsumed_tail
-            if self.inflate.eof:
-                rest = self.inflate.unused_data
-                self.at += len(given) - len(rest)
-                self.pending = rest
-                self.inflate = zlib.decompressobj(16 + zlib.MAX_WBITS)
-                self.started = False
-            else:
-                self.at += len(given) - len(self.pending)
-            out.append(piece)
-            got += len(piece)
-        return b"".join(out)
+    def _more(self, n: int) -> bool:
+        """At least ``n`` bytes pending (reading more as needed); False at the end of the file."""
+        while len(self.pending) < n:
+            data = self.raw.read(max(self.RAW_CHUNK, n - len(self.pending)))
+            if not data:
+                return False
+            self.pending += data
+        return True
 
-    def _member_start(self) -> bool:
-        """After a member's end: whether another member follows (padding with zero bytes ends the file)."""
-        rest = self.pending + self.raw.read(2) if len(self.pending) < 2 else self.pending
-        self.pending = rest
-        if rest.startswith(b"\x1f\x8b"):
-            return True
-        if not rest.strip(b"\x00"):
-            tail = self.raw.read()
-            if not tail.strip(b"\x00"):
+    def _use(self, n: int) -> bytes:
+        used, self.pending = self.pending[:n], self.pending[n:]
+        self.at += n
+        return used
+
+    def _header(self) -> bool:
+        """Read a member's header; False at a clean end of the file (nothing, or zero padding, left)."""
+        if not self._more(1):
+            self.done = True
+            return False
+        if not self.pending.strip(b"\x00"):
+            while self._more(len(self.pending) + 1):
+                if self.pending.strip(b"\x00"):
+                    break
+            else:
                 self.done = True
                 return False
-            rest = tail
-        self.error = DamagedStream(f"{len(rest):,}+ bytes after the end of the gzip stream at byte {self.at:,} "
-                                   "that are not a gzip member")
-        self.pending = b""
-        return False
+        if not self._more(10) or self.pending[:3] != b"\x1f\x8b\x08":
+            what = "not a gzip member" if self.at else "not a gzip file (no gzip header)"
+            raise DamagedStream(f"bytes at byte {self.at:,} are {what}")
+        flags = self.pending[3]
+        at = 10
+        if flags & 4:  # FEXTRA: a 2-byte length, then that many bytes
+            if not self._more(at + 2):
+                raise DamagedStream(f"the gzip header at byte {self.at:,} is cut off")
+            at += 2 + int.from_bytes(self.pending[at:at + 2], "little")
+        for flag in (8, 16):  # FNAME, FCOMMENT: zero-terminated
+            if flags & flag:
+                while True:
+                    end = self.pending.find(b"\x00", at)
+                    if end >= 0:
+                        at = end + 1
+                        break
+                    if not self._more(len(self.pending) + 1) or len(self.pending) > (1 << 20):
+                        raise DamagedStream(f"the gzip header at byte {self.at:,} is cut off or damaged")
+        if flags & 2:  # FHCRC
+            at += 2
+        if not self._more(at):
+            raise DamagedStream(f"the gzip header at byte {self.at:,} is cut off")
+        self._use(at)
+        self.inflate, self.crc, self.size = zlib.decompressobj(-zlib.MAX_WBITS), 0, 0
+        return True
 
-    def _salvage(self, inflate, given: bytes, room: int) -> tuple[bytes, int]:
-        """The bytes ``inflate`` (a copy from before the failing step) decodes from ``given`` before it fails, in
-        small steps; and how many compressed bytes it took."""
+    def _trailer(self) -> None:
+        """After a member's deflate data: its CRC-32 and length must match what was decoded."""
+        start = self.at
+        if not self._more(8):
+            raise DamagedStream(f"the gzip stream ends early at byte {self.at + len(self.pending):,} (cut off "
+                                "inside a trailer)")
+        crc, size = struct.unpack("<II", self._use(8))
+        self.inflate = None
+        if crc != self.crc or size != self.size & 0xFFFFFFFF:
+            raise DamagedStream(f"the gzip checksum (CRC-32) or length stored at byte {start:,} does not match the "
+                                "data decoded before it: some of those records may be altered")
+
+    def read(self, n: int) -> bytes:
+        out, got = [], 0
+        try:
+            while got < n and not self.done:
+                if self.error is not None:
+                    break
+                if self.inflate is None and not self._header():
+                    break
+                if not self.pending and not self._more(1):
+                    raise DamagedStream(f"the gzip stream ends early at byte {self.at:,} (cut off): the rest of "
+                                        "the file is missing")
+                given, before = self.pending, self.inflate.copy()
+                try:
+                    piece = self.inflate.decompress(given, n - got)
+                except zlib.error as exc:
+                    piece, used = self._salvage(before, given, n - got)
+                    self._count(piece, out)
+                    got += len(piece)
+                    raise DamagedStream(f"the gzip stream is damaged at about byte {self.at + used:,} of the "
+                                        f"compressed file ({exc})") from None
+                rest = self.inflate.unused_data if self.inflate.eof else self.inflate.unconsumed_tail
+                self.at += len(given) - len(rest)
+                self.pending = rest
+                self._count(piece, out)
+                got += len(piece)
+                if self.inflate.eof:
+                    self._trailer()
+        except DamagedStream as exc:
+            self.error = exc
+        if not got and self.error is not None:
+            raise self.error
+        return b"".join(out)
+
+    def _count(self, piece: bytes, out: list) -> None:
+        self.crc = zlib.crc32(piece, self.crc)
+        self.size += len(piece)
+        out.append(piece)
+
+    @staticmethod
+    def _salvage(inflate, given: bytes, room: int) -> tuple[bytes, int]:
+        """The bytes ``inflate`` (a copy from before the failing step) decodes from ``given`` before it fails, a byte
+        at a time; and how many compressed bytes it took."""
         out, data, used = [], given, 0
         while room > 0 and data:
             try:
-                piece = inflate.decompress(data, min(room, self.SALVAGE_STEP))
+                piece = inflate.decompress(data, 1)
             except zlib.error:
                 break
             tail = inflate.unconsumed_tail
-            used += len(data) - len(tail) - (len(inflate.unused_data) if inflate.eof else 0)
+            used += len(data) - len(tail)
             out.append(piece)
             room -= len(piece)
             if inflate.eof or (not piece and tail == data):
                 break
             data = tail
         return b"".join(out), used
-
-    @staticmethod
-    def _damage(exc: zlib.error, at: int) -> str:
-        text = str(exc)
-        if "incorrect data check" in text or "incorrect length check" in text:
-            return (f"the gzip checksum does not match at byte {at:,} ({text}): the data decoded before it may be "
-                    "altered")
-        return f"the gzip stream is damaged at about byte {at:,} of the compressed file ({text})"
 
 
 class _Pieces:
