@@ -449,12 +449,14 @@ class DaskExecutor:
                 self.client.run(_one_arrow_thread)
             else:
                 self.client = distributed.Client(self.address, timeout=self.timeout)
-        except (OSError, TimeoutError, ValueError, RuntimeError) as exc:  # RuntimeError: a worker did not start
+        except (OSError, TimeoutError, ValueError, RuntimeError, TypeError) as exc:
+            # RuntimeError: a worker did not start; TypeError: a TLS scheduler and no TLS settings here
             self.close()
             where = "start a local Dask cluster" if self.address == "local" else \
                 f"connect to the Dask scheduler at {self.address}"
-            raise ClusterUnavailable(f"cannot {where} ({type(exc).__name__}: {exc}); check that the scheduler is "
-                                     "running and reachable from here, or use --cluster local") from None
+            raise ClusterUnavailable(f"cannot {where} ({type(exc).__name__}: {str(exc).strip()}); check that the "
+                                     "scheduler is running and reachable from here (a tls:// scheduler needs Dask's "
+                                     "TLS settings, see the README), or use --cluster local") from None
         return self
 
     def __exit__(self, *exc) -> bool:

@@ -577,8 +577,9 @@ class ArrowReader(ShardReader):
                 continue
             try:
                 # The IPC readers check the layout, not the contents: list offsets out of range or decreasing would
-                # make every later step read out of bounds (Arrow's full validation checks them, and UTF-8).
-                rb.validate(full=True)
+                # make every later step read out of bounds (Arrow's full validation checks them).  Text is
+                # validated as bytes: invalid UTF-8 in it is the encoding-error rule's finding, not a broken file.
+                _as_bytes(rb).validate(full=True)
             except (pa.ArrowInvalid, pa.ArrowException) as exc:
                 yield self._problem_batch(Problem(
                     "unreadable", self._row, f"record batch {index} ({rb.num_rows:,} rows from row {self._row:,}) "
@@ -613,6 +614,15 @@ class ArrowReader(ShardReader):
         size = _rows_per_batch(avg, self.batch_tokens)
         for start in range(0, rb.num_rows, size):
             yield rb.slice(start, size)
+
+
+def _as_bytes(rb: pa.RecordBatch) -> pa.RecordBatch:
+    """The batch with its top-level text columns viewed (zero-copy) as binary, whose validation skips UTF-8."""
+    if not any(pat.is_string(f.type) or pat.is_large_string(f.type) for f in rb.schema):
+        return rb
+    columns = [c.view(pa.binary()) if pat.is_string(c.type) else c.view(pa.large_binary())
+               if pat.is_large_string(c.type) else c for c in rb.columns]
+    return pa.RecordBatch.from_arrays(columns, names=rb.schema.names)
 
 
 def _read_or_error(reader, index: int):
