@@ -21,7 +21,7 @@ pytestmark = pytest.mark.skipif(not os.path.isdir("/proc") or os.name != "posix"
 CORPUSCLE = [os.path.join(os.path.dirname(sys.executable), "corpuscle")]
 
 
-def corpus(folder, shards=8, rows=6000, width=512):
+def corpus(folder, shards=16, rows=6000, width=512):
     """Tokenized shards large enough that a scan with the duplicate rules takes a few seconds."""
     rng = np.random.default_rng(7)
     folder.mkdir()
