@@ -155,6 +155,9 @@ def render(report) -> str:
         for (why, uris), rule_ids in rules_of.items():
             where = uris[0] if len(uris) == 1 else f"{len(uris)} shards"
             out += _wrap(f"{', '.join(rule_ids)}: {why} ({where})", "  ")
+    if getattr(report, "incomplete", False):
+        out += ["", "The scan is incomplete: a rule or the engine raised (see Notes), so findings may be missing; "
+                    "exit 3."]
     counts = {lvl: sum(1 for f in report.findings if f.level == lvl) for lvl in Level}
     fail_at = report.settings.fail_at if report.settings else "error"
     out += ["", f"{counts[Level.error]} error(s), {counts[Level.warning]} warning(s), {counts[Level.note]} note(s); "
