@@ -168,7 +168,12 @@ def scan(paths, config_path, sarif_path, json_path, drop_list_path, jobs, sample
             for path, module in ((sarif_path, sarif), (json_path, json_report), (drop_list_path, droplist)):
                 if path:
                     try:
-                        write_atomic(path, module.render(report))
+                        data = module.render(report)
+                    except Exception as exc:  # noqa: BLE001 - a report must still replace an older one: exit 3
+                        report = _failed_report(shards, settings, rules, exc)
+                        data = module.render(report)
+                    try:
+                        write_atomic(path, data)
                     except OSError as exc:
                         raise UsageProblem(f"cannot write {path}: {exc.strerror or exc}") from None
     except KeyboardInterrupt:
