@@ -370,3 +370,14 @@ def test_a_local_cluster_refuses_a_client_without_this_runs_certificate():
             distributed.Client(address, timeout=5, security=Security.temporary())  # another certificate
         with pytest.raises(Exception):
             distributed.Client(address.replace("tls://", "tcp://"), timeout=5)  # no TLS at all
+
+
+def test_a_null_inside_an_integer_list_is_named_not_read_as_id_minus_one(tmp_path):
+    path = tmp_path / "nulls.jsonl"
+    path.write_text('{"input_ids": [5, 6, 2]}\n{"input_ids": [5, null, 2]}\n{"input_ids": [5, 7, 2]}\n')
+    result, report = scan_json(path, "--eos-id", 2, "--vocab-size", 10)
+    (f,) = [f for f in report["findings"] if f["rule"] == "schema-mismatch"]
+    assert (f["kind"], [i["row"] for i in f["instances"]]) == ("mistyped", [1])
+    assert "list<int|null>" in f["message"]
+    assert not [f for f in report["findings"] if f["rule"] == "token-range"]
+    assert report["metrics"]["tokens"] == 6

@@ -1064,9 +1064,12 @@ def _to_table(records: list[dict], rows: list[int], problems: list[Problem]) -> 
             columns[name] = _majority_array(name, values, rows, problems)
             continue
         kind = columns[name].type
-        if (pat.is_list(kind) or pat.is_large_list(kind)) and pat.is_floating(kind.value_type):
-            # One float among integer lists makes the whole column float, and every token rule would skip it:
-            # when most rows are integer lists, the others are read as null and named, row by row.
+        if (pat.is_list(kind) or pat.is_large_list(kind)) and (
+                pat.is_floating(kind.value_type) or (pat.is_integer(kind.value_type)
+                                                     and columns[name].values.null_count)):
+            # One float among integer lists makes the whole column float, and every token rule would skip it; a
+            # null inside one is no token id: when most rows are integer lists, the others are read as null and
+            # named, row by row.
             columns[name] = _majority_array(name, values, rows, problems, only_if="list<int>")
     return pa.table(columns)
 
