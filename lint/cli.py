@@ -154,6 +154,9 @@ def scan(paths, config_path, sarif_path, json_path, drop_list_path, jobs, sample
         check_work_folders(rules)
     except (SettingsError, NoShardsFound, OutputProblem) as exc:
         raise UsageProblem(str(exc)) from None
+    except KeyboardInterrupt:  # Ctrl-C while the settings are read or the shards are listed: nothing to clean
+        click.echo("interrupted (SIGINT) before scanning: no report written", err=True)
+        sys.exit(EXIT_SIGINT)
     sample = Sample(sample_fraction, sample_seed) if sample_fraction is not None else None
     try:
         with _signals_stop_the_scan():

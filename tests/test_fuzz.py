@@ -206,6 +206,21 @@ def test_byte_mutations_never_escape_and_count_what_a_reference_decoder_reads(tm
         path.unlink()
 
 
+def test_a_parquet_footer_that_makes_pyarrow_abort_is_an_unreadable_shard(tmp_path):
+    """Case 321 of the Parquet mutations (a bit flipped in the footer) made pyarrow end the process (a C++
+    exception thrown through its metadata accessor: SIGABRT) when its column metadata was looked at."""
+    rng = random.Random(f"{SEED}-parquet")
+    for _ in range(322):
+        data, how = mutate(SHARDS["parquet"], rng)
+    assert how == "flip@1838"
+    path = tmp_path / "footer.parquet"
+    path.write_bytes(data)
+    report = scan([str(path)], Settings(), jobs=1)  # the test process survives
+    (found,) = [f for f in report.findings if f.rule_id == "unreadable-shard"]
+    assert found.rows.tolist() == [0] and report.metrics["rows"] == 0
+    check(str(path), "parquet", data, how, True, tmp_path)
+
+
 def json_values():
     """Any JSON value, nested (hypothesis' recursive strategy), with the integers and floats a writer may emit."""
     scalars = (st.none() | st.booleans() | st.integers(-(2 ** 63), 2 ** 63 - 1)

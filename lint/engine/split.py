@@ -23,7 +23,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 from corpuscle.engine.infer import infer_from_batch
 from corpuscle.io.batch import Shard, enough_first_records, first_records
-from corpuscle.io.sources import Limits, _open_input, is_uri, local_path, open_shard
+from corpuscle.io.sources import Limits, _open_input, is_uri, local_path, metadata_aborts, open_shard
 from corpuscle.rules.api import inferred_by
 from corpuscle.settings import Settings
 
@@ -132,6 +132,8 @@ def _cuts(shard: Shard, parts: int) -> list[tuple[int, int, int]] | None:
         finally:
             if not isinstance(source, str):
                 source.close()
+        if metadata_aborts(meta) is not None:  # the whole scan reports it
+            return None
         groups = [meta.row_group(g) for g in range(meta.num_row_groups)]
         return _unit_cuts([g.num_rows for g in groups],
                           [sum(g.column(i).total_compressed_size for i in range(g.num_columns)) for g in groups],

@@ -13,6 +13,7 @@ import os
 import re
 import stat
 import struct
+import time
 import zlib
 from dataclasses import dataclass
 from typing import Iterator
@@ -500,6 +501,10 @@ class ParquetReader(ShardReader):
             pf = pq.ParquetFile(source, memory_map=False)
         self._resources.append(pf)
         meta = pf.metadata
+        aborts = metadata_aborts(meta)
+        if aborts is not None:
+            yield self._problem_batch(Problem("unreadable", 0, aborts))
+            return
         if meta.num_rows == 0:
             yield self._problem_batch(Problem("empty", 0, "the Parquet file holds no rows"))
             return
@@ -623,6 +628,48 @@ def _as_bytes(rb: pa.RecordBatch) -> pa.RecordBatch:
     columns = [c.view(pa.binary()) if pat.is_string(c.type) else c.view(pa.large_binary())
                if pat.is_large_string(c.type) else c for c in rb.columns]
     return pa.RecordBatch.from_arrays(columns, names=rb.schema.names)
+
+
+#: How long the check of a Parquet footer's column metadata may take before it is given up (seconds).
+METADATA_CHECK_SECONDS = 10.0
+
+
+def metadata_aborts(meta) -> str | None:
+    """Why the column metadata of a Parquet footer cannot be looked at, or None.
+
+    pyarrow reads some damaged column metadata (level histograms that disagree with the schema, say) by throwing a
+    C++ exception where none may pass, which ends the whole process (abort) instead of raising: no ``except`` can
+    catch that.  So the metadata is first looked at in a forked copy of this process; if the copy dies, the shard
+    is reported as unreadable and its metadata is never touched here.  (Where ``fork`` does not exist, or the copy
+    takes longer than :data:`METADATA_CHECK_SECONDS`, the metadata is used unchecked.)"""
+    if not hasattr(os, "fork") or meta.num_row_groups == 0:
+        return None
+    pid = os.fork()
+    if pid == 0:  # the copy: touch every column chunk's metadata, then leave at once (no cleanup, no atexit)
+        code = 0
+        try:
+            os.dup2(os.open(os.devnull, os.O_WRONLY), 2)  # pyarrow's last words are not for the user's terminal
+            for group in range(meta.num_row_groups):
+                row_group = meta.row_group(group)
+                for i in range(row_group.num_columns):
+                    row_group.column(i).num_values
+        except BaseException:  # noqa: BLE001 - an ordinary exception is the caller's to meet and report
+            code = 0
+        os._exit(code)
+    deadline = time.monotonic() + METADATA_CHECK_SECONDS
+    while True:
+        done, status = os.waitpid(pid, os.WNOHANG)
+        if done:
+            break
+        if time.monotonic() > deadline:
+            os.kill(pid, 9)
+            os.waitpid(pid, 0)
+            return None
+        time.sleep(0.001)
+    if os.WIFSIGNALED(status):
+        return (f"the column metadata in the Parquet footer is damaged: pyarrow aborts reading it (signal "
+                f"{os.WTERMSIG(status)}), so nothing in the file is read")
+    return None
 
 
 def _read_or_error(reader, index: int):
