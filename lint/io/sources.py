@@ -649,6 +649,9 @@ def metadata_aborts(meta) -> str | None:
         code = 0
         try:
             os.dup2(os.open(os.devnull, os.O_WRONLY), 2)  # pyarrow's last words are not for the user's terminal
+            import faulthandler
+
+            faulthandler.disable()  # nor a Python traceback of the abort (pytest, python -X faulthandler)
             for group in range(meta.num_row_groups):
                 row_group = meta.row_group(group)
                 for i in range(row_group.num_columns):
