@@ -4,16 +4,20 @@ from __future__ import annotations
 
 import contextlib
 import os
+import shutil
+import signal
 import sys
 import textwrap
+import threading
 
 import click
 from corpuscle.engine.progress import TerminalProgress
 from corpuscle.engine.sampling import Sample
 from corpuscle.engine.scan import run, select_rules
 from corpuscle.gate import BaselineError, load_baseline
+from corpuscle.io.outputs import OutputProblem, check_outputs, check_work_folders
 from corpuscle.io.sources import NoShardsFound, discover
-from corpuscle.report import droplist, sarif, text, write_atomic
+from corpuscle.report import droplist, printable, sarif, text, write_atomic
 from corpuscle.report import html as html_report
 from corpuscle.report import json as json_report
 from corpuscle.settings import FAIL_AT, LABEL_CONVENTIONS, RULE_LEVELS, SEPARATORS, SettingsError, build, load_config
@@ -24,6 +28,46 @@ class UsageProblem(click.ClickException):
     """A mistake in how corpuscle was called or configured: exit status 2."""
 
     exit_code = 2
+
+
+#: Exit status after SIGINT (Ctrl-C) and SIGTERM: 128 + the signal number, as shells report a signal's end.
+EXIT_SIGINT, EXIT_SIGTERM = 128 + signal.SIGINT, 128 + signal.SIGTERM
+
+
+class Interrupted(BaseException):
+    """Raised in the main thread when SIGTERM arrives (SIGINT raises KeyboardInterrupt): unwinds the scan so that
+    the pool stops and temporary files go, then the command exits ``128 + signal``.  A BaseException, so that the
+    guards that keep one rule's failure from stopping the others do not catch it."""
+
+    def __init__(self, signum: int):
+        super().__init__(signum)
+        self.signum = signum
+
+
+@contextlib.contextmanager
+def _signals_stop_the_scan():
+    """SIGTERM raises :class:`Interrupted` in the main thread while the block runs (only there can Python handle
+    signals; elsewhere, e.g. in a test thread, nothing changes)."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+
+    def stop(signum, frame):
+        raise Interrupted(signum)
+
+    before = signal.signal(signal.SIGTERM, stop)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, before)
+
+
+def _remove_spill_folders(rules) -> None:
+    """Remove what the rules keep on disk during a scan (the MinHash spill folder), after an interrupt."""
+    for rule in rules:
+        folder = getattr(rule, "spill_folder", None)
+        if isinstance(folder, str):
+            shutil.rmtree(folder, ignore_errors=True)
 
 
 def _registry():
@@ -138,26 +182,53 @@ def scan(paths, config_path, sarif_path, json_path, html_path, drop_list_path, j
         settings = build(config, flags)
         rules = select_rules(settings, _registry())
         shards = discover(list(paths))
+        html_path = html_path or settings.html
+        outputs = {"--sarif": sarif_path, "--json": json_path, "--html": html_path, "--drop-list": drop_list_path}
+        check_outputs(outputs, list(paths), shards)
+        check_work_folders(rules)
         baseline = load_baseline(baseline_path) if baseline_path else None
-    except (SettingsError, NoShardsFound, BaselineError) as exc:
+    except (SettingsError, NoShardsFound, BaselineError, OutputProblem) as exc:
         raise UsageProblem(str(exc)) from None
+    except KeyboardInterrupt:  # Ctrl-C while the settings are read or the shards are listed: nothing to clean
+        click.echo("interrupted (SIGINT) before scanning: no report written", err=True)
+        sys.exit(EXIT_SIGINT)
     sample = Sample(sample_fraction, sample_seed) if sample_fraction is not None else None
-    with _executor(cluster, jobs) as executor:
-        report = run(shards, settings, rules, jobs=jobs or os.cpu_count() or 1, progress=_progress(quiet),
-                     sample=sample, executor=executor)
-    html_path = html_path or settings.html
-    if baseline is not None:
-        report.compare(baseline)
-    for path, module in ((sarif_path, sarif), (json_path, json_report), (html_path, html_report),
-                         (drop_list_path, droplist)):
-        if path:
+    try:
+        with _signals_stop_the_scan():
             try:
-                write_atomic(path, module.render(report))
-            except OSError as exc:
-                raise UsageProblem(f"cannot write {path}: {exc.strerror or exc}") from None
+                with _executor(cluster, jobs) as executor:
+                    report = run(shards, settings, rules, jobs=jobs or os.cpu_count() or 1,
+                                 progress=_progress(quiet), sample=sample, executor=executor)
+                if baseline is not None:
+                    report.compare(baseline)
+            except (UsageProblem, KeyboardInterrupt, Interrupted):
+                raise
+            except Exception as exc:  # noqa: BLE001 - the engine failed: say so, exit 3, no traceback
+                report = _failed_report(shards, settings, rules, exc)
+            for path, module in ((sarif_path, sarif), (json_path, json_report), (html_path, html_report),
+                                 (drop_list_path, droplist)):
+                if path:
+                    try:
+                        data = module.render(report)
+                    except Exception as exc:  # noqa: BLE001 - a report must still replace an older one: exit 3
+                        report = _failed_report(shards, settings, rules, exc)
+                        data = module.render(report)
+                    try:
+                        write_atomic(path, data)
+                    except OSError as exc:
+                        raise UsageProblem(f"cannot write {path}: {exc.strerror or exc}") from None
+    except KeyboardInterrupt:
+        _remove_spill_folders(rules)
+        click.echo("interrupted (SIGINT): no report written; older reports were left as they were", err=True)
+        sys.exit(EXIT_SIGINT)
+    except Interrupted as stop:
+        _remove_spill_folders(rules)
+        click.echo(f"interrupted ({signal.Signals(stop.signum).name}): no report written; older reports were left "
+                   "as they were", err=True)
+        sys.exit(128 + stop.signum)
     if drop_list_path and droplist.NAME not in report.outputs:
         click.echo(f"note: the drop list {drop_list_path} is empty: {_why_no_output(droplist.NAME, rules)}", err=True)
-    click.echo(text.render(report, stats=stats, long=summary_format == "long"), nl=False)
+    click.echo(printable(text.render(report, stats=stats, long=summary_format == "long")), nl=False)
     sys.exit(report.exit_code)
 
 
@@ -171,6 +242,19 @@ def _levels(pairs) -> dict:
                                 f"--level exact-duplicate=error; got {pair!r}")
         out[rule_id.strip()] = level.strip()
     return out
+
+
+def _failed_report(shards, settings, rules, exc: Exception):
+    """The report of a scan the engine could not finish: no findings, the error as an internal note (SARIF
+    ``executionSuccessful: false``, exit status 3), so that no older report at the output path looks current."""
+    from corpuscle.engine.scan import Note, Report
+    from corpuscle.findings import Level
+
+    note = Note(Level.error, f"the scan stopped after an internal error ({type(exc).__name__}: {exc}); no "
+                             "findings were reported", internal=True)
+    metrics = {"shards": len(shards), "rows": 0, "tokens": 0, "bytes": sum(max(s.length, 0) for s in shards),
+               "seconds": 0.0}
+    return Report([], list(shards), list(rules), metrics, [note], settings)
 
 
 def _why_no_output(name: str, rules) -> str:

@@ -144,7 +144,8 @@ class Finding:
         if self.pinned_fingerprint:
             return self.pinned_fingerprint
         key = "\x1f".join([self.rule_id, self.uri or "*", self.kind])
-        return hashlib.sha256(key.encode()).hexdigest()[:32]
+        # A file name that is not valid UTF-8 arrives with surrogate escapes (os.fsdecode): hash its bytes.
+        return hashlib.sha256(key.encode("utf-8", "surrogateescape")).hexdigest()[:32]
 
     def instances(self) -> list[dict]:
         out = []

@@ -10,6 +10,7 @@ from __future__ import annotations
 import dataclasses
 import fnmatch
 import os
+import stat
 import tomllib
 from dataclasses import dataclass, field
 
@@ -26,8 +27,16 @@ RULE_LEVELS = ("error", "warning", "note", "off")
 FACTS = ("text_column", "tokens_column", "labels_column", "mask_column", "positions_column", "eos_id", "bos_id",
          "pad_id", "vocab_size", "seq_len", "labels", "ignore_index", "separator", "tokenizer",
          "doc_lengths_column", "cu_seqlens_column")
+#: Limits on one record, each a run option (a finding when a record exceeds one; that record is not scanned, the
+#: rest is): they keep a scan's memory bounded whatever the input (see the README's memory bound).
+LIMITS = {
+    "max_record_bytes": 32 << 20,  # bytes of one record as decoded: a JSON line after decompression, a row's values
+    "max_row_tokens": 1 << 22,  # values in one row of a list column (4,194,304 tokens)
+    "max_keys": 256,  # distinct keys (columns) of a JSON Lines shard; later new keys are dropped
+    "max_depth": 32,  # nesting depth of a JSON value; deeper values are dropped
+}
 #: Run options: one value for the whole scan.
-OPTIONS = ("only", "skip", "fail_at", "instance_cap", "rule", "html", "levels", "suppress", "eval")
+OPTIONS = ("only", "skip", "fail_at", "instance_cap", "rule", "html", "levels", "suppress", "eval", *LIMITS)
 
 
 
@@ -54,6 +63,10 @@ class Settings:
     skip: tuple[str, ...] = ()
     fail_at: str = "error"
     instance_cap: int = DEFAULT_INSTANCE_CAP
+    max_record_bytes: int = LIMITS["max_record_bytes"]
+    max_row_tokens: int = LIMITS["max_row_tokens"]
+    max_keys: int = LIMITS["max_keys"]
+    max_depth: int = LIMITS["max_depth"]
     rule: dict = field(default_factory=dict)  # per-rule options: {"near-duplicate": {"threshold": 0.8}}
     html: str | None = None  # write the HTML report here (as --html FILE)
     levels: dict = field(default_factory=dict)  # rule id -> level from --level (over [rule.<id>] level)
@@ -110,12 +123,17 @@ class Settings:
         if not isinstance(self.rule, dict) or not all(isinstance(v, dict) for v in self.rule.values()):
             raise SettingsError("rule options go in tables, e.g. [rule.near-duplicate] threshold = 0.8")
         _validate_gate(self)
+        check_ranges(self)
+        check_limits(self)
 
     def source(self, key: str) -> str:
         return self.origin.get(key, "default")
 
     def with_values(self, values: dict, origin: str) -> "Settings":
         """A copy with ``values`` applied (unknown keys rejected), each marked as coming from ``origin``."""
+        if not isinstance(values, dict):
+            raise SettingsError(f"settings must be a table of key = value pairs (e.g. eos_id = 2), got "
+                                f"{type(values).__name__} {values!r:.40}")
         unknown = set(values) - set(FACTS) - set(OPTIONS) - {"paths"}
         if unknown:
             raise SettingsError(f"unknown setting(s) {', '.join(sorted(unknown))}: known are "
@@ -182,6 +200,7 @@ def _check_path_tables(tables) -> dict:
     if not isinstance(tables, dict) or not all(isinstance(v, dict) for v in tables.values()):
         raise SettingsError('per-path facts go in tables, e.g. [paths."data/web/*"] eos_id = 2')
     for pattern, values in tables.items():
+        check_glob(pattern)
         bad = set(values) - set(FACTS)
         if bad:
             raise SettingsError(f"[paths.{pattern!r}] may only set shard facts ({', '.join(FACTS)}), "
@@ -201,17 +220,12 @@ def load_config(path: str | None = None, cwd: str = ".") -> tuple[dict, str | No
             if path:
                 raise SettingsError(f"config file {path} does not exist")
             continue
-        try:
-            with open(candidate, "rb") as fh:
-                data = tomllib.load(fh)
-        except (OSError, tomllib.TOMLDecodeError) as exc:
-            raise SettingsError(f"cannot read config file {candidate}: {exc}") from None
-        if os.path.basename(candidate) == "pyproject.toml" and not path:
-            data = data.get("tool", {}).get("corpuscle")
-            if data is None:
+        data = read_config_file(candidate)
+        if os.path.basename(candidate) == "pyproject.toml":
+            data = tool_table(data, candidate)
+            if data is None and not path:
                 continue
-        elif os.path.basename(candidate) == "pyproject.toml":
-            data = data.get("tool", {}).get("corpuscle", {})
+            data = data or {}
         return data, candidate
     return {}, None
 
@@ -352,3 +366,110 @@ def level_rule_ids(settings: Settings) -> set[str]:
         ids |= set(by_rule)
     ids |= {entry["rule"] for entry in settings.suppress}
     return ids
+
+
+# -- validation kept apart: ranges, limits, the config file itself ------------------------------------------------
+
+#: Bounds that keep memory and time sane: a context window of 16,777,216 tokens, ids within int64, a vocabulary of
+#: 2**31 ids (the int32 range tokenizers use), 10 million locations per finding.
+MAX_SEQ_LEN = 1 << 24
+MAX_VOCAB_SIZE = 1 << 31
+INT64 = (-(1 << 63), (1 << 63) - 1)
+MAX_INSTANCE_CAP = 10_000_000
+#: A settings file larger than this is not read (a TOML file of settings is a few kilobytes).
+MAX_CONFIG_BYTES = 1 << 20
+
+
+def _whole(value) -> bool:
+    return isinstance(value, int) and not isinstance(value, bool)
+
+
+def check_ranges(settings: "Settings") -> None:
+    """Upper (and lower) bounds of the numeric facts and options, checked once the types are known to be right."""
+    if settings.seq_len is not None and settings.seq_len > MAX_SEQ_LEN:
+        raise SettingsError(f"seq_len must be at most {MAX_SEQ_LEN:,} tokens, got {settings.seq_len:,}")
+    if settings.vocab_size is not None and settings.vocab_size > MAX_VOCAB_SIZE:
+        raise SettingsError(f"vocab_size must be at most {MAX_VOCAB_SIZE:,}, got {settings.vocab_size:,}")
+    for key in ("eos_id", "bos_id", "pad_id", "ignore_index"):
+        value = getattr(settings, key)
+        if value is not None and not INT64[0] <= value <= INT64[1]:
+            raise SettingsError(f"{key} must fit in a 64-bit integer, got {value}")
+    if settings.instance_cap > MAX_INSTANCE_CAP:
+        raise SettingsError(f"instance_cap must be at most {MAX_INSTANCE_CAP:,}, got {settings.instance_cap:,}")
+
+
+#: Bounds of each limit: (least, most).
+LIMIT_RANGES = {
+    "max_record_bytes": (1 << 10, 1 << 30),
+    "max_row_tokens": (1, 1 << 28),
+    "max_keys": (1, 1 << 16),
+    "max_depth": (1, 256),
+}
+
+
+def check_limits(settings: "Settings") -> None:
+    for key, (least, most) in LIMIT_RANGES.items():
+        value = getattr(settings, key)
+        if not _whole(value) or not least <= value <= most:
+            raise SettingsError(f"{key} must be a whole number from {least:,} to {most:,}, got {value!r} "
+                                f"(default {LIMITS[key]:,})")
+
+
+def check_glob(pattern) -> None:
+    """A ``[paths."GLOB"]`` pattern must be a non-empty string whose ``[`` sets are closed (fnmatch would read an
+    unclosed ``[`` as a literal bracket and silently match nothing)."""
+    if not isinstance(pattern, str) or not pattern:
+        raise SettingsError(f"[paths] keys are glob patterns such as \"data/web/*\", got {pattern!r}")
+    i = 0
+    while i < len(pattern):
+        if pattern[i] == "[":
+            j = i + 1
+            if j < len(pattern) and pattern[j] == "!":
+                j += 1
+            if j < len(pattern) and pattern[j] == "]":
+                j += 1
+            close = pattern.find("]", j)
+            if close < 0:
+                raise SettingsError(f"[paths.{pattern!r}]: the '[' at character {i + 1} is never closed; write "
+                                    "[[] for a literal bracket")
+            i = close
+        i += 1
+
+
+def read_config_file(path: str) -> dict:
+    """The TOML data of a settings file: a regular file (not a FIFO, a device or a folder) of at most
+    :data:`MAX_CONFIG_BYTES`, read without blocking on anything else."""
+    try:
+        info = os.stat(path)
+    except OSError as exc:
+        raise SettingsError(f"cannot read config file {path}: {exc.strerror or exc}") from None
+    if not stat.S_ISREG(info.st_mode):
+        raise SettingsError(f"config file {path} is not a regular file (a folder, FIFO or device): give a TOML file")
+    if info.st_size > MAX_CONFIG_BYTES:
+        raise SettingsError(f"config file {path} is {info.st_size:,} bytes, more than a settings file needs "
+                            f"(at most {MAX_CONFIG_BYTES:,}): check the path")
+    try:
+        with open(path, "rb") as fh:
+            raw = fh.read(MAX_CONFIG_BYTES + 1)
+        if len(raw) > MAX_CONFIG_BYTES:
+            raise SettingsError(f"config file {path} is larger than {MAX_CONFIG_BYTES:,} bytes: check the path")
+        return tomllib.loads(raw.decode("utf-8"))
+    except UnicodeDecodeError as exc:
+        raise SettingsError(f"cannot read config file {path}: not UTF-8 text (byte {exc.start})") from None
+    except (OSError, tomllib.TOMLDecodeError) as exc:
+        raise SettingsError(f"cannot read config file {path}: {str(exc).splitlines()[0] if str(exc) else exc}") \
+            from None
+
+
+def tool_table(data: dict, path: str) -> dict | None:
+    """``[tool.corpuscle]`` of a pyproject.toml's data (None when there is none), checked to be a table."""
+    tool = data.get("tool")
+    if tool is None:
+        return None
+    if not isinstance(tool, dict):
+        raise SettingsError(f"{path}: 'tool' must be a table ([tool.corpuscle]), got {type(tool).__name__}")
+    table = tool.get("corpuscle")
+    if table is not None and not isinstance(table, dict):
+        raise SettingsError(f"{path}: [tool.corpuscle] must be a table of settings (e.g. eos_id = 2), got "
+                            f"{type(table).__name__} {table!r:.40}")
+    return table

@@ -71,7 +71,7 @@ Clusters, the keep policy and the findings
     pair or "across shards" (:func:`_cluster_findings`), the largest clusters first.
 
 Temporary files
-    The signature files live in one folder per scan, ``corpuscle-minhash-<random>`` under the option
+    The signature files live in one folder per scan, ``corpuscle-minhash-<host>-<pid>-<random>`` under the option
     ``signature_folder`` or, when it is empty (the default), the system temporary folder (``TMPDIR``) of the
     process that starts the scan; created at the first window and removed at the end of ``corpus()`` -- also when
     it fails -- and, should the scan be interrupted, when the process exits. The folder's path travels with the
@@ -101,7 +101,6 @@ import copy
 import os
 import shutil
 import tempfile
-import uuid
 import weakref
 
 import numpy as np
@@ -144,6 +143,7 @@ from corpuscle.kernels.spill import (
     npy_blocks,
     read_rows,
     read_shingle_sets,
+    run_folder,
 )
 from corpuscle.kernels.text import document_text
 from corpuscle.kernels.units import DocumentStream, Units
@@ -627,7 +627,8 @@ class NearDuplicate(_DuplicateRule):
                              "hint: leave it empty for the system temporary folder, or give a folder every worker "
                              "of a cluster mounts at the same path")
         # One folder per scan for the signature files: the path travels with the rule to worker processes.
-        self.spill_folder = os.path.join(folder or tempfile.gettempdir(), f"corpuscle-minhash-{uuid.uuid4().hex}")
+        # Named after this process, so that a later scan removes it if this one is killed (see run_folder).
+        self.spill_folder = run_folder(folder or tempfile.gettempdir(), "corpuscle-minhash")
         weakref.finalize(self, shutil.rmtree, self.spill_folder, True)  # an interrupted scan leaves nothing
 
     def begin(self, shard, settings):

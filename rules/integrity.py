@@ -11,6 +11,21 @@ RECORD_PROBLEMS = {
     "bad-json": "line(s) that are not valid JSON",
     "not-object": "line(s) holding a JSON value that is not an object",
     "cut-off": "last line cut off mid-record (the file ends without a newline inside a record)",
+    "oversized": "record(s) larger than a limit (max_record_bytes, max_row_tokens)",
+    "too-deep": "record(s) with values nested deeper than max_depth (those values were dropped)",
+    "too-many-keys": "record(s) with keys beyond the shard's max_keys distinct keys (those keys were dropped)",
+}
+
+
+NOT_SCANNED = ("these records are not scanned and a loader will fail or skip them. Repair or drop them and "
+               "re-export the shard.")
+#: What a record beyond a limit means (corpuscle.settings.LIMITS): a limit keeps the scan's memory bounded.
+LIMIT_CONSEQUENCE = {
+    "oversized": "these records are not scanned (a record this large is almost always a writer's bug: a "
+                 "document never cut into windows, a join gone wrong). Fix or drop them, or raise the limit.",
+    "too-deep": "the rest of each record is scanned. Training records are flat; fix the writer, or raise max_depth.",
+    "too-many-keys": "the rest of each record is scanned. A key per record (ids written as keys) is a writer's bug; "
+                     "fix it, or raise max_keys.",
 }
 
 
@@ -56,8 +71,7 @@ class UnreadableRecord(_ProblemRule):
 
     def report(self, state):
         return [self.finding(state, kind, f"{hits.count:,} {RECORD_PROBLEMS[kind]} (first: {state.details[kind]}); "
-                                          "these records are not scanned and a loader will fail or skip them. "
-                                          "Repair or drop them and re-export the shard.")
+                                          f"{LIMIT_CONSEQUENCE.get(kind, NOT_SCANNED)}")
                 for kind, hits in state.hits.items()]
 
 
@@ -97,6 +111,7 @@ class UnreadableShard(Rule):
             if p.kind == "empty":
                 msg = f"{p.detail}: nothing to train on. Remove the file or rerun the writer that produced it."
                 out.append(self.finding(state, p.kind, msg, level=Level.warning))
+
             else:
                 scanned = f"rows before row {p.row:,} were scanned" if p.row else "nothing in it could be read"
                 msg = f"cannot read the shard: {p.detail}. {scanned.capitalize()}; re-copy or re-write the file."

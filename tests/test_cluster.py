@@ -285,8 +285,17 @@ def test_the_cli_scans_on_a_running_scheduler(cluster):
     write_corpus(rng)
     address = cluster.client.scheduler.address
     runner = CliRunner()
-    there = runner.invoke(main, ["scan", "data", "--cluster", address, "--drop-list", "there.jsonl",
-                                 "--json", "there.json", "-q"])
+    # The local cluster takes TLS clients with this run's certificate only: Dask's TLS settings give it to the
+    # command's client, as they would for any scheduler that requires TLS (see the README).
+    security = cluster.security
+    tls = {"distributed.comm.require-encryption": True, "distributed.comm.tls.ca-file": security.tls_ca_file,
+           "distributed.comm.tls.client.cert": security.tls_client_cert,
+           "distributed.comm.tls.client.key": security.tls_client_key}
+    import dask
+
+    with dask.config.set(tls):
+        there = runner.invoke(main, ["scan", "data", "--cluster", address, "--drop-list", "there.jsonl",
+                                     "--json", "there.json", "-q"])
     here = runner.invoke(main, ["scan", "data", "--jobs", "1", "--drop-list", "here.jsonl", "--json", "here.json",
                                 "-q"])
     assert there.exit_code == here.exit_code == 1, there.output  # unreadable shard and record: errors

@@ -299,7 +299,7 @@ def test_settings_validate_with_a_hint():
     assert MinHashSettings() == MinHashSettings(num_perm=128, n=5, seed=1)
     with pytest.raises(ValueError, match=r"num_perm must be between 1 and .*got 0; hint"):
         MinHashSettings(num_perm=0)
-    with pytest.raises(ValueError, match=r"n must be at least 1, got 0; hint"):
+    with pytest.raises(ValueError, match=r"n must be between 1 and 256, got 0; hint"):
         MinHashSettings(n=0)
     with pytest.raises(ValueError, match=r"seed must be between 0 and 4294967295, got -1"):
         MinHashSettings(seed=-1)

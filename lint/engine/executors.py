@@ -21,12 +21,15 @@ import os
 import shutil
 import tempfile
 import threading
+import time
 import uuid
 from concurrent.futures import ProcessPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
 from typing import Callable, Iterable, Iterator
 
 from corpuscle.engine.progress import Progress
 from corpuscle.engine.registry import FAMILIES
+from corpuscle.kernels.spill import run_folder
 
 #: How to install what ``--cluster`` needs.
 CLUSTER_INSTALL = "pip install 'corpuscle[cluster]'"
@@ -70,6 +73,56 @@ def _one_arrow_thread() -> None:
     import pyarrow
 
     pyarrow.set_cpu_count(1)
+
+
+#: How often a pool process checks that the process that started the scan is still alive, in seconds.
+WATCH_SECONDS = 1.0
+
+
+def _pool_process(parent: int) -> None:
+    """Initializer of a pool process: one Arrow thread (:func:`_one_arrow_thread`); Ctrl-C is the parent's to
+    handle (it stops the pool); and a watch that ends this process when the scan's process ``parent`` is gone (it
+    was killed, e.g. by SIGKILL, and can no longer stop its pool), so no orphan keeps scanning."""
+    import signal
+
+    _one_arrow_thread()
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+    def watch() -> None:
+        while True:
+            time.sleep(WATCH_SECONDS)
+            if not _alive(parent):
+                os._exit(1)
+
+    threading.Thread(target=watch, name="corpuscle-parent-watch", daemon=True).start()
+
+
+def _alive(pid: int) -> bool:
+    """Whether a process ``pid`` exists on this machine (a zombie counts as gone)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            return fh.read().rsplit(b")", 1)[1].split()[0] != b"Z"
+    except OSError:
+        return True
+
+
+def stop_pool(pool) -> None:
+    """Stop a process pool at once: pending work is cancelled and its processes are ended (SIGTERM), without
+    waiting for the work they are doing (what ``shutdown(wait=True)`` would do on an interrupt)."""
+    processes = list((getattr(pool, "_processes", None) or {}).values())
+    pool.shutdown(wait=False, cancel_futures=True)
+    for process in processes:
+        with contextlib.suppress(Exception):
+            process.terminate()
+    for process in processes:
+        with contextlib.suppress(Exception):
+            process.join(5)
 
 
 @contextlib.contextmanager
@@ -124,8 +177,9 @@ class _SharedWork:
 
     def results(self) -> Iterator:
         done = {}
-        with ProcessPoolExecutor(max_workers=self.workers, mp_context=self.context,
-                                 initializer=_one_arrow_thread) as pool:
+        pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=self.context, initializer=_pool_process,
+                                   initargs=(os.getpid(),))
+        try:
             # Starting a pool process waits for the fork server to import the engine: let another thread wait.
             starter = threading.Thread(target=lambda: [self._feed(pool) for _ in range(self.workers)], daemon=True)
             starter.start()
@@ -137,12 +191,21 @@ class _SharedWork:
                 future = self.futures.pop(i, None)
                 if i in done:
                     yield done.pop(i)
-                elif future is not None:
-                    yield future.result()
-                else:  # the pool could not take it (broken, or shutting down after an error)
-                    with _arrow_threads(1):
-                        result = self.fn(self.items[i])
-                    yield result
+                    continue
+                if future is not None:
+                    try:
+                        yield future.result()
+                        continue
+                    except BrokenProcessPool:  # its process died (killed, out of memory): redo the item here
+                        pass
+                # the pool could not take it (broken, or shutting down after an error), or its process died
+                with _arrow_threads(1):
+                    result = self.fn(self.items[i])
+                yield result
+        except BaseException:  # an error, Ctrl-C, SIGTERM, or the caller stopped early: stop the pool now
+            stop_pool(pool)
+            raise
+        pool.shutdown(wait=True)
 
 
 class LocalExecutor:
@@ -209,6 +272,18 @@ def _distributed():
         raise ClusterUnavailable(f"running on a Dask cluster needs the distributed package: {CLUSTER_INSTALL}") \
             from None
     return distributed
+
+
+def local_security():
+    """``distributed.security.Security.temporary()``: a self-signed certificate and key made for this run, required
+    of every connection (TLS both ways).  Needs the ``cryptography`` package (in the ``cluster`` extra)."""
+    from distributed.security import Security
+
+    try:
+        return Security.temporary()
+    except ImportError:
+        raise ClusterUnavailable(f"--cluster local secures its scheduler with TLS, which needs the cryptography "
+                                 f"package: {CLUSTER_INSTALL}") from None
 
 
 def _kept(half):
@@ -348,30 +423,40 @@ class DaskExecutor:
         self.client = None
         self._cluster = None
         self._scratch = None
+        #: The TLS settings of a local cluster (:func:`local_security`), or None.
+        self.security = None
 
     def __enter__(self) -> "DaskExecutor":
         distributed = _distributed()
         try:
             if self.address == "local":
-                self._scratch = tempfile.mkdtemp(prefix="corpuscle-dask-")  # the workers' files; removed in close()
+                # The workers' files; removed in close(), or by a later run if this one is killed (see run_folder).
+                self._scratch = run_folder(tempfile.gettempdir(), "corpuscle-dask")
+                os.makedirs(self._scratch, mode=0o700)
+                # TLS with a certificate made for this run alone (in memory, never on disk): the scheduler and the
+                # workers accept only peers that hold it, so another user of this machine cannot connect to the
+                # scheduler and run code on the workers (loopback is no boundary between users).
+                self.security = local_security()
                 self._cluster = distributed.LocalCluster(
                     n_workers=self.jobs or os.cpu_count() or 1, threads_per_worker=1, processes=True,
                     host="127.0.0.1", scheduler_port=0, dashboard_address=None, silence_logs=logging.ERROR,
-                    local_directory=self._scratch,
+                    local_directory=self._scratch, protocol="tls://", security=self.security,
                     # No dashboard; the scheduler's HTTP server (health checks) on a free loopback port, not 8787.
                     scheduler_kwargs={"dashboard_address": "127.0.0.1:0"})
-                self.client = distributed.Client(self._cluster, timeout=self.timeout)
+                self.client = distributed.Client(self._cluster, timeout=self.timeout, security=self.security)
                 # One task at a time per worker process, one core each: Arrow decodes with one thread, as in the
                 # local pool (its own pool would have the workers compete for the same cores).
                 self.client.run(_one_arrow_thread)
             else:
                 self.client = distributed.Client(self.address, timeout=self.timeout)
-        except (OSError, TimeoutError, ValueError, RuntimeError) as exc:  # RuntimeError: a worker did not start
+        except (OSError, TimeoutError, ValueError, RuntimeError, TypeError) as exc:
+            # RuntimeError: a worker did not start; TypeError: a TLS scheduler and no TLS settings here
             self.close()
             where = "start a local Dask cluster" if self.address == "local" else \
                 f"connect to the Dask scheduler at {self.address}"
-            raise ClusterUnavailable(f"cannot {where} ({type(exc).__name__}: {exc}); check that the scheduler is "
-                                     "running and reachable from here, or use --cluster local") from None
+            raise ClusterUnavailable(f"cannot {where} ({type(exc).__name__}: {str(exc).strip()}); check that the "
+                                     "scheduler is running and reachable from here (a tls:// scheduler needs Dask's "
+                                     "TLS settings, see the README), or use --cluster local") from None
         return self
 
     def __exit__(self, *exc) -> bool:

@@ -27,11 +27,14 @@ from corpuscle.engine.split import Part
 from corpuscle.engine.split import workers as split_workers
 from corpuscle.findings import Finding, Level
 from corpuscle.io.batch import Shard, enough_first_records, first_records, is_integer_list
-from corpuscle.io.sources import absolute, discover, open_shard
+from corpuscle.io.sources import Limits, absolute, discover, open_shard
 from corpuscle.rules.api import CorpusResult, Rule, ShardState, Unmergeable, check_kind, inferred_by
 from corpuscle.settings import Settings, SettingsError, level_rule_ids, load_settings, rule_off
 
 log = logging.getLogger(__name__)
+
+#: Exit status of a scan that is incomplete: a rule or the engine raised (see :attr:`Report.incomplete`).
+EXIT_INCOMPLETE = 3
 
 
 @dataclass
@@ -42,6 +45,8 @@ class Note:
     message: str
     rule_id: str | None = None
     uri: str | None = None
+    #: An internal error (a rule or the engine raised): the scan is incomplete (exit status 3).
+    internal: bool = False
 
 
 @dataclass
@@ -58,6 +63,10 @@ class ShardResult:
     sample: dict | None = None
     #: For one part of a split shard, what joining the parts needs (see :func:`merge_parts`); None otherwise.
     part: dict | None = None
+    #: Internal errors of the engine on this shard (not of one rule): the shard's scan is incomplete.
+    errors: list = field(default_factory=list)
+    #: What the reader says the user should know that is no defect (e.g. a compressed stream without checksum).
+    notices: list = field(default_factory=list)
 
 
 @dataclass
@@ -82,9 +91,16 @@ class Report:
         return max((f.level for f in self.findings if f.baseline_state != "absent"), default=None)
 
     @property
+    def incomplete(self) -> bool:
+        """Whether a rule or the engine raised: some findings may be missing (exit status 3)."""
+        return any(note.internal for note in self.notes)
+
+    @property
     def exit_code(self) -> int:
-        """0 when no finding is at or above ``fail_at``; 1 when one is.  Suppressed findings do not count, and with
-        a baseline only new and updated ones do."""
+        """3 when the scan is incomplete (an internal error); else 0 when no finding is at or above ``fail_at``, 1
+        when one is.  Suppressed findings do not count, and with a baseline only new and updated ones do."""
+        if self.incomplete:
+            return EXIT_INCOMPLETE
         threshold = self.settings.fail_level if self.settings else Level.error
         if threshold is None:
             return 0
@@ -141,6 +157,21 @@ def select_rules(settings: Settings, available: dict[str, type[Rule]]) -> list[R
 
 def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=None, sample=None,
                part: Part | None = None) -> ShardResult:
+    """Read one shard and feed its batches to the rules (see :func:`_scan_shard`); never raises: an internal error
+    of the engine becomes the result's ``errors`` (the scan is then incomplete, exit status 3)."""
+    started = time.perf_counter()
+    try:
+        return _scan_shard(shard, settings, rules, progress, sample, part)
+    except Exception as exc:  # noqa: BLE001 - one shard's failure must not lose the other shards' findings
+        log.debug("internal error scanning %s", shard.uri, exc_info=True)
+        facts = part.facts if part is not None else settings
+        joining = {"skipped": {}, "stopped": True, "fed": set()} if part is not None else None
+        return ShardResult(shard, {}, {}, {}, facts, 0, 0, time.perf_counter() - started, None, joining,
+                           [f"{type(exc).__name__}: {exc}"])
+
+
+def _scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=None, sample=None,
+                part: Part | None = None) -> ShardResult:
     """Read one shard and feed its batches to the rules; never raises for bad data.
 
     ``progress`` (a :class:`corpuscle.engine.progress.Progress`, or None) hears of every batch and of the end of the shard;
@@ -153,6 +184,7 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=Non
     states: dict[str, ShardState] = {}
     skipped: dict[str, str] = {}
     crashed: dict[str, str] = {}
+    errors: list[str] = []
     counted = {"rows": 0, "tokens": 0}
 
     def feed(batch) -> None:
@@ -174,7 +206,12 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=Non
             states[rule.id].fed = True
 
     def begin(inferred: dict) -> dict[str, ShardState]:
-        out = {rule.id: rule.begin(shard, facts) for rule in rules}
+        out = {}
+        for rule in rules:
+            try:
+                out[rule.id] = rule.begin(shard, facts)
+            except Exception as exc:  # noqa: BLE001 - a rule bug must not lose the other rules' findings
+                crashed[rule.id] = f"{type(exc).__name__}: {exc}"
         for rule_id, state in out.items():
             state.inferred = inferred.get(rule_id)
             if part is not None:
@@ -185,7 +222,8 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=Non
     pending: list = []
     if part is not None:  # the facts were inferred from the shard's first records before the parts were read
         states = begin(part.inferred)
-    with open_shard(shard, tokens_column=facts.tokens_column, sample=sampling, part=part) as reader:
+    with open_shard(shard, tokens_column=facts.tokens_column, sample=sampling, part=part,
+                    limits=Limits.of(facts)) as reader:
         # rows, tokens and bytes consumed already reported to ``progress``
         told = (0, 0, part.lo if part is not None and shard.format == "jsonl" else 0)
 
@@ -202,7 +240,10 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=Non
             nonlocal facts, states, pending
             sample = first_records([batch for batch, _ in pending])
             if sample is not None:  # unset facts, from the first records of the shard
-                facts = infer_from_batch(facts, sample)
+                try:
+                    facts = infer_from_batch(facts, sample)
+                except Exception as exc:  # noqa: BLE001 - scan with the facts as given; the scan is incomplete
+                    errors.append(f"inferring the shard's facts failed ({type(exc).__name__}: {exc})")
             states = begin(inferred_by(rules, sample, facts) if sample is not None else {})
             del sample
             waiting, pending = pending, []
@@ -237,7 +278,8 @@ def scan_shard(shard: Shard, settings: Settings, rules: list[Rule], progress=Non
     if progress is not None and part is None:
         progress.shard_done(shard.uri, rows, tokens)
     return ShardResult(shard, final, skipped, crashed, facts, rows, tokens, time.perf_counter() - started,
-                       sampling.summary() if sampling is not None else None, joining)
+                       sampling.summary() if sampling is not None else None, joining, errors,
+                       list(reader.notices))
 
 
 def merge_parts(results: list[ShardResult], rules: list[Rule]) -> tuple[ShardResult, list[Rule]]:
@@ -294,7 +336,8 @@ def merge_parts(results: list[ShardResult], rules: list[Rule]) -> tuple[ShardRes
     skipped = {rule_id: why for rule_id, why in reasons.items() if rule_id in crashed or rule_id not in fed}
     merged = dataclasses.replace(kept[0], states=states, skipped=skipped, crashed=crashed,
                                  rows=sum(r.rows for r in kept), tokens=sum(r.tokens for r in kept),
-                                 seconds=sum(r.seconds for r in results), part=None)
+                                 seconds=sum(r.seconds for r in results), part=None,
+                                 errors=[why for r in results for why in r.errors])
     return merged, unjoined
 
 
@@ -314,7 +357,7 @@ def rescan(result: ShardResult, settings: Settings, rules: list[Rule], sample=No
     return dataclasses.replace(base, states={**others(result.states), **whole.states},
                                skipped={**others(result.skipped), **whole.skipped},
                                crashed={**others(result.crashed), **whole.crashed},
-                               seconds=result.seconds + whole.seconds)
+                               seconds=result.seconds + whole.seconds, errors=result.errors + whole.errors)
 
 
 def _scan_args(args):
@@ -378,7 +421,11 @@ def _parts(shard: Shard, settings: Settings, rules: list[Rule], executor, sample
         held = ", ".join(rule.id for rule in rules if not rule.splittable)
         log.debug("%s is scanned whole: rule(s) %s cannot join parts of a shard", shard.uri, held)
         return None
-    parts = split.plan(shard, settings, processes, rules=tuple(rules))
+    try:
+        parts = split.plan(shard, settings, processes, rules=tuple(rules))
+    except Exception:  # noqa: BLE001 - a shard that cannot be planned is scanned whole (which reports why)
+        log.debug("%s cannot be split", shard.uri, exc_info=True)
+        return None
     if parts is not None:
         log.debug("%s is scanned in %s", shard.uri, split.describe(parts))
     return parts
@@ -492,7 +539,8 @@ def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], se
         failed = [p.why for p in parts or () if isinstance(p, _Failed)]
         if failed:
             notes.append(Note(Level.error, f"rule failed while reducing across shards ({failed[0]}); its findings "
-                                           "that span shards and its corpus figures are missing", rule.id))
+                                           "that span shards and its corpus figures are missing", rule.id,
+                              internal=True))
             corpus = None
         else:
             corpus = _guard(rule, notes, None,
@@ -507,7 +555,13 @@ def finish(results: list[ShardResult], settings: Settings, rules: list[Rule], se
     for result in results:
         for rule_id, why in result.crashed.items():
             notes.append(Note(Level.error, f"rule stopped on this shard after an internal error ({why}); "
-                                           "its findings for the shard are incomplete", rule_id, result.shard.uri))
+                                           "its findings for the shard are incomplete", rule_id, result.shard.uri,
+                              internal=True))
+        for notice in result.notices:
+            notes.append(Note(Level.note, notice, None, result.shard.uri))
+        for why in result.errors:
+            notes.append(Note(Level.error, f"the scan of this shard stopped after an internal error ({why}); its "
+                                           "findings are incomplete", None, result.shard.uri, internal=True))
         for rule_id, why in result.skipped.items():
             notes.append(Note(Level.note, f"skipped: {why}", rule_id, result.shard.uri))
     notes += _inferred_notes(results)
@@ -553,7 +607,8 @@ def _guard(rule: Rule, notes: list[Note], uri: str | None, call):
     try:
         return call()
     except Exception as exc:  # noqa: BLE001
-        notes.append(Note(Level.error, f"rule failed while reporting ({type(exc).__name__}: {exc})", rule.id, uri))
+        notes.append(Note(Level.error, f"rule failed while reporting ({type(exc).__name__}: {exc})", rule.id, uri,
+                          internal=True))
         return None
 
 

@@ -23,7 +23,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 from corpuscle.engine.infer import infer_from_batch
 from corpuscle.io.batch import Shard, enough_first_records, first_records
-from corpuscle.io.sources import _open_input, is_uri, open_shard
+from corpuscle.io.sources import Limits, _open_input, is_uri, local_path, metadata_aborts, open_shard
 from corpuscle.rules.api import inferred_by
 from corpuscle.settings import Settings
 
@@ -89,7 +89,7 @@ def first_facts(shard: Shard, settings: Settings, rules: tuple = ()) -> tuple[Se
     no records."""
     facts = settings.for_path(shard.path)
     batches = []
-    with open_shard(shard, tokens_column=facts.tokens_column) as reader:
+    with open_shard(shard, tokens_column=facts.tokens_column, limits=Limits.of(facts)) as reader:
         for batch in reader:
             batches.append(batch)
             if enough_first_records(batches, facts.tokens_column):
@@ -132,12 +132,14 @@ def _cuts(shard: Shard, parts: int) -> list[tuple[int, int, int]] | None:
         finally:
             if not isinstance(source, str):
                 source.close()
+        if metadata_aborts(meta) is not None:  # the whole scan reports it
+            return None
         groups = [meta.row_group(g) for g in range(meta.num_row_groups)]
         return _unit_cuts([g.num_rows for g in groups],
                           [sum(g.column(i).total_compressed_size for i in range(g.num_columns)) for g in groups],
                           parts)
     if shard.format == "arrow":
-        with pa.memory_map(shard.path, "r") as source:
+        with pa.memory_map(local_path(shard.path), "r") as source:
             if source.read(6) != b"ARROW1":
                 return None  # a stream: no index of its batches
             source.seek(0)
@@ -152,7 +154,7 @@ def _line_cuts(shard: Shard, parts: int) -> list[tuple[int, int, int]] | None:
     block (the last newline before a multiple of the reader's block size), and the line index each starts at."""
     block = open_shard(shard).batch_bytes
     length = shard.length
-    source = _open_input(shard.path) if is_uri(shard.path) else pa.OSFile(shard.path, "rb")
+    source = _open_input(shard.path) if is_uri(shard.path) else pa.OSFile(local_path(shard.path), "rb")
     with source:
         cuts = [0]
         for i in range(1, parts):

@@ -430,12 +430,18 @@ def _check_int(name: str, value, minimum: int, hint: str, maximum: int | None = 
     return number
 
 
+#: Upper bounds that keep a scan's memory and time sane: a signature is 4 bytes a permutation per window, and every
+#: window shorter than ``n`` is one shingle.
+MAX_NUM_PERM = 4096
+MAX_N = 256
+
+
 def _check_num_perm(num_perm) -> int:
-    return _check_int("num_perm", num_perm, 1, "128 permutations is the usual choice", maximum=1 << 32)
+    return _check_int("num_perm", num_perm, 1, "128 permutations is the usual choice", maximum=MAX_NUM_PERM)
 
 
 def _check_n(n) -> int:
-    return _check_int("n", n, 1, "shingles of 5 tokens or words are the usual choice")
+    return _check_int("n", n, 1, "shingles of 5 tokens or words are the usual choice", maximum=MAX_N)
 
 
 def _check_seed(seed) -> int:

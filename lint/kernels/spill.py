@@ -3,8 +3,13 @@ block of rows at a time, so that what a scan holds in memory does not grow with 
 from __future__ import annotations
 
 import os
+import re
+import shutil
+import socket
 import struct
 import tempfile
+import uuid
+import zlib
 
 import numpy as np
 
@@ -183,3 +188,43 @@ def read_shingle_sets(shingles: str, ends: str, units: np.ndarray) -> tuple[np.n
     hashes = np.asarray(mapped[position], dtype=np.uint32)
     del mapped
     return hashes, offsets
+
+
+def _host_tag() -> str:
+    """8 hex digits naming this machine (a hash of its host name): a pid means something only on its machine."""
+    return f"{zlib.crc32(socket.gethostname().encode('utf-8', 'surrogateescape')):08x}"
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, OverflowError):
+        return True
+    return True
+
+
+def run_folder(parent: str, prefix: str) -> str:
+    """A new folder path under ``parent`` for one scan's temporary files (not created here), named
+    ``<prefix>-<host>-<pid>-<random>`` after the process that runs the scan; folders of the same naming left by
+    scans of this machine whose process is gone (killed by SIGKILL, say) are removed first."""
+    remove_orphans(parent, prefix)
+    return os.path.join(parent, f"{prefix}-{_host_tag()}-{os.getpid()}-{uuid.uuid4().hex}")
+
+
+def remove_orphans(parent: str, prefix: str) -> list[str]:
+    """Remove the folders under ``parent`` that :func:`run_folder` named for a process of this machine that no
+    longer runs; returns their paths."""
+    pattern = re.compile(re.escape(prefix) + r"-([0-9a-f]{8})-(\d+)-[0-9a-f]{32}\Z")
+    host, removed = _host_tag(), []
+    try:
+        names = os.listdir(parent)
+    except OSError:
+        return removed
+    for name in names:
+        match = pattern.match(name)
+        if match and match.group(1) == host and not _pid_alive(int(match.group(2))):
+            shutil.rmtree(os.path.join(parent, name), ignore_errors=True)
+            removed.append(os.path.join(parent, name))
+    return removed

@@ -4,6 +4,8 @@ from __future__ import annotations
 import os
 import tempfile
 
+import orjson
+
 
 def write_atomic(path: str, data: bytes) -> None:
     """Write ``data`` to ``path`` through a temporary file in the same folder and a rename, so an interrupted run
@@ -31,3 +33,32 @@ def _umask() -> int:
     mask = os.umask(0o022)
     os.umask(mask)
     return mask
+
+
+def printable(text: str) -> str:
+    """``text`` with the bytes of a file name that is not valid UTF-8 (surrogate escapes, as ``os.fsdecode`` gives
+    them) written as ``\\xNN``: every report is valid UTF-8 whatever the names of the shards."""
+    try:
+        text.encode("utf-8")
+        return text
+    except UnicodeEncodeError:
+        return text.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+
+
+def _printable_values(value):
+    if isinstance(value, str):
+        return printable(value)
+    if isinstance(value, dict):
+        return {printable(k) if isinstance(k, str) else k: _printable_values(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_printable_values(v) for v in value]
+    return value
+
+
+def dump_json(document, option: int = 0) -> bytes:
+    """``orjson.dumps(document)``; strings that are not valid UTF-8 (file names) are made printable first."""
+    option |= orjson.OPT_SERIALIZE_NUMPY
+    try:
+        return orjson.dumps(document, option=option)
+    except orjson.JSONEncodeError:
+        return orjson.dumps(_printable_values(document), option=option)

@@ -16,7 +16,7 @@ the first rule's entry. An empty list is an empty file.
 """
 from __future__ import annotations
 
-import orjson
+from corpuscle.report import dump_json
 
 NAME = "drop-list"
 
@@ -34,4 +34,4 @@ def entries(report) -> list[dict]:
 
 
 def render(report) -> bytes:
-    return b"".join(orjson.dumps(e) + b"\n" for e in entries(report))
+    return b"".join(dump_json(e) + b"\n" for e in entries(report))

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import orjson
+from corpuscle.report import dump_json
 from corpuscle.version import __version__
 
 
@@ -37,4 +38,4 @@ def to_dict(report) -> dict:
 
 
 def render(report) -> bytes:
-    return orjson.dumps(to_dict(report), option=orjson.OPT_INDENT_2 | orjson.OPT_SERIALIZE_NUMPY)
+    return dump_json(to_dict(report), orjson.OPT_INDENT_2)

@@ -8,6 +8,7 @@ from urllib.parse import quote
 
 import orjson
 from corpuscle.findings import Finding
+from corpuscle.report import dump_json
 from corpuscle.version import __version__
 
 SCHEMA_URI = "https://docs.oasis-open.org/sarif/sarif/v2.1.0/errata01/os/schemas/sarif-schema-2.1.0.json"
@@ -15,8 +16,9 @@ INFORMATION_URI = "https://pypi.org/project/corpuscle/"
 
 
 def artifact_uri(uri: str) -> str:
-    """The shard's uri as given, percent-encoded where a URI reference needs it (spaces, '%', '#', '?')."""
-    return quote(uri, safe="/:@!$&'()*+,;=-._~")
+    """The shard's uri as given, percent-encoded where a URI reference needs it (spaces, '%', '#', '?'); the bytes
+    of a name that is not valid UTF-8 (surrogate escapes) are percent-encoded as they are on disk (RFC 3986 §2.1)."""
+    return quote(uri.encode("utf-8", "surrogateescape"), safe="/:@!$&'()*+,;=-._~")
 
 
 def _rule_entry(rule) -> dict:
@@ -109,7 +111,7 @@ def run_guid(report) -> str:
     the run scanned and found, so that the same scan of the same data writes the same report byte for byte."""
     digest = hashlib.sha256(__version__.encode())
     for shard in report.shards:
-        digest.update(f"\x1e{shard.uri}\x1f{shard.length}".encode())
+        digest.update(f"\x1e{shard.uri}\x1f{shard.length}".encode("utf-8", "surrogateescape"))
     for f in report.findings:
         digest.update(f"\x1e{f.fingerprint}\x1f{f.level.name}\x1f{f.count}\x1f{f.baseline_state}".encode())
         digest.update(f.rows.tobytes() + f.offsets.tobytes())
@@ -121,7 +123,7 @@ def to_sarif(report) -> dict:
     artifact_index = {shard.uri: i for i, shard in enumerate(report.shards)}
     # A finding of a rule not selected (cannot happen for built-ins) still needs its id in the driver.
     invocation = {
-        "executionSuccessful": not any(n.level.name == "error" for n in report.notes),
+        "executionSuccessful": not report.incomplete,
         "toolExecutionNotifications": [_notification(n) for n in report.notes],
     }
     overrides = _overrides(report, rule_index)
@@ -146,4 +148,4 @@ def to_sarif(report) -> dict:
 
 
 def render(report) -> bytes:
-    return orjson.dumps(to_sarif(report), option=orjson.OPT_INDENT_2 | orjson.OPT_SERIALIZE_NUMPY)
+    return dump_json(to_sarif(report), orjson.OPT_INDENT_2)

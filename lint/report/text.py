@@ -165,8 +165,16 @@ def render_long(report, stats: bool = False) -> str:
     tail = _suppression_lines(report) + _baseline_line(report)
     if tail:
         out += [""] + tail
-    out += ["", _verdict(report)]
+    out += _incomplete_lines(report) + ["", _verdict(report)]
     return "\n".join(out) + "\n"
+
+
+def _incomplete_lines(report) -> list[str]:
+    """What an incomplete scan (exit status 3) says before its verdict."""
+    if not getattr(report, "incomplete", False):
+        return []
+    return ["", "The scan is incomplete: a rule or the engine raised (see the notes), so findings may be missing; "
+                "exit 3."]
 
 
 # -- the compact summary (the default) ---------------------------------------------------------------------------
@@ -508,5 +516,5 @@ def render(report, stats: bool = False, long: bool = False) -> str:
         out += [""] + tail
     if stats:
         out += _stats_lines(m)
-    out += ["", _verdict(report)]
+    out += _incomplete_lines(report) + ["", _verdict(report)]
     return "\n".join(out) + "\n"

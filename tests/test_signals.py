@@ -1,0 +1,130 @@
+"""Signals end a scan cleanly: SIGTERM exits 143 and SIGINT 130 (128 + the signal number, as shells report it),
+the pool's processes and the spill folders are gone, an older report is left as it was; after SIGKILL the pool's
+processes end by themselves and the next run removes the spill folder left behind."""
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+pytestmark = pytest.mark.skipif(not os.path.isdir("/proc") or os.name != "posix",
+                                reason="needs POSIX signals and /proc to find the scan's processes")
+
+#: The command as installed beside this Python (the virtual environment's script).
+CORPUSCLE = [os.path.join(os.path.dirname(sys.executable), "corpuscle")]
+
+
+def corpus(folder, shards=16, rows=6000, width=512):
+    """Tokenized shards large enough that a scan with the duplicate rules takes a few seconds."""
+    rng = np.random.default_rng(7)
+    folder.mkdir()
+    for i in range(shards):
+        values = pa.array(rng.integers(3, 30_000, size=rows * width, dtype=np.int64))
+        offsets = pa.array(np.arange(rows + 1, dtype=np.int32) * width)
+        pq.write_table(pa.table({"input_ids": pa.ListArray.from_arrays(offsets, values)}), folder / f"s{i}.parquet")
+    return folder
+
+
+def descendants(pid: int) -> set[int]:
+    """Every live process below ``pid`` (from /proc: each process's parent is field 4 of its stat line)."""
+    children: dict[int, list[int]] = {}
+    for entry in os.listdir("/proc"):
+        if not entry.isdigit():
+            continue
+        try:
+            with open(f"/proc/{entry}/stat", "rb") as fh:
+                fields = fh.read().rsplit(b")", 1)[1].split()
+        except OSError:
+            continue
+        if fields[0] != b"Z":
+            children.setdefault(int(fields[1]), []).append(int(entry))
+    out, todo = set(), [pid]
+    while todo:
+        for child in children.get(todo.pop(), []):
+            out.add(child)
+            todo.append(child)
+    return out
+
+
+def alive(pids: set[int]) -> set[int]:
+    out = set()
+    for pid in pids:
+        try:
+            with open(f"/proc/{pid}/stat", "rb") as fh:
+                if fh.read().rsplit(b")", 1)[1].split()[0] != b"Z":
+                    out.add(pid)
+        except OSError:
+            pass
+    return out
+
+
+def spills(tmp: str) -> list[str]:
+    return sorted(name for name in os.listdir(tmp) if name.startswith("corpuscle-minhash-"))
+
+
+def start(data, tmp, report):
+    env = dict(os.environ, TMPDIR=str(tmp))
+    return subprocess.Popen([*CORPUSCLE, "scan", str(data), "--jobs", "2", "--quiet", "--sarif", str(report)],
+                            env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+
+
+def wait_until(condition, seconds: float) -> bool:
+    end = time.monotonic() + seconds
+    while time.monotonic() < end:
+        if condition():
+            return True
+        time.sleep(0.05)
+    return condition()
+
+
+@pytest.fixture(scope="module")
+def data(tmp_path_factory):
+    return corpus(tmp_path_factory.mktemp("signals") / "data")
+
+
+@pytest.mark.parametrize("signum, status", [(signal.SIGTERM, 143), (signal.SIGINT, 130)], ids=["TERM", "INT"])
+def test_a_signal_stops_the_pool_removes_spill_folders_and_leaves_the_older_report(data, tmp_path, signum, status):
+    tmp = tmp_path / "tmp"
+    tmp.mkdir()
+    report = tmp_path / "old.sarif"
+    report.write_text('{"an": "older report"}')
+    scan = start(data, tmp, report)
+    # Signal once the scan is under way: the pool has started and the near-duplicate rule has spilled.
+    assert wait_until(lambda: spills(str(tmp)) and len(descendants(scan.pid)) >= 2, 60), scan.stderr.read()
+    family = descendants(scan.pid)
+    scan.send_signal(signum)
+    _, err = scan.communicate(timeout=60)
+    assert scan.returncode == status, err
+    assert b"Traceback" not in err and b"interrupted" in err
+    assert wait_until(lambda: not alive(family), 10), alive(family)
+    assert spills(str(tmp)) == []
+    assert report.read_text() == '{"an": "older report"}'
+    assert [n for n in os.listdir(tmp_path) if n.startswith(".corpuscle-")] == []  # no temporary report left
+
+
+def test_after_sigkill_the_pool_ends_itself_and_the_next_run_removes_the_spill_folder(data, tmp_path):
+    tmp = tmp_path / "tmp"
+    tmp.mkdir()
+    scan = start(data, tmp, tmp_path / "r.sarif")
+    assert wait_until(lambda: spills(str(tmp)) and len(descendants(scan.pid)) >= 2, 60), scan.stderr.read()
+    family = descendants(scan.pid)
+    scan.kill()
+    scan.wait(timeout=10)
+    # Pool processes watch the scan's process every second; the fork server ends when its parent does.
+    assert wait_until(lambda: not alive(family), 15), alive(family)
+    left = spills(str(tmp))
+    assert left and all(f"-{scan.pid}-" in name for name in left)  # named after the dead scan's process
+    small = tmp_path / "small"
+    small.mkdir()
+    (small / "a.jsonl").write_text('{"input_ids": [5, 6, 7, 2]}\n')
+    env = dict(os.environ, TMPDIR=str(tmp))
+    again = subprocess.run([*CORPUSCLE, "scan", str(small), "--jobs", "1", "--quiet"], env=env, capture_output=True)
+    assert again.returncode in (0, 1), again.stderr
+    assert spills(str(tmp)) == []
