@@ -541,13 +541,18 @@ def _permutations(num_perm: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
 
 def _word_ids(words: pa.Array) -> np.ndarray:
     """Word ids of a large_string array without nulls or empty strings."""
-    count = len(words)
-    ids = np.empty(count, dtype=np.uint64)
-    if count == 0:
-        return ids
+    if len(words) == 0:
+        return np.empty(0, dtype=np.uint64)
     _, offset_buffer, data_buffer = words.buffers()
-    offsets = np.frombuffer(offset_buffer, dtype=np.int64)[words.offset : words.offset + count + 1]
-    data = np.frombuffer(data_buffer, dtype=np.uint8)
+    offsets = np.frombuffer(offset_buffer, dtype=np.int64)[words.offset : words.offset + len(words) + 1]
+    return word_ids(np.frombuffer(data_buffer, dtype=np.uint8), offsets)
+
+
+def word_ids(data: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+    """64-bit ids of the words ``data[offsets[k]:offsets[k + 1]]`` (none empty): ``mix64(sum(b_j * POLY**j) ^
+    L)`` over each word's bytes, a chunk of :data:`_WORD_CHUNK_BYTES` bytes of words at a time."""
+    count = len(offsets) - 1
+    ids = np.empty(count, dtype=np.uint64)
     w0 = 0
     while w0 < count:
         limit = offsets[w0] + _WORD_CHUNK_BYTES

@@ -42,7 +42,7 @@ from dataclasses import dataclass
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
-from corpuscle.kernels.minhash import POLY, mix64
+from corpuscle.kernels.minhash import POLY, mix64, word_ids
 
 #: Characters that make up words: Unicode letters and numbers (RE2 and ``regex`` syntax).
 WORD_CLASS = r"\p{L}\p{N}"
@@ -52,8 +52,6 @@ _MASK64 = (1 << 64) - 1
 FILTER_MAX_BITS = 1 << 30
 # N-grams hashed per step of ngram_hashes (bounds its scratch memory to a few MiB).
 _HASH_CHUNK = 1 << 18
-# UTF-8 bytes of words hashed per step (bounds scratch memory: some 40 bytes per byte, about 40 MiB).
-_WORD_CHUNK_BYTES = 1 << 20
 
 
 def normalized_words(text: str) -> list[str]:
@@ -205,31 +203,6 @@ def _interleave(parts: list[Words], rows: list[np.ndarray], count: int) -> Words
     text_offsets = np.zeros(count + 1, dtype=np.int64)
     np.cumsum(np.bincount(text_of, minlength=count), out=text_offsets[1:])
     return Words(data, offsets, joined.ids[order], text_offsets)
-
-
-def word_ids(data: np.ndarray, offsets: np.ndarray) -> np.ndarray:
-    """64-bit ids of the words ``data[offsets[k]:offsets[k + 1]]`` (none empty): ``mix64(sum(b_j * POLY**j) ^
-    L)`` over each word's bytes, a chunk of words at a time."""
-    count = len(offsets) - 1
-    ids = np.empty(count, dtype=np.uint64)
-    w0 = 0
-    while w0 < count:
-        limit = offsets[w0] + _WORD_CHUNK_BYTES
-        w1 = min(count, max(w0 + 1, int(np.searchsorted(offsets, limit, side="right")) - 1))
-        lo, hi = int(offsets[w0]), int(offsets[w1])
-        starts = offsets[w0:w1] - lo
-        lengths = np.diff(offsets[w0:w1 + 1])
-        position = np.arange(hi - lo) - np.repeat(starts, lengths)
-        powers = np.full(int(lengths.max()), POLY, dtype=np.uint64)
-        powers[0] = 1
-        np.multiply.accumulate(powers, out=powers)
-        terms = data[lo:hi].astype(np.uint64)
-        terms *= powers[position]
-        poly = np.add.reduceat(terms, starts)
-        poly ^= lengths.astype(np.uint64)
-        ids[w0:w1] = mix64(poly)
-        w0 = w1
-    return ids
 
 
 def word_id(word: str) -> int:

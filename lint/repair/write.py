@@ -15,6 +15,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 from corpuscle.io.batch import Shard
 from corpuscle.io.sources import _open_input, is_uri
+from corpuscle.report import umask
 
 #: Rows per output unit when the input does not say (an empty input, a JSON Lines shard).
 DEFAULT_UNIT_ROWS = 1024
@@ -140,7 +141,7 @@ class ShardWriter(_Buffered):
             os.fsync(fd)  # on disk before it takes the shard's name
         finally:
             os.close(fd)
-        os.chmod(self.tmp, 0o666 & ~_umask())
+        os.chmod(self.tmp, 0o666 & ~umask())
         os.replace(self.tmp, self.path)
 
     def abort(self) -> None:
@@ -191,7 +192,7 @@ def copy_atomic(shard: Shard, path: str) -> None:
                     out.write(chunk)
             out.flush()
             os.fsync(out.fileno())
-        os.chmod(tmp, 0o666 & ~_umask())
+        os.chmod(tmp, 0o666 & ~umask())
         os.replace(tmp, path)
     except BaseException:
         try:
@@ -199,9 +200,3 @@ def copy_atomic(shard: Shard, path: str) -> None:
         except OSError:
             pass
         raise
-
-
-def _umask() -> int:
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return mask

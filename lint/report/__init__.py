@@ -14,7 +14,7 @@ def write_atomic(path: str, data: bytes) -> None:
     os.makedirs(folder, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=".corpuscle-", suffix=".tmp", dir=folder)
     try:
-        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes the file private (0600); a report is an ordinary file
+        os.chmod(tmp, 0o666 & ~umask())  # mkstemp makes the file private (0600); a report is an ordinary file
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()
@@ -28,7 +28,7 @@ def write_atomic(path: str, data: bytes) -> None:
         raise
 
 
-def _umask() -> int:
+def umask() -> int:
     """The process's file-creation mask (read by setting and restoring it)."""
     mask = os.umask(0o022)
     os.umask(mask)
