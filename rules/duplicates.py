@@ -20,24 +20,9 @@ Units (the ``unit`` option)
 
 Content hash (``exact-duplicate``, and ``near-duplicate`` to fold exact copies)
     Token documents: :func:`corpuscle.kernels.hashing.document_hashes` (two polynomial lanes over the ids, from
-    running sums over the whole batch). Rows and text documents: a window is a vector of 32-bit words: its token
-    ids modulo 2**32 (so the same ids stored as int32 or int64
-    hash the same; ids that differ by a multiple of 2**32 -- never valid ids -- alias), or the bytes of its
-    UTF-8 text exactly as stored (no normalization: text that differs only in Unicode normalization or
-    whitespace is not an exact copy; the near-duplicate rule, which lowercases and splits into words, sees it).
-    Each of four lanes hashes the words ``s_0 .. s_{L-1}`` of a window with the multilinear family::
-
-        lane = (k_c + k_len * (2 * L + domain) + sum_j k_j * s_j)  mod 2**64,   keep lane >> 32
-
-    with ``domain`` 0 for token windows and 1 for text documents (a token window never equals a document), and
-    64-bit keys ``k`` from :func:`corpuscle.kernels.minhash.mix64` of fixed inputs, independent per lane. For keys drawn at
-    random this family is strongly universal on its top 32 bits (multilinear hashing of 32-bit words, from
-    memory: Lemire and Kaser, "Strongly universal string hashing is fast", 2014), so two different windows agree
-    in one lane with probability 2**-32 and in all four -- the 128-bit content hash -- with probability 2**-128;
-    among ``n`` windows some pair collides with probability below ``n**2 / 2**129`` (about 1e-21 for a billion
-    windows). Our keys are fixed pseudo-random numbers, so the figure holds for data not built against them.
-    Whole batches are hashed at once: a reshape and ``np.einsum`` for windows of one length, ``np.add.reduceat``
-    over the words otherwise; no Python loop per window.
+    running sums over the whole batch). Rows and text documents: the 128-bit multilinear content hash of
+    :func:`corpuscle.kernels.hashing.content_hashes` (its module notes give the family and its collision
+    probability).
 
 Near-duplicates
     Each unit's shingles (``n`` consecutive tokens, or ``n`` consecutive words after lowercasing; a unit shorter

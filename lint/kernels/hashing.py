@@ -1,6 +1,6 @@
 """128-bit content hashes of windows and documents: equal content, equal hash; stable across runs.
 
-    A window is a vector of 32-bit words: its token ids modulo 2**32 (so the same ids stored as int32 or int64
+A window is a vector of 32-bit words: its token ids modulo 2**32 (so the same ids stored as int32 or int64
 hash the same; ids that differ by a multiple of 2**32 -- never valid ids -- alias), or the bytes of its
 UTF-8 text exactly as stored (no normalization: text that differs only in Unicode normalization or
 whitespace is not an exact copy; the near-duplicate rule, which lowercases and splits into words, sees it).
@@ -9,7 +9,7 @@ Each of four lanes hashes the words ``s_0 .. s_{L-1}`` of a window with the mult
     lane = (k_c + k_len * (2 * L + domain) + sum_j k_j * s_j)  mod 2**64,   keep lane >> 32
 
 with ``domain`` 0 for token windows and 1 for text documents (a token window never equals a document), and
-64-bit keys ``k`` from :func:`lint.minhash.mix64` of fixed inputs, independent per lane. For keys drawn at
+64-bit keys ``k`` from :func:`corpuscle.kernels.minhash.mix64` of fixed inputs, independent per lane. For keys drawn at
 random this family is strongly universal on its top 32 bits (multilinear hashing of 32-bit words, from
 memory: Lemire and Kaser, "Strongly universal string hashing is fast", 2014), so two different windows agree
 in one lane with probability 2**-32 and in all four -- the 128-bit content hash -- with probability 2**-128;

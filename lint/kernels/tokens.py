@@ -158,7 +158,7 @@ def padding_positions(batch: Batch, tokens: Flat, settings) -> np.ndarray:
 
 
 def real_ranks(batch: Batch, tokens: Flat, settings) -> MaskRanks:
-    """:class:`~lint.batch.MaskRanks` of :func:`real_positions`: how many real tokens lie in any range, and where
+    """:class:`~corpuscle.io.batch.MaskRanks` of :func:`real_positions`: how many real tokens lie in any range, and where
     the k-th real token is (shared per batch)."""
     return batch.memo(("real-ranks",) + _real_key(settings)[1:],
                       lambda: MaskRanks(real_positions(batch, tokens, settings)))
