@@ -753,3 +753,33 @@ def test_clean_shards_of_every_layout_are_left_as_they_are(tmp_path):
                    Settings(eos_id=EOS, pad_id=PAD), repack="chunk", jobs=1)
     assert again.exit_code == 0
     assert read(tmp_path / "again" / "packed_positions.parquet") == read(tmp_path / "in" / "packed_positions.parquet")
+
+
+def test_duplicate_documents_of_a_packed_shard_are_dropped_by_their_start_and_the_rest_repacked(tmp_path):
+    """The default scan names duplicate documents (not windows) by their first token; a repair with --repack
+    best-fit keeps exactly one copy of each: the documents after are those before, less the later copies (plain
+    Python over the shard's own lists), and the rescan is clean."""
+    import random
+
+    rng = random.Random(3)
+    docs = [[rng.randrange(3, 900) for _ in range(rng.randrange(20, 150))] for _ in range(120)]
+    docs += [list(d) for d in docs[10:22]]  # 12 exact copies, packed at offsets unrelated to the windows
+    rng.shuffle(docs)
+    src = write(tmp_path / "in" / "a.parquet", pack(docs, 128, eos=EOS, pad=PAD))
+    before = sha256(src)
+    facts = dict(eos_id=EOS, pad_id=PAD, seq_len=128)
+    entries = run(src, **facts).outputs["drop-list"]
+    assert len(entries) == 12 and {e["unit"] for e in entries} == {"document"}
+    result = repair([src], str(tmp_path / "out"), Settings(**facts), repack="best-fit", jobs=1)
+    assert result.exit_code == 0, result.still_found
+    assert sha256(src) == before
+    seen, kept = set(), []
+    for doc in docs:  # the first copy in scan order stays
+        if tuple(doc) not in seen:
+            seen.add(tuple(doc))
+            kept.append(doc)
+    got = read(tmp_path / "out" / "a.parquet")
+    assert all(len(row) == 128 for row in got["input_ids"])
+    assert collections.Counter(tuple(d[0]) for d in python_documents(got, PAD)) == expected_documents(kept)
+    rescan = run(str(tmp_path / "out" / "a.parquet"), **facts)
+    assert not [f for f in rescan.findings if f.rule_id in ("exact-duplicate", "near-duplicate")]
