@@ -12,6 +12,8 @@ deprecated BIT_PACKED encoding, a damaged or implausible page): the caller then 
 """
 from __future__ import annotations
 
+import zlib
+
 import numpy as np
 import pyarrow as pa
 
@@ -118,8 +120,8 @@ def _struct(data: bytes, at: int, depth: int = 0) -> tuple[dict, int]:
 def _row_starts(data: bytes, count: int, width: int, first: int) -> np.ndarray:
     """Positions (``first`` + index) of the level-0 entries among the first ``count`` levels of an RLE / bit-packed
     hybrid run sequence of bit width ``width``."""
-    out, at, done = [], 0, 0
-    size = (width + 7) // 8
+    out, few, at, done = [], [], 0, 0
+    size, mask = (width + 7) // 8, (1 << width) - 1
     while done < count:
         header, at = _varint(data, at)
         if header & 1:  # bit-packed: (header >> 1) groups of 8 values, ``width`` bits each, least significant first
@@ -127,10 +129,15 @@ def _row_starts(data: bytes, count: int, width: int, first: int) -> np.ndarray:
             end = at + groups * width
             if end > len(data) or groups == 0:
                 raise _Unread("a bit-packed run runs past the page")
-            bits = np.unpackbits(np.frombuffer(data, np.uint8, groups * width, at), bitorder="little")
-            values = bits.reshape(-1, width) @ (1 << np.arange(width, dtype=np.int64)) if width > 1 else bits
             take = min(groups * 8, count - done)
-            out.append(np.flatnonzero(values[:take] == 0) + (first + done))
+            if groups <= 8:  # short runs (a row start among continuations) are most runs: plain integers
+                packed = int.from_bytes(data[at:end], "little")
+                base = first + done
+                few += [base + k for k in range(take) if not (packed >> (k * width)) & mask]
+            else:
+                bits = np.unpackbits(np.frombuffer(data, np.uint8, groups * width, at), bitorder="little")
+                values = bits.reshape(-1, width) @ (1 << np.arange(width, dtype=np.int64)) if width > 1 else bits
+                out.append(np.flatnonzero(values[:take] == 0) + (first + done))
             done += take
             at = end
         else:  # RLE: (header >> 1) copies of one value
@@ -141,19 +148,80 @@ def _row_starts(data: bytes, count: int, width: int, first: int) -> np.ndarray:
             at += size
             take = min(run, count - done)
             if value == 0:
-                out.append(np.arange(first + done, first + done + take, dtype=np.int64))
+                if take > MAX_ROWS:  # more rows than any row group read here: a damaged or hostile run
+                    raise _Unread("an RLE run of more row starts than a row group holds")
+                if take <= 8:
+                    few += range(first + done, first + done + take)
+                else:
+                    out.append(np.arange(first + done, first + done + take, dtype=np.int64))
             done += take
-    return np.concatenate(out) if out else np.zeros(0, np.int64)
+    if few:
+        out.append(np.asarray(few, dtype=np.int64))
+    return np.sort(np.concatenate(out)) if len(out) > 1 else out[0] if out else np.zeros(0, np.int64)
 
 
-def _levels_v1(page: bytes, count: int, width: int, first: int) -> np.ndarray:
-    """Row starts of a DATA_PAGE (v1), decompressed: the repetition levels come first, a 4-byte length then the
-    RLE hybrid runs."""
-    if len(page) < 4:
+def _snappy_prefix(data: bytes, want: int) -> bytes:
+    """The first ``want`` bytes (or all) of a raw Snappy block (Snappy's format description: a varint length, then
+    literals and back-references), decoded no further than needed."""
+    _, at = _varint(data, 0)
+    out = bytearray()
+    while len(out) < want and at < len(data):
+        tag = data[at]
+        at += 1
+        kind = tag & 3
+        if kind == 0:  # literal
+            length = tag >> 2
+            if length >= 60:
+                extra = length - 59
+                length = int.from_bytes(data[at:at + extra], "little")
+                at += extra
+            length += 1
+            out += data[at:at + length]
+            at += length
+            continue
+        if kind == 1:
+            length, offset = ((tag >> 2) & 7) + 4, ((tag >> 5) << 8) | data[at]
+            at += 1
+        elif kind == 2:
+            length, offset = (tag >> 2) + 1, int.from_bytes(data[at:at + 2], "little")
+            at += 2
+        else:
+            length, offset = (tag >> 2) + 1, int.from_bytes(data[at:at + 4], "little")
+            at += 4
+        if not 0 < offset <= len(out):
+            raise _Unread("a Snappy back-reference points before the data")
+        piece = bytes(out[-offset:])
+        out += (piece * (length // offset + 1))[:length]
+    return bytes(out[:want])
+
+
+def _prefix(body: bytes, codec: str | None, raw_size: int, want: int) -> bytes:
+    """At least the first ``want`` bytes of a compressed page (all of it when shorter), decompressing as little as
+    the codec allows: Snappy by hand, gzip with zlib, zstd and Brotli as streams; the others whole."""
+    if codec is None:
+        return body[:want]
+    if codec == "snappy":
+        return _snappy_prefix(body, want)
+    if codec == "gzip":
+        return zlib.decompressobj(47).decompress(body, want)  # 47: gzip or zlib header, as the data says
+    if codec in ("zstd", "brotli"):
+        with pa.CompressedInputStream(pa.BufferReader(body), codec) as stream:
+            return stream.read(want)
+    return pa.Codec(codec).decompress(body, raw_size).to_pybytes()[:want]
+
+
+def _levels_v1(body: bytes, codec: str | None, raw_size: int, count: int, width: int, first: int) -> np.ndarray:
+    """Row starts of a DATA_PAGE (v1): the repetition levels come first in the (decompressed) page, a 4-byte
+    length then the RLE hybrid runs; only that much of the page is decompressed."""
+    head = _prefix(body, codec, raw_size, 4)
+    if len(head) < 4:
         raise _Unread("page cut off")
-    size = int.from_bytes(page[:4], "little")
-    if size > len(page) - 4:
+    size = int.from_bytes(head[:4], "little")
+    if size > raw_size - 4:
         raise _Unread("repetition levels run past the page")
+    page = _prefix(body, codec, raw_size, 4 + size)
+    if len(page) < 4 + size:
+        raise _Unread("page cut off")
     return _row_starts(page[4:4 + size], count, width, first)
 
 
@@ -168,14 +236,14 @@ def row_lengths(source, column_meta, max_repetition: int, rows: int) -> np.ndarr
     if compression != "UNCOMPRESSED":
         if compression not in _CODECS or not pa.Codec.is_available(_CODECS[compression]):
             return None
-        codec = pa.Codec(_CODECS[compression])
+        codec = _CODECS[compression]
     width = int(max_repetition).bit_length()
     total = int(column_meta.num_values)
     start = column_meta.data_page_offset
     if column_meta.has_dictionary_page and 0 < (column_meta.dictionary_page_offset or 0) < start:
         start = column_meta.dictionary_page_offset
     end = start + int(column_meta.total_compressed_size)
-    starts, seen, at = [], 0, start
+    starts, seen, found, at = [], 0, 0, start
     try:
         while seen < total and at < end:
             source.seek(at)
@@ -195,8 +263,7 @@ def row_lengths(source, column_meta, max_repetition: int, rows: int) -> np.ndarr
                     count = info.get(1, -1)
                     if count < 0 or info.get(4, 3) != 3:  # levels not RLE (BIT_PACKED is deprecated): not read
                         return None
-                    page = codec.decompress(body, raw_size).to_pybytes() if codec is not None else body
-                    starts.append(_levels_v1(page, count, width, seen))
+                    starts.append(_levels_v1(body, codec, raw_size, count, width, seen))
                 else:  # DATA_PAGE_V2: the levels are stored uncompressed before the values
                     info = header.get(8) or {}
                     count, size = info.get(1, -1), info.get(6, -1)
@@ -204,10 +271,13 @@ def row_lengths(source, column_meta, max_repetition: int, rows: int) -> np.ndarr
                         return None
                     starts.append(_row_starts(body[:size], count, width, seen))
                 seen += count
+                found += starts[-1].size
+                if found > rows:  # more rows than the metadata says: the damage is pyarrow's to report
+                    return None
             at += stored
-    except (_Unread, pa.ArrowException, OSError, ValueError):
+    except (_Unread, pa.ArrowException, OSError, ValueError, IndexError, zlib.error):
         return None
-    found = np.concatenate(starts) if starts else np.zeros(0, np.int64)
-    if seen != total or found.size != rows or (rows and found[0] != 0):
+    firsts = np.concatenate(starts) if starts else np.zeros(0, np.int64)
+    if seen != total or firsts.size != rows or (rows and firsts[0] != 0):
         return None  # the pages do not add up to what the metadata says: pyarrow's decoding reports the damage
-    return np.diff(np.append(found, seen))
+    return np.diff(np.append(firsts, seen))

@@ -582,8 +582,10 @@ class ParquetReader(ShardReader):
             first = self._row
 
             def joined():
-                table = pa.Table.from_batches(waiting).combine_chunks()
-                out = table.to_batches()[0] if table.num_rows else waiting[0]
+                out = waiting[0]
+                if len(waiting) > 1:  # small batches joined into one (a copy of at most the token budget)
+                    table = pa.Table.from_batches(waiting).combine_chunks()
+                    out = table.to_batches()[0] if table.num_rows else out
                 return Batch(self.shard, out, np.arange(first, first + out.num_rows, dtype=np.int64))
 
             done = 0
