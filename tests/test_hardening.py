@@ -8,7 +8,11 @@ import os
 import shutil
 import struct
 import subprocess
+import sys
+import time
 import zlib
+
+import numpy as np
 
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -102,6 +106,82 @@ def test_a_parquet_row_beyond_max_row_tokens_is_reported_without_decoding_it(tmp
     (f,) = [f for f in report["findings"] if f["rule"] == "unreadable-record"]
     assert "holds 5,000,000 values of column 'input_ids' in 1 row(s)" in f["message"]
     assert report["metrics"]["rows"] == 3
+
+
+def _list_column(lengths, values) -> pa.ListArray:
+    """A list<int32> column of rows of these lengths over ``values`` (numpy, concatenated)."""
+    offsets = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int32)
+    return pa.ListArray.from_arrays(pa.array(offsets), pa.array(values))
+
+
+def _tree_peak(args) -> tuple[int, int]:
+    """(exit status, peak resident bytes of the process and all below it), sampled from /proc every 20 ms."""
+    from tests.perf.bench_limits import tree_rss
+
+    process = subprocess.Popen([str(a) for a in args], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    top = 0
+    while process.poll() is None:
+        top = max(top, tree_rss(process.pid))
+        time.sleep(0.02)
+    return process.returncode, top
+
+
+@pytest.mark.skipif(not os.path.isdir("/proc/self"), reason="measures memory from /proc (Linux)")
+def test_one_huge_row_among_small_ones_in_a_row_group_is_never_decoded(tmp_path):
+    """One row group: 5,000 rows of 10 ids, a row of 5M ids (over max_row_tokens, decodable), 5,000 rows of 10,
+    and a last row of 50M ids (beyond what is decoded at all).  The average row (about 5,500 ids) is far within
+    max_row_tokens, so only the rows' lengths can tell."""
+    rng = np.random.default_rng(16)
+    small = rng.integers(0, 32_000, 10_000 * 10, dtype=np.int32)
+    small[6_123 * 10 + 4] = 40_000  # row 6,123 of the small rows, which is shard row 6,124: offset 4
+    lengths = [10] * 5_000 + [5_000_000] + [10] * 5_000 + [50_000_000]
+    values = np.concatenate([small[:50_000], np.full(5_000_000, 11, np.int32), small[50_000:],
+                             np.full(50_000_000, 7, np.int32)])
+    path = tmp_path / "huge_row.parquet"
+    pq.write_table(pa.table({"input_ids": _list_column(lengths, values)}), path, row_group_size=1 << 30,
+                   compression="zstd")
+    del values
+    assert pq.ParquetFile(path).metadata.num_row_groups == 1
+    # What decoding the last row takes, measured with pyarrow itself (the reference reader): over 1 GiB here.
+    code = ("import pyarrow.parquet as pq, sys\n"
+            "for b in pq.ParquetFile(sys.argv[1]).iter_batches(batch_size=1, row_groups=[0]): pass")
+    status, decoding = _tree_peak([sys.executable, "-c", code, path])
+    assert status == 0
+    out = tmp_path / "r.json"
+    status, peak = _tree_peak([os.path.join(os.path.dirname(sys.executable), "corpuscle"), "scan", path, "--jobs",
+                               2, "--quiet", "--vocab-size", 32_000, "--json", out])
+    assert status == 1
+    assert peak < 1.5 * 2 ** 30  # the bound the README states
+    assert peak < decoding / 2, (peak, decoding)  # the 50M row was never decoded
+    report = json.loads(out.read_text())
+    (oversized,) = [f for f in report["findings"] if f["rule"] == "unreadable-record"]
+    assert (oversized["kind"], [i["row"] for i in oversized["instances"]]) == ("oversized", [5_000, 10_001])
+    (above,) = [f for f in report["findings"] if f["rule"] == "token-range"]
+    assert [(i["row"], i["offset"]) for i in above["instances"]] == [(6_124, 4)]
+    assert report["metrics"]["rows"] == 10_000 and report["metrics"]["tokens"] == 100_000
+
+
+def test_rows_after_one_too_large_to_decode_are_named_as_not_checked(tmp_path):
+    """With max_row_tokens = 100, at most 400 values of a row are decoded: the rows' lengths come from the
+    pages' repetition levels, in every codec and both data page versions pyarrow writes."""
+    lengths = [10] * 50 + [200] + [10] * 50 + [1_000] + [10] * 20 + [300] + [10] * 5
+    values = np.arange(sum(lengths), dtype=np.int32) % 1_000
+    (tmp_path / "c.toml").write_text("max_row_tokens = 100\n")
+    for codec in ("zstd", "snappy", "gzip", "none"):
+        for version in ("1.0", "2.0"):
+            path = tmp_path / codec / version / "a.parquet"
+            path.parent.mkdir(parents=True)
+            pq.write_table(pa.table({"input_ids": _list_column(lengths, values)}), path, compression=codec,
+                           data_page_version=version, data_page_size=256)  # many pages, rows across them
+            result, report = scan_json(path, "--config", tmp_path / "c.toml", "--vocab-size", 1_000)
+            (f,) = [f for f in report["findings"] if f["rule"] == "unreadable-record"]
+            # rows 50 (200 values: decoded alone and dropped), 101 (1,000: never decoded), 122 (300: after it)
+            assert (f["kind"], [i["row"] for i in f["instances"]]) == ("oversized", [50, 101, 122]), (codec, version)
+            assert report["metrics"]["rows"] == 100 and report["metrics"]["tokens"] == 1_000
+            (lost,) = [f for f in report["findings"] if f["rule"] == "unreadable-shard"]
+            assert [i["row"] for i in lost["instances"]] == [102]
+            assert "rows 102-127 of row group 0 were not checked: row 101 before them holds 1,000 values" in \
+                lost["message"]
 
 
 def test_an_arrow_row_beyond_max_row_tokens_is_dropped_from_its_batch_and_named(tmp_path):

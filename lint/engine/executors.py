@@ -290,6 +290,29 @@ def _kept(half):
     return half[0]
 
 
+def _once_more(future, again: Callable):
+    """The future's result; when its task was given up because workers died while running it (``KilledWorker``),
+    the result of the task ``again()`` submits anew, once.  A dying worker takes with it every task waiting on it,
+    not only the one that killed it: an innocent task gets another go, a task that kills its worker dies again."""
+    try:
+        return future.result()
+    except Exception as exc:  # noqa: BLE001 - distributed.KilledWorker, told by name (distributed is optional)
+        if type(exc).__name__ != "KilledWorker":
+            raise
+    return again().result()
+
+
+def _result_or(future, again: Callable, item, failed: Callable | None):
+    """The future's result (see :func:`_once_more`), or ``failed(item, exc)`` when its task failed for good and
+    ``failed`` is given."""
+    try:
+        return _once_more(future, again)
+    except Exception as exc:  # noqa: BLE001 - KilledWorker twice, or an error the task raised
+        if failed is None:
+            raise
+        return failed(item, exc)
+
+
 def _piece(half, partition: int):
     return half[1][partition]
 
@@ -410,6 +433,8 @@ class DaskExecutor:
 
     #: The workers' working directory is not this process's: the engine sends them absolute paths.
     absolute_paths = True
+    #: ``map`` and ``map_shuffle`` take ``failed(item, exc)``: the stand-in result of an item that failed for good.
+    gives_up_per_item = True
 
     def __init__(self, address: str, jobs: int | None = None, timeout: float = 30.0):
         if not isinstance(address, str) or not address.strip():
@@ -488,31 +513,56 @@ class DaskExecutor:
         """Partitions of a keyed shuffle: one per worker thread of the cluster."""
         return max(1, sum(self._connected().nthreads().values()))
 
-    def map(self, fn: Callable, items: Iterable) -> Iterator:
+    def map(self, fn: Callable, items: Iterable, failed: Callable | None = None) -> Iterator:
+        """Results of ``fn`` over ``items`` in order.  A task given up because workers died while running it
+        (``KilledWorker``: more deaths than ``distributed.scheduler.allowed-failures``) is submitted once more (see
+        :func:`_once_more`).  An item whose task fails for good (``KilledWorker`` again, or the task raised) gives
+        ``failed(item, exc)`` in its place, so the other items' results are kept; without ``failed`` the error is
+        raised."""
         client = self._connected()
-        futures = client.map(fn, list(items), pure=False)
+        items = list(items)
+        futures = client.map(fn, items, pure=False)
         for i, future in enumerate(futures):
-            yield future.result()
+            yield _result_or(future, lambda: client.submit(fn, items[i], pure=False), items[i], failed)
             futures[i] = None  # the result is here: let the cluster forget it
 
-    def map_shuffle(self, fn: Callable, items: Iterable, split: Callable, reduce: Callable):
+    def map_shuffle(self, fn: Callable, items: Iterable, split: Callable, reduce: Callable,
+                    failed: Callable | None = None):
         """``map`` then a keyed shuffle, all as tasks on the cluster: per item a scan task, a split task and one
-        small task per partition picking its piece; per partition a reduce task over the pieces of all items."""
+        small task per partition picking its piece; per partition a reduce task over the pieces of all items.
+
+        An item whose scan fails for good gives ``failed(item, exc)`` in its place (see :meth:`map`), split like any
+        result: the reduce tasks are sent once every item has its result or its stand-in, so one lost item does not
+        fail the reduce of the others."""
         client = self._connected()
         parts = self.partitions
-        scanned = client.map(fn, list(items), pure=False)
+        items = list(items)
+        scanned = client.map(fn, items, pure=False)
         halves = client.map(split, scanned, parts=parts, pure=False)
         kept = client.map(_kept, halves, pure=False)
-        reduced = [client.submit(reduce, [client.submit(_piece, half, p, pure=False) for half in halves], pure=False)
-                   for p in range(parts)]
-        del scanned, halves  # the scheduler keeps what pending tasks still need
+        del scanned  # the scheduler keeps what pending tasks still need
+
+        def again(i: int):
+            halves[i] = client.submit(split, client.submit(fn, items[i], pure=False), parts=parts, pure=False)
+            return client.submit(_kept, halves[i], pure=False)
 
         def results():
             for i, future in enumerate(kept):
-                yield future.result()
+                try:
+                    result = _once_more(future, lambda: again(i))
+                except Exception as exc:  # noqa: BLE001 - the item's scan (or its split) failed for good
+                    if failed is None:
+                        raise
+                    # (a split task whose scan failed fails with the scan's error: that is the one told)
+                    stand_in = split(failed(items[i], exc), parts)
+                    halves[i] = client.scatter([stand_in], hash=False)[0]
+                    result = stand_in[0]
                 kept[i] = None
+                yield result
 
         def partials() -> list:
+            reduced = [client.submit(reduce, [client.submit(_piece, half, p, pure=False) for half in halves],
+                                     pure=False) for p in range(parts)]
             return client.gather(reduced)
 
         return results(), partials

@@ -364,6 +364,18 @@ def _scan_args(args):
     return scan_shard(*args)
 
 
+def _lost_scan(args, exc: Exception) -> ShardResult:
+    """The result standing in for a scan task that failed for good where it ran (``args`` as :func:`_scan_args`
+    takes them): no states, the error as the shard's internal error (the scan is incomplete, exit status 3)."""
+    shard, settings, part = args[0], args[1], args[5]
+    facts = part.facts if part is not None else settings.for_path(shard.path)
+    joining = {"skipped": {}, "stopped": True, "fed": set()} if part is not None else None
+    why = f"{type(exc).__name__}: {exc}".strip()
+    return ShardResult(shard, {}, {}, {}, facts, 0, 0, 0.0, None, joining,
+                       [f"its task failed where it ran and was given up ({why}); the worker may have died (out of "
+                        "memory, killed)"])
+
+
 def run(shards: list[Shard], settings: Settings, rules: list[Rule], jobs: int = 1,
         progress: Progress | None = None, executor=None, sample: Sample | None = None) -> Report:
     """Scan shards with ``executor`` (default: a :class:`LocalExecutor` of ``jobs`` processes), then merge and
@@ -448,11 +460,14 @@ def _map(executor, items: list, keyed: list[Rule]):
     """Scan the items with ``executor``: ``(results in item order, a function giving, after the last result, the
     partials of the keyed rules by rule id)``.  With keyed rules the scan is a keyed shuffle (see
     :mod:`corpuscle.engine.executors`): on the executor when it can run one, else in this process."""
+    # An executor that can give up on one item (a cluster: a task whose worker died too often) takes a stand-in
+    # for it: the shard's scan is then reported incomplete and the other shards' results are kept.
+    lost = {"failed": _lost_scan} if getattr(executor, "gives_up_per_item", False) else {}
     if not keyed:
-        return executor.map(_scan_args, items), dict
+        return executor.map(_scan_args, items, **lost), dict
     split, reduce = functools.partial(_split, keyed), functools.partial(_reduce, keyed)
     if hasattr(executor, "map_shuffle"):
-        scanned, gather = executor.map_shuffle(_scan_args, items, split, reduce)
+        scanned, gather = executor.map_shuffle(_scan_args, items, split, reduce, **lost)
     else:
         scanned, gather = shuffle_here(executor.map(_scan_args, items), split, reduce, 1)
 

@@ -456,6 +456,24 @@ def _rows_per_batch(avg_tokens: float, batch_tokens: int) -> int:
     return int(min(65_536, max(1, batch_tokens // max(1.0, avg_tokens))))
 
 
+#: A row of a Parquet list column holding more than this many times ``max_row_tokens`` values is never decoded
+#: (pyarrow decodes a row whole: about 22 bytes per int64 value while it does); one up to it is decoded in a batch
+#: as small as can be, then dropped as oversized.  With the defaults: 16,777,216 values, about 350 MiB.
+DECODE_FACTOR = 4
+
+
+def _divisors_down(n: int, most: int) -> list[int]:
+    """The divisors of ``n`` up to ``most``, largest first."""
+    small, large = [], []
+    d = 1
+    while d * d <= n:
+        if n % d == 0:
+            small.append(d)
+            large.append(n // d)
+        d += 1
+    return sorted({d for d in small + large if d <= most}, reverse=True)
+
+
 class ParquetReader(ShardReader):
     """Streams a Parquet file row group by row group; a corrupt row group is reported and skipped."""
 
@@ -474,6 +492,14 @@ class ParquetReader(ShardReader):
                 return col.num_values / max(1, rg.num_rows)
         return 1.0
 
+    def _group_tokens(self, group_meta) -> float:
+        """Values per row of the tokens column in this row group, on average (1 when it has none)."""
+        for i in range(group_meta.num_columns):
+            column = group_meta.column(i)
+            if column.path_in_schema.split(".")[0] == self.tokens_column:
+                return column.num_values / max(1, group_meta.num_rows)
+        return 1.0
+
     def _widest_row(self, group_meta) -> tuple[str, int] | None:
         """``(column, values)`` when a column chunk of the row group holds more values than ``max_row_tokens`` in
         each of its rows on average (so at least one row is over the limit), else None: told by the metadata,
@@ -484,6 +510,126 @@ class ParquetReader(ShardReader):
             if column.num_values > self.limits.max_row_tokens * rows:
                 return column.path_in_schema.split(".")[0], int(column.num_values)
         return None
+
+    def _list_values(self, meta, group_meta) -> int:
+        """Values (entries) the row group's list columns hold, by the file's metadata."""
+        return sum(int(group_meta.column(i).num_values) for i in range(group_meta.num_columns)
+                   if meta.schema.column(i).max_repetition_level > 0)
+
+    def _row_lengths(self, meta, group_meta) -> np.ndarray | None:
+        """Entries per row of the row group summed over its list columns, read from the pages' repetition levels
+        without decoding a value (:mod:`corpuscle.io.parquet_levels`); None when they cannot be read so."""
+        from corpuscle.io.parquet_levels import row_lengths
+
+        if getattr(self, "_levels_source", None) is None:
+            path = self.shard.path
+            self._levels_source = _open_input(path) if is_uri(path) else pa.OSFile(local_path(path), "rb")
+            self._resources.append(self._levels_source)
+        total = None
+        for i in range(group_meta.num_columns):
+            repetition = meta.schema.column(i).max_repetition_level
+            if repetition < 1:
+                continue
+            lengths = row_lengths(self._levels_source, group_meta.column(i), repetition, group_meta.num_rows)
+            if lengths is None:
+                return None
+            total = lengths if total is None else total + lengths
+        return total
+
+    def _plan_rows(self, lengths: np.ndarray, stop: int, whole: bool) -> int:
+        """Rows per batch for the first ``stop`` rows of a row group of these lengths: the most (up to what the
+        token budget gives on average) such that every batch holds at most ``batch_tokens`` values in rows within
+        ``max_row_tokens`` and at most the decode bound in all; a divisor of ``stop`` unless ``whole`` (the
+        rows from ``stop`` on are not decoded, so the last batch must end there)."""
+        limit, bound = self.limits.max_row_tokens, DECODE_FACTOR * self.limits.max_row_tokens
+        head = lengths[:stop]
+        normal = np.where(head > limit, 0, head)
+        first = _rows_per_batch(normal.sum() / max(1, stop), self.batch_tokens)
+        if whole:
+            candidates, b = [], first
+            while b > 1:
+                candidates.append(b)
+                b //= 2
+            candidates.append(1)
+        else:
+            candidates = _divisors_down(stop, first)
+        for rows in candidates:
+            if rows == 1:
+                return 1
+            pad = (-stop) % rows
+            if (np.pad(normal, (0, pad)).reshape(-1, rows).sum(axis=1).max() <= self.batch_tokens
+                    and np.pad(head, (0, pad)).reshape(-1, rows).sum(axis=1).max() <= bound):
+                return rows
+        return 1
+
+    def _planned(self, pf, meta, group: int, start: int, lengths: np.ndarray, counted: int,
+                 group_bytes: int) -> Iterator[Batch]:
+        """A row group read by its rows' lengths (see :meth:`_plan_rows`): rows beyond the decode bound are never
+        decoded, and since pyarrow cannot read a row group past a row it does not decode, the rows after the first
+        of them are named as not checked; the rows before it are read in batches of bounded values (small batches
+        joined up to the token budget), an oversized row that can be decoded in one as small as can be."""
+        limit, bound = self.limits.max_row_tokens, DECODE_FACTOR * self.limits.max_row_tokens
+        rows = len(lengths)
+        beyond = np.flatnonzero(lengths > bound)
+        stop = int(beyond[0]) if beyond.size else rows
+        names = [meta.schema.column(i).path.split(".")[0] for i in range(meta.num_columns)
+                 if meta.schema.column(i).max_repetition_level > 0]
+        columns = ", ".join(dict.fromkeys(map(repr, names)))
+        if stop:
+            size = self._plan_rows(lengths, stop, whole=stop == rows)
+            waiting: list = []
+            waiting_values = 0
+            first = self._row
+
+            def joined():
+                out = waiting[0]
+                if len(waiting) > 1:  # small batches joined into one (a copy of at most the token budget)
+                    table = pa.Table.from_batches(waiting).combine_chunks()
+                    out = table.to_batches()[0] if table.num_rows else out
+                return Batch(self.shard, out, np.arange(first, first + out.num_rows, dtype=np.int64))
+
+            done = 0
+            for rb in pf.iter_batches(batch_size=size, row_groups=[group]):
+                values = int(lengths[done:done + rb.num_rows].sum())
+                if waiting and waiting_values + values > self.batch_tokens:
+                    yield joined()
+                    waiting, waiting_values, first = [], 0, self._row
+                waiting.append(rb)
+                waiting_values += values
+                done += rb.num_rows
+                self._row += rb.num_rows
+                self.consumed = counted + group_bytes * done // max(1, rows)
+                if done >= stop:
+                    break  # the next batch would decode a row beyond the bound
+            if waiting:
+                yield joined()
+            if done < stop:
+                yield self._problem_batch(Problem(
+                    "unreadable", self._row, f"row group {group} holds {done:,} rows where its pages show "
+                    f"{rows:,}: the row group is damaged"))
+                return
+        if stop < rows:
+            end, at = start + rows - 1, start + stop
+            problems = [Problem(
+                "oversized", at, f"row {at:,} holds {int(lengths[stop]):,} values in list column(s) {columns}, more "
+                f"than the limit of {limit:,} (max_row_tokens) and than the {bound:,} decoded at most (the memory "
+                "bound): not decoded", column=names[0] if names else None)]
+            if stop < rows - 1:  # the rows after it: named, since they cannot be read
+                problems.append(Problem(
+                    "unreadable", at + 1, f"rows {at + 1:,}-{end:,} of row group {group} were not checked: row "
+                    f"{at:,} before them holds {int(lengths[stop]):,} values, beyond the {bound:,} decoded at most "
+                    f"({DECODE_FACTOR} x max_row_tokens), and pyarrow cannot read a row group past a row it does "
+                    "not decode (raise max_row_tokens to read them)"))
+            for row in np.flatnonzero(lengths[stop + 1:] > limit).tolist():
+                row += stop + 1
+                problems.append(Problem(
+                    "oversized", start + row, f"row {start + row:,} holds {int(lengths[row]):,} values in list "
+                    f"column(s) {columns}, more than the limit of {limit:,} (max_row_tokens): not decoded",
+                    column=names[0] if names else None))
+            batch = self._problem_batch(problems[0])
+            batch.problems.extend(problems[1:])
+            self.consumed = counted + group_bytes
+            yield batch
 
     def _batches(self) -> Iterator[Batch]:
         # Verify page checksums where the writer stored them: a flipped byte in an uncompressed page otherwise
@@ -508,7 +654,6 @@ class ParquetReader(ShardReader):
         if meta.num_rows == 0:
             yield self._problem_batch(Problem("empty", 0, "the Parquet file holds no rows"))
             return
-        size = _rows_per_batch(self._avg_tokens(meta), self.batch_tokens)
         start = 0
         for group in range(meta.num_row_groups):
             group_meta = meta.row_group(group)
@@ -524,6 +669,21 @@ class ParquetReader(ShardReader):
                 self.consumed += group_bytes
                 start += group_rows
                 continue
+            if self._list_values(meta, group_meta) > DECODE_FACTOR * self.limits.max_row_tokens:
+                # More values than can be decoded at once: one row of them may be too, so the rows' lengths are
+                # read first (from the pages' levels, no value decoded) and the batches planned by them.
+                lengths = self._row_lengths(meta, group_meta)
+                if lengths is not None:
+                    try:
+                        yield from self._planned(pf, meta, group, start, lengths, counted, group_bytes)
+                    except Exception as exc:  # noqa: BLE001
+                        yield self._problem_batch(Problem(
+                            "unreadable", self._row,
+                            f"row group {group} (rows {start}-{start + group_rows - 1}) cannot be read: "
+                            f"{_describe(exc)}"))
+                    start += group_rows
+                    continue
+            size = _rows_per_batch(self._group_tokens(group_meta), self.batch_tokens)
             widest = self._widest_row(group_meta)
             if widest is not None:  # decoding it would take memory in proportion to its rows, not the batch
                 self.consumed += group_bytes
