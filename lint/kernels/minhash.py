@@ -301,14 +301,10 @@ def sample_shingles(hashes, shingle_offsets, rate: int, least: int) -> tuple[np.
     counts = np.diff(local)
     share = np.maximum(1.0 / rate, least / np.maximum(counts, 1))
     highest = (np.minimum(np.floor(share * 2.0 ** 32), 2.0 ** 32) - 1).astype(np.uint32)  # hash < limit
-    keep = view <= np.repeat(highest, counts)
-    taken = np.zeros(len(counts), dtype=np.int64)
-    nonempty = np.flatnonzero(counts > 0)
-    if len(nonempty):
-        taken[nonempty] = np.add.reduceat(keep, local[nonempty], dtype=np.int64)
-    new_offsets = np.zeros(len(counts) + 1, dtype=np.int64)
-    np.cumsum(taken, out=new_offsets[1:])
-    return view[keep], new_offsets
+    # The positions taken, and per window the count of them before its start (a search among the few taken
+    # positions, rather than a sum over every shingle).
+    taken = np.flatnonzero(view <= np.repeat(highest, counts))
+    return view[taken], np.searchsorted(taken, local).astype(np.int64)
 
 
 def shingle_hash(shingle) -> int:
