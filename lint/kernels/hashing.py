@@ -149,7 +149,7 @@ def document_hashes(words: np.ndarray, offsets: np.ndarray) -> np.ndarray:
     """128-bit content hash of each document ``words[offsets[i]:offsets[i + 1]]`` of a token stream, shape
     ``(documents, 2)``, uint64: equal token ids, equal hash; stable across runs.
 
-    ``words`` holds the documents' token ids modulo 2**32 as uint64 (:func:`corpuscle.kernels.units.as_words`,
+    ``words`` holds the documents' token ids modulo 2**32 as uint32 or uint64 (:func:`corpuscle.kernels.units.as_words`,
     shared with the shingle hashes); the documents lie back to back. Each of two lanes is the polynomial
     ``sum_j m_j * x**j`` modulo 2**64 over the document's words ``m_j``, with its own odd base ``x``, evaluated
     for every document at once from one running sum over the whole stream::
@@ -194,6 +194,8 @@ def document_hashes(words: np.ndarray, offsets: np.ndarray) -> np.ndarray:
     segment_block = points // block
     chunk_blocks = max(1, _STREAM_CHUNK // block)
     scratch = np.empty((min(chunk_blocks, blocks), block), dtype=np.uint64)
+    # 32-bit words are widened to 64 bits a chunk at a time, once for both lanes.
+    wide = np.empty_like(scratch) if words.dtype != np.uint64 else None
     segment_sums = np.zeros((len(_STREAM_TABLES), len(points)), dtype=np.uint64)
     for r0 in range(0, blocks, chunk_blocks):
         r1 = min(blocks, r0 + chunk_blocks)
@@ -202,6 +204,9 @@ def document_hashes(words: np.ndarray, offsets: np.ndarray) -> np.ndarray:
             continue
         local = scratch[:r1 - r0]
         source = grid[r0:r1] if r1 <= whole else np.concatenate([grid[r0:whole], last])
+        if wide is not None:
+            wide[:r1 - r0] = source
+            source = wide[:r1 - r0]
         cuts = points[a:z] - r0 * block
         for lane, (small, _, _, _) in enumerate(_STREAM_TABLES):
             np.multiply(source, small, out=local)  # m_t * x**u within each block

@@ -227,8 +227,8 @@ def multilinear_shingle_hashes(words, offsets, n: int = DEFAULT_N) -> tuple[np.n
     """
     _check_n(n)
     words = np.asarray(words)
-    if words.ndim != 1 or words.dtype != np.uint64:
-        raise TypeError("words must be a 1-D uint64 array of token ids modulo 2**32; hint: Units.words")
+    if words.ndim != 1 or words.dtype not in (np.uint32, np.uint64):
+        raise TypeError("words must be a 1-D uint32 or uint64 array of token ids modulo 2**32; hint: Units.words")
     offsets = _check_offsets(offsets, len(words), "offsets")
     keys = _multilinear_keys(n)
     lengths = np.diff(offsets)
@@ -240,11 +240,17 @@ def multilinear_shingle_hashes(words, offsets, n: int = DEFAULT_N) -> tuple[np.n
     marks = first + np.arange(_SHINGLE_TOKENS, int(offsets[-1]) - first, _SHINGLE_TOKENS)
     cuts = np.unique(np.concatenate(([0], np.searchsorted(offsets, marks), [len(lengths)])))
     widest = int(np.max(offsets[cuts[1:]] - offsets[cuts[:-1]])) if len(cuts) > 1 else 0
-    scratch = np.empty((2, widest), dtype=np.uint64)
+    # Two buffers for the sums and products, and a third for the group's words widened to 64 bits once (32-bit
+    # words are widened here, a cache-sized group at a time, rather than in every multiplication).
+    scratch = np.empty((3 if words.dtype == np.uint32 else 2, widest), dtype=np.uint64)
     steps = np.arange(1, n, dtype=np.int64)
     for w0, w1 in zip(cuts[:-1].tolist(), cuts[1:].tolist()):
         lo, hi = int(offsets[w0]), int(offsets[w1])
         group, size, count = words[lo:hi], lengths[w0:w1], counts[w0:w1]
+        if group.dtype != np.uint64:
+            wide = scratch[2][:hi - lo]
+            wide[:] = group
+            group = wide
         out = hashes[shingle_offsets[w0]:shingle_offsets[w1]]
         is_long = size >= n
         short = np.flatnonzero((size > 0) & ~is_long)
