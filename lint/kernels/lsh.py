@@ -30,6 +30,9 @@ from typing import NamedTuple
 import numpy as np
 from corpuscle.kernels.minhash import POLY, _check_int, mix64
 
+#: Bytes of signatures turned into band keys per step of :func:`band_keys` (1 MiB: their column passes stay in cache).
+_BAND_BLOCK_BYTES = 1 << 20
+
 DEFAULT_MAX_BUCKET = 1024
 """Distinct signatures per bucket above which only a linear set of pairs is made."""
 
@@ -118,12 +121,18 @@ def band_keys(signatures, b: int, r: int) -> np.ndarray:
             f"b * r = {b * r} exceeds the {signatures.shape[1]} values per signature; "
             "hint: take (b, r) from optimal_bands"
         )
-    values = signatures[:, : b * r].reshape(len(signatures), b, r)
     keys = np.empty((len(signatures), b), dtype=np.uint64)
-    keys[:] = mix64(np.arange(b, dtype=np.uint64))
-    for j in range(r):
-        keys *= np.uint64(POLY)
-        keys += mix64(values[:, :, j].astype(np.uint64))
+    start = mix64(np.arange(b, dtype=np.uint64))
+    # A block of windows at a time: the r column passes below then read a block that stays in cache (a column of a
+    # whole signature block is one value from every row, a cache line each).
+    step = max(1, _BAND_BLOCK_BYTES // max(1, signatures.shape[1] * signatures.itemsize))
+    for w0 in range(0, len(signatures), step):
+        values = signatures[w0:w0 + step, : b * r].reshape(-1, b, r)
+        block = keys[w0:w0 + step]
+        block[:] = start
+        for j in range(r):
+            block *= np.uint64(POLY)
+            block += mix64(values[:, :, j].astype(np.uint64))
     return mix64(keys)
 
 
