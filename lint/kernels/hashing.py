@@ -158,9 +158,10 @@ def document_hashes(words: np.ndarray, offsets: np.ndarray) -> np.ndarray:
 
     (odd numbers are invertible modulo 2**64); ``P[e] - P[s]`` is summed directly, over segments that never cross a
     block of :data:`_STREAM_BLOCK` tokens (a multiply and a reduction per token and lane, no gather), and each lane
-    is finished with the document's length and ``mix64``. This is a fingerprint, not a universal hash: for documents not built against
-    it two different ones share both lanes with probability about 2**-128 (heuristic), but crafted inputs can
-    collide (polynomial hashing modulo a power of two is weak against Thue-Morse-like sequences, from memory).
+    is finished with the document's length and ``mix64``. This is a fingerprint, not a universal hash: for
+    documents not built against it two different ones share both lanes with probability about 2**-128
+    (heuristic), but crafted inputs can collide (polynomial hashing modulo a power of two is weak against
+    Thue-Morse-like sequences, from memory).
     Window rows keep :func:`content_hashes`, whose guarantee is stated in the module notes.
     """
     from corpuscle.kernels.minhash import mix64
