@@ -627,21 +627,24 @@ class EmptyDocument(Rule):
         need = {"eos-after": (eos,), "bos-before": (bos,), "both": (bos, eos)}[s.separator]
         if v.size < 2 or any(i is None for i in need):
             return
-        # pair j = positions (j, j + 1) within one row
-        pair = np.ones(v.size - 1, dtype=bool)
+        # pair j = positions (j, j + 1) within one row; only the pairs whose first token is the separator are
+        # looked at further (one pass over the tokens, then the few candidates).
+        j = np.flatnonzero(v[:-1] == (eos if s.separator == "eos-after" else bos))
         inner = tokens.starts[(tokens.starts > 0) & (tokens.starts < v.size)]
-        pair[inner - 1] = False  # (last of a row, first of the next) is no pair
+        pair = np.ones(len(j), dtype=bool)
+        if len(inner):  # (last of a row, first of the next) is no pair
+            pair = inner[np.minimum(np.searchsorted(inner, j + 1), len(inner) - 1)] != j + 1
         if real is not None:
-            pair &= real[:-1] & real[1:]
+            pair &= real[j] & real[j + 1]
         if s.separator == "eos-after":
-            pair &= (v[:-1] == eos) & (v[1:] == eos) & (positions[1:] == 0)
-            at, sep = np.flatnonzero(pair) + 1, eos
+            pair &= (v[j + 1] == eos) & (positions[j + 1] == 0)
+            at, sep = j[pair] + 1, eos
         elif s.separator == "bos-before":
-            pair &= (v[:-1] == bos) & (positions[:-1] == 0) & (v[1:] == bos) & (positions[1:] == 0)
-            at, sep = np.flatnonzero(pair), bos
+            pair &= (positions[j] == 0) & (v[j + 1] == bos) & (positions[j + 1] == 0)
+            at, sep = j[pair], bos
         else:
-            pair &= (v[:-1] == bos) & (positions[:-1] == 0) & (v[1:] == eos) & (positions[1:] == 1)
-            at, sep = np.flatnonzero(pair), bos
+            pair &= (positions[j] == 0) & (v[j + 1] == eos) & (positions[j + 1] == 1)
+            at, sep = j[pair], bos
         if at.size and real is None and s.pad_id == sep:
             # Without a mask, a trailing run of pad ids is padding, not documents (pad_id equal to the separator).
             rows = tokens.rows_at(at)

@@ -126,6 +126,18 @@ def test_optimal_bands_are_the_values_datasketch_documents():
     assert optimal_bands(1.0, 128)[0] == 1  # datasketch's search allows one band where MinHashLSH refuses it
 
 
+def test_the_table_of_known_bands_is_what_datasketch_computes():
+    # Reference: datasketch's own search (datasketch.lsh._optimal_param, behind MinHashLSH(threshold, num_perm,
+    # weights)); the table only spares a scan the import of datasketch and SciPy.
+    from datasketch.lsh import _optimal_param
+
+    from corpuscle.kernels.lsh import KNOWN_BANDS
+
+    assert len(KNOWN_BANDS) == 48
+    for (threshold, num_perm, fp, fn), (b, r) in KNOWN_BANDS.items():
+        assert _optimal_param(threshold, num_perm, fp, fn) == (b, r), (threshold, num_perm, fp, fn)
+
+
 def test_optimal_bands_validate_with_a_hint():
     with pytest.raises(ValueError, match="threshold must be between 0 and 1, got 1.5; hint"):
         optimal_bands(1.5, 128)

@@ -30,6 +30,9 @@ from typing import NamedTuple
 import numpy as np
 from corpuscle.kernels.minhash import POLY, _check_int, mix64
 
+#: Bytes of signatures turned into band keys per step of :func:`band_keys` (1 MiB: their column passes stay in cache).
+_BAND_BLOCK_BYTES = 1 << 20
+
 DEFAULT_MAX_BUCKET = 1024
 """Distinct signatures per bucket above which only a linear set of pairs is made."""
 
@@ -68,9 +71,31 @@ def optimal_bands(threshold: float, num_perm: int, weights: tuple[float, float] 
     return _datasketch_bands(threshold, num_perm, float(weights[0]), float(weights[1]))
 
 
+#: ``_optimal_param`` of datasketch for common settings, ``(threshold, num_perm, w_fp, w_fn): (b, r)``, computed
+#: once with datasketch (tests/test_lsh.py checks every entry against it): importing datasketch (and SciPy, whose
+#: numerical integration it calls) takes about half a second, a tenth of a scan of a 50M-token shard.
+KNOWN_BANDS = {
+    (th, n, fp, fn): (b, r)
+    for (th, n), pairs in {
+        (0.5, 64): ((14, 4), (15, 3)), (0.5, 128): ((25, 5), (30, 4)), (0.5, 256): ((42, 6), (51, 5)),
+        (0.6, 64): ((10, 6), (14, 4)), (0.6, 128): ((18, 7), (23, 5)), (0.6, 256): ((32, 8), (38, 6)),
+        (0.7, 64): ((8, 8), (10, 6)), (0.7, 128): ((14, 9), (18, 7)), (0.7, 256): ((25, 10), (28, 9)),
+        (0.75, 64): ((7, 9), (9, 7)), (0.75, 128): ((11, 11), (16, 8)), (0.75, 256): ((21, 12), (25, 10)),
+        (0.8, 64): ((5, 11), (8, 8)), (0.8, 128): ((9, 13), (12, 10)), (0.8, 256): ((17, 15), (21, 12)),
+        (0.85, 64): ((4, 15), (6, 10)), (0.85, 128): ((8, 16), (9, 13)), (0.85, 256): ((13, 19), (16, 16)),
+        (0.9, 64): ((3, 21), (4, 14)), (0.9, 128): ((5, 25), (7, 18)), (0.9, 256): ((9, 28), (12, 21)),
+        (0.95, 64): ((2, 32), (3, 21)), (0.95, 128): ((3, 42), (4, 30)), (0.95, 256): ((5, 51), (7, 36)),
+    }.items()
+    for (fp, fn), (b, r) in zip(((0.5, 0.5), (0.2, 0.8)), pairs)
+}
+
+
 @lru_cache(maxsize=32)
 def _datasketch_bands(threshold: float, num_perm: int, false_positive_weight: float,
                       false_negative_weight: float) -> tuple[int, int]:
+    known = KNOWN_BANDS.get((threshold, num_perm, false_positive_weight, false_negative_weight))
+    if known is not None:
+        return known
     from datasketch.lsh import _optimal_param  # the search behind MinHashLSH(threshold, num_perm, weights)
 
     b, r = _optimal_param(threshold, num_perm, false_positive_weight, false_negative_weight)
@@ -96,12 +121,18 @@ def band_keys(signatures, b: int, r: int) -> np.ndarray:
             f"b * r = {b * r} exceeds the {signatures.shape[1]} values per signature; "
             "hint: take (b, r) from optimal_bands"
         )
-    values = signatures[:, : b * r].reshape(len(signatures), b, r)
     keys = np.empty((len(signatures), b), dtype=np.uint64)
-    keys[:] = mix64(np.arange(b, dtype=np.uint64))
-    for j in range(r):
-        keys *= np.uint64(POLY)
-        keys += mix64(values[:, :, j].astype(np.uint64))
+    start = mix64(np.arange(b, dtype=np.uint64))
+    # A block of windows at a time: the r column passes below then read a block that stays in cache (a column of a
+    # whole signature block is one value from every row, a cache line each).
+    step = max(1, _BAND_BLOCK_BYTES // max(1, signatures.shape[1] * signatures.itemsize))
+    for w0 in range(0, len(signatures), step):
+        values = signatures[w0:w0 + step, : b * r].reshape(-1, b, r)
+        block = keys[w0:w0 + step]
+        block[:] = start
+        for j in range(r):
+            block *= np.uint64(POLY)
+            block += mix64(values[:, :, j].astype(np.uint64))
     return mix64(keys)
 
 

@@ -59,6 +59,7 @@ MinHash signatures
 from __future__ import annotations
 
 import operator
+import sys
 from dataclasses import dataclass
 from functools import lru_cache
 
@@ -194,6 +195,8 @@ def _shingle_group(values, offsets, lengths, counts, n: int, out: np.ndarray, mi
         out[local[short]] = _finish(partial)
 
 
+#: Index of the high 32-bit half of a uint64 viewed as two uint32 (the top bits of a hash, read without a shift).
+_HIGH = 1 if sys.byteorder == "little" else 0
 #: Keys of :func:`multilinear_shingle_hashes`: one per token position of a shingle, then one per shingle length.
 _SHINGLE_KEY_SEED = 0x51A6_1E5E_ED00_C0DE
 
@@ -224,8 +227,8 @@ def multilinear_shingle_hashes(words, offsets, n: int = DEFAULT_N) -> tuple[np.n
     """
     _check_n(n)
     words = np.asarray(words)
-    if words.ndim != 1 or words.dtype != np.uint64:
-        raise TypeError("words must be a 1-D uint64 array of token ids modulo 2**32; hint: Units.words")
+    if words.ndim != 1 or words.dtype not in (np.uint32, np.uint64):
+        raise TypeError("words must be a 1-D uint32 or uint64 array of token ids modulo 2**32; hint: Units.words")
     offsets = _check_offsets(offsets, len(words), "offsets")
     keys = _multilinear_keys(n)
     lengths = np.diff(offsets)
@@ -236,22 +239,38 @@ def multilinear_shingle_hashes(words, offsets, n: int = DEFAULT_N) -> tuple[np.n
     first = int(offsets[0])
     marks = first + np.arange(_SHINGLE_TOKENS, int(offsets[-1]) - first, _SHINGLE_TOKENS)
     cuts = np.unique(np.concatenate(([0], np.searchsorted(offsets, marks), [len(lengths)])))
+    widest = int(np.max(offsets[cuts[1:]] - offsets[cuts[:-1]])) if len(cuts) > 1 else 0
+    # Two buffers for the sums and products, and a third for the group's words widened to 64 bits once (32-bit
+    # words are widened here, a cache-sized group at a time, rather than in every multiplication).
+    scratch = np.empty((3 if words.dtype == np.uint32 else 2, widest), dtype=np.uint64)
+    steps = np.arange(1, n, dtype=np.int64)
     for w0, w1 in zip(cuts[:-1].tolist(), cuts[1:].tolist()):
         lo, hi = int(offsets[w0]), int(offsets[w1])
         group, size, count = words[lo:hi], lengths[w0:w1], counts[w0:w1]
+        if group.dtype != np.uint64:
+            wide = scratch[2][:hi - lo]
+            wide[:] = group
+            group = wide
         out = hashes[shingle_offsets[w0]:shingle_offsets[w1]]
         is_long = size >= n
+        short = np.flatnonzero((size > 0) & ~is_long)
         if is_long.any():
             starts = len(group) - n + 1
-            full = group[:starts] * keys[0]
+            full = np.multiply(group[:starts], keys[0], out=scratch[0][:starts])
+            term = scratch[1][:starts]
             for k in range(1, n):
-                full += group[k:k + starts] * keys[k]
+                full += np.multiply(group[k:k + starts], keys[k], out=term)
             full += keys[2 * n]
-            inside = np.where(is_long, count, 0)
-            pattern = np.tile(np.array([True, False]), len(size))
-            valid = np.repeat(pattern, np.column_stack((inside, size - inside)).ravel())
-            out[np.repeat(is_long, count)] = (full[valid[:starts]] >> np.uint64(32)).astype(np.uint32)
-        short = np.flatnonzero((size > 0) & ~is_long)
+            # The shingles that run over the end of a unit (the n - 1 positions before each unit's end, which
+            # also cover every position of a short unit) are not shingles of any unit: left out.
+            valid = np.ones(starts, dtype=bool)
+            crossing = (np.cumsum(size)[:, None] - steps).ravel()
+            valid[crossing[(crossing >= 0) & (crossing < starts)]] = False
+            top = full.view(np.uint32)[_HIGH::2]  # the top 32 bits of each 64-bit sum, without a shift
+            if len(short):
+                out[np.repeat(is_long, count)] = top[valid]
+            else:
+                out[:] = top[valid]
         if len(short):
             local = np.zeros(len(size) + 1, dtype=np.int64)
             np.cumsum(count, out=local[1:])
@@ -288,14 +307,10 @@ def sample_shingles(hashes, shingle_offsets, rate: int, least: int) -> tuple[np.
     counts = np.diff(local)
     share = np.maximum(1.0 / rate, least / np.maximum(counts, 1))
     highest = (np.minimum(np.floor(share * 2.0 ** 32), 2.0 ** 32) - 1).astype(np.uint32)  # hash < limit
-    keep = view <= np.repeat(highest, counts)
-    taken = np.zeros(len(counts), dtype=np.int64)
-    nonempty = np.flatnonzero(counts > 0)
-    if len(nonempty):
-        taken[nonempty] = np.add.reduceat(keep, local[nonempty], dtype=np.int64)
-    new_offsets = np.zeros(len(counts) + 1, dtype=np.int64)
-    np.cumsum(taken, out=new_offsets[1:])
-    return view[keep], new_offsets
+    # The positions taken, and per window the count of them before its start (a search among the few taken
+    # positions, rather than a sum over every shingle).
+    taken = np.flatnonzero(view <= np.repeat(highest, counts))
+    return view[taken], np.searchsorted(taken, local).astype(np.int64)
 
 
 def shingle_hash(shingle) -> int:

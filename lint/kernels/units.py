@@ -30,7 +30,7 @@ MAX_DOCUMENT_TOKENS = 1 << 24
 @dataclass
 class Units:
     """Complete units handed on by one batch: their tokens back to back (``values``; ``words`` the same ids modulo
-    2**32 as uint64, shared by the content hash and the shingles), ``bounds`` (one more than units), and per unit the
+    2**32 as uint32, shared by the content hash and the shingles), ``bounds`` (one more than units), and per unit the
     shard row and in-row offset of its first token and its length in tokens (``lengths`` may exceed the compared
     tokens of a document over :data:`MAX_DOCUMENT_TOKENS`)."""
 
@@ -54,7 +54,7 @@ def as_windows(units: Units, hashes: np.ndarray) -> Windows:
 
 def _empty_units() -> Units:
     z = np.zeros(0, dtype=np.int64)
-    return Units(np.zeros(0, np.int64), np.zeros(0, np.uint64), np.zeros(1, np.int64), z, z.copy(), z.copy())
+    return Units(np.zeros(0, np.int64), np.zeros(0, np.uint32), np.zeros(1, np.int64), z, z.copy(), z.copy())
 
 
 class DocumentStream:
@@ -146,13 +146,11 @@ FRAGMENT = _Open(-1, -1, 0, 0, ())
 
 
 def as_words(values: np.ndarray) -> np.ndarray:
-    """Token ids modulo 2**32 as uint64 (the same ids stored as int32 or int64 give the same words)."""
-    out = np.empty(len(values), dtype=np.uint64)
+    """Token ids modulo 2**32 as uint32 (the same ids stored as int32 or int64 give the same words): a view of
+    32-bit ids, no copy; the hashing kernels widen them to 64 bits a cache-sized piece at a time."""
     if values.dtype.itemsize == 4:
-        out[:] = values.view(np.uint32)
-    else:
-        np.bitwise_and(values.astype(np.uint64, copy=False), np.uint64(0xFFFF_FFFF), out=out)
-    return out
+        return values.view(np.uint32)
+    return values.view(np.uint64 if values.dtype.itemsize == 8 else values.dtype).astype(np.uint32)
 
 
 def _step(batch: Batch, settings, arrangement: str, carry: "_Open | None"):
