@@ -127,7 +127,10 @@ class ShardBands:
         digests = np.empty(count, dtype=np.uint64)
         at = 0
         for windows, chunk, chunk_digests in self._chunks():
-            which, band = np.nonzero(_part_of(chunk, self.parts) == np.uint64(part))
+            # The entries' flat positions in (window, band) order, as np.nonzero of the 2-D mask gives them, but
+            # by one 1-D scan (np.nonzero of a 2-D mask is about a third slower).
+            flat = np.flatnonzero(_part_of(chunk, self.parts) == np.uint64(part))
+            which, band = np.divmod(flat, self.bands)
             end = at + len(which)
             window[at:end], keys[at:end], digests[at:end] = windows[which], chunk[which, band], chunk_digests[which]
             at = end
