@@ -27,6 +27,10 @@ def _num(value) -> str:
         return f"{value:,}"
     if isinstance(value, float):
         return f"{value:.4g}"
+    if isinstance(value, dict):  # a figure of figures: (key value, key value), not Python's repr
+        return "(" + ", ".join(f"{k} {_num(v)}" for k, v in value.items()) + ")"
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_num(v) for v in value) + "]"
     return str(value)
 
 
