@@ -119,6 +119,20 @@ class MinHashSettings:
         _check_seed(self.seed)
 
 
+def _shingle_layout(offsets: np.ndarray, n: int):
+    """Per window: its length, its number of shingles (a window shorter than ``n`` is one shingle, an empty one
+    none), where its shingles start in the output, and the cuts into groups of whole windows (a cut at the first
+    window starting at or after each multiple of :data:`_SHINGLE_TOKENS` tokens)."""
+    lengths = np.diff(offsets)
+    counts = np.where(lengths >= n, lengths - n + 1, (lengths > 0).astype(np.int64))
+    shingle_offsets = np.zeros(len(lengths) + 1, dtype=np.int64)
+    np.cumsum(counts, out=shingle_offsets[1:])
+    first = int(offsets[0])
+    marks = first + np.arange(_SHINGLE_TOKENS, int(offsets[-1]) - first, _SHINGLE_TOKENS)
+    cuts = np.unique(np.concatenate(([0], np.searchsorted(offsets, marks), [len(lengths)])))
+    return lengths, counts, shingle_offsets, cuts
+
+
 def shingle_hashes(values, offsets, n: int = DEFAULT_N, mixed=None) -> tuple[np.ndarray, np.ndarray]:
     """Hash every ``n``-token shingle of many windows.
 
@@ -144,15 +158,8 @@ def shingle_hashes(values, offsets, n: int = DEFAULT_N, mixed=None) -> tuple[np.
             "hint: pass the flat values of the list column"
         )
     offsets = _check_offsets(offsets, len(values), "offsets")
-    lengths = np.diff(offsets)
-    counts = np.where(lengths >= n, lengths - n + 1, (lengths > 0).astype(np.int64))
-    shingle_offsets = np.zeros(len(lengths) + 1, dtype=np.int64)
-    np.cumsum(counts, out=shingle_offsets[1:])
+    lengths, counts, shingle_offsets, cuts = _shingle_layout(offsets, n)
     hashes = np.empty(int(shingle_offsets[-1]), dtype=np.uint32)
-    # Groups of whole windows: a cut at the first window starting at or after each multiple of the group size.
-    first = int(offsets[0])
-    marks = first + np.arange(_SHINGLE_TOKENS, int(offsets[-1]) - first, _SHINGLE_TOKENS)
-    cuts = np.unique(np.concatenate(([0], np.searchsorted(offsets, marks), [len(lengths)])))
     for w0, w1 in zip(cuts[:-1].tolist(), cuts[1:].tolist()):
         _shingle_group(values, offsets[w0:w1 + 1], lengths[w0:w1], counts[w0:w1], n,
                        hashes[shingle_offsets[w0]:shingle_offsets[w1]], mixed)
@@ -231,14 +238,8 @@ def multilinear_shingle_hashes(words, offsets, n: int = DEFAULT_N) -> tuple[np.n
         raise TypeError("words must be a 1-D uint32 or uint64 array of token ids modulo 2**32; hint: Units.words")
     offsets = _check_offsets(offsets, len(words), "offsets")
     keys = _multilinear_keys(n)
-    lengths = np.diff(offsets)
-    counts = np.where(lengths >= n, lengths - n + 1, (lengths > 0).astype(np.int64))
-    shingle_offsets = np.zeros(len(lengths) + 1, dtype=np.int64)
-    np.cumsum(counts, out=shingle_offsets[1:])
+    lengths, counts, shingle_offsets, cuts = _shingle_layout(offsets, n)
     hashes = np.empty(int(shingle_offsets[-1]), dtype=np.uint32)
-    first = int(offsets[0])
-    marks = first + np.arange(_SHINGLE_TOKENS, int(offsets[-1]) - first, _SHINGLE_TOKENS)
-    cuts = np.unique(np.concatenate(([0], np.searchsorted(offsets, marks), [len(lengths)])))
     widest = int(np.max(offsets[cuts[1:]] - offsets[cuts[:-1]])) if len(cuts) > 1 else 0
     # Two buffers for the sums and products, and a third for the group's words widened to 64 bits once (32-bit
     # words are widened here, a cache-sized group at a time, rather than in every multiplication).

@@ -357,7 +357,19 @@ def _lay_out(values: np.ndarray, untrained: np.ndarray, piece_src: np.ndarray, p
     return Windows(out, flags, positions, fill, piece_len, bounds)
 
 
-class ChunkPacker:
+class _Packer:
+    """What both packers do with each batch of documents before laying them out: add the separators (counted) and
+    note the lengths, for the layouts the documents allow."""
+
+    def _separated(self, docs: Documents) -> Documents:
+        size = docs.values.size
+        docs = with_separators(docs, self.s)
+        self.separators_added += docs.values.size - size
+        self.lengths.add(docs.lengths)
+        return docs
+
+
+class ChunkPacker(_Packer):
     """Concatenate-and-chunk: documents end to end, cut every ``seq_len`` tokens; the rest waits for the next
     documents, and the last window of the shard is padded."""
 
@@ -368,10 +380,7 @@ class ChunkPacker:
         self.lengths = LengthHistogram()  # of the documents with their separators, for the layouts they allow
 
     def add(self, docs: Documents) -> Windows | None:
-        size = docs.values.size
-        docs = with_separators(docs, self.s)
-        self.separators_added += docs.values.size - size
-        self.lengths.add(docs.lengths)
+        docs = self._separated(docs)
         positions = (np.arange(docs.values.size, dtype=np.int64)
                      - np.repeat(docs.offsets[:-1], docs.lengths))
         values, flags, lengths = docs.values, docs.untrained, docs.lengths
@@ -500,7 +509,7 @@ def best_fit_assign(sizes: np.ndarray, seq_len: int, opens: np.ndarray | None = 
     return order, window, opened
 
 
-class BestFitPacker:
+class BestFitPacker(_Packer):
     """Best-fit decreasing in buffers of about ``buffer_tokens`` tokens of documents."""
 
     def __init__(self, settings, seq_len: int, pad_id: int, buffer_tokens: int | None = None):
@@ -512,10 +521,7 @@ class BestFitPacker:
         self.lengths = LengthHistogram()  # of the documents with their separators, for the layouts they allow
 
     def add(self, docs: Documents) -> Windows | None:
-        size = docs.values.size
-        docs = with_separators(docs, self.s)
-        self.separators_added += docs.values.size - size
-        self.lengths.add(docs.lengths)
+        docs = self._separated(docs)
         if docs.count:
             self._waiting.append(docs)
             self._tokens += docs.values.size

@@ -15,7 +15,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 from corpuscle.io.batch import Shard
 from corpuscle.io.sources import _open_input, is_uri
-from corpuscle.report import umask
+from corpuscle.report import atomic_file, umask
 
 #: Rows per output unit when the input does not say (an empty input, a JSON Lines shard).
 DEFAULT_UNIT_ROWS = 1024
@@ -178,25 +178,8 @@ class NullWriter(_Buffered):
 
 def copy_atomic(shard: Shard, path: str) -> None:
     """Copy a shard byte for byte to ``path`` (temporary file in the same folder, synced, then renamed)."""
-    folder = os.path.dirname(os.path.abspath(path))
-    os.makedirs(folder, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=".corpuscle-", suffix=".tmp", dir=folder)
-    try:
-        with os.fdopen(fd, "wb") as out:
-            source = _open_input(shard.path) if is_uri(shard.path) else open(shard.path, "rb")
-            with source:
-                while True:
-                    chunk = source.read(1 << 22)
-                    if not chunk:
-                        break
-                    out.write(chunk)
-            out.flush()
-            os.fsync(out.fileno())
-        os.chmod(tmp, 0o666 & ~umask())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+    with atomic_file(path) as out:
+        source = _open_input(shard.path) if is_uri(shard.path) else open(shard.path, "rb")
+        with source:
+            while chunk := source.read(1 << 22):
+                out.write(chunk)

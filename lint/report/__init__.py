@@ -1,22 +1,24 @@
 """Reporters: one module per output format.  They read a :class:`corpuscle.engine.scan.Report` and know nothing of readers."""
 from __future__ import annotations
 
+import contextlib
 import os
 import tempfile
 
 import orjson
 
 
-def write_atomic(path: str, data: bytes) -> None:
-    """Write ``data`` to ``path`` through a temporary file in the same folder and a rename, so an interrupted run
-    never leaves a half-written report behind."""
+@contextlib.contextmanager
+def atomic_file(path: str):
+    """A binary file to write ``path`` through: a temporary file in the same folder, synced and renamed into place
+    when the block ends, removed when it fails, so an interrupted run never leaves a half-written file behind."""
     folder = os.path.dirname(os.path.abspath(path))
     os.makedirs(folder, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=".corpuscle-", suffix=".tmp", dir=folder)
     try:
-        os.chmod(tmp, 0o666 & ~umask())  # mkstemp makes the file private (0600); a report is an ordinary file
+        os.chmod(tmp, 0o666 & ~umask())  # mkstemp makes the file private (0600); an output is an ordinary file
         with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
+            yield fh
             fh.flush()
             os.fsync(fh.fileno())
         os.replace(tmp, path)
@@ -26,6 +28,12 @@ def write_atomic(path: str, data: bytes) -> None:
         except OSError:
             pass
         raise
+
+
+def write_atomic(path: str, data: bytes) -> None:
+    """Write ``data`` to ``path`` atomically (see :func:`atomic_file`)."""
+    with atomic_file(path) as fh:
+        fh.write(data)
 
 
 def umask() -> int:
