@@ -92,13 +92,7 @@ dl.facts dd{margin:0}
 
 
 def _num(value) -> str:
-    if isinstance(value, bool):
-        return str(value).lower()
-    if isinstance(value, int):
-        return f"{value:,}"
-    if isinstance(value, float):
-        return f"{value:,.4g}"
-    return str(value)
+    return units.number(value, ",.4g")  # floats with thousands separators on the page
 
 
 def _pct(part, whole) -> str:

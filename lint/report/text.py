@@ -20,18 +20,7 @@ SHOW_LOCATIONS = 6
 MARK = {Level.error: "ERROR", Level.warning: "WARN ", Level.note: "NOTE "}
 
 
-def _num(value) -> str:
-    if isinstance(value, bool):
-        return str(value).lower()
-    if isinstance(value, int):
-        return f"{value:,}"
-    if isinstance(value, float):
-        return f"{value:.4g}"
-    if isinstance(value, dict):  # a figure of figures: (key value, key value), not Python's repr
-        return "(" + ", ".join(f"{k} {_num(v)}" for k, v in value.items()) + ")"
-    if isinstance(value, (list, tuple)):
-        return "[" + ", ".join(_num(v) for v in value) + "]"
-    return str(value)
+_num = units.number
 
 
 def _wrap(text: str, indent: str) -> list[str]:

@@ -59,3 +59,19 @@ def where(finding, instance: dict) -> str:
     if "uri" in instance and finding.uri is None:
         text = f"{instance['uri']} {text}"
     return text
+
+
+def number(value, float_format: str = ".4g") -> str:
+    """A figure for a line of text: ints with thousands separators, floats to four significant digits, a figure of
+    figures as (key value, ...), lists as [a, b]; not Python's repr."""
+    if isinstance(value, bool):
+        return str(value).lower()
+    if isinstance(value, int):
+        return f"{value:,}"
+    if isinstance(value, float):
+        return format(value, float_format)
+    if isinstance(value, dict):
+        return "(" + ", ".join(f"{k} {number(v, float_format)}" for k, v in value.items()) + ")"
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(number(v, float_format) for v in value) + "]"
+    return str(value)
