@@ -32,10 +32,11 @@ Near-duplicates
     (:func:`~corpuscle.kernels.minhash.sample_shingles`: one in ``shingle_sample``, at least :data:`SAMPLE_LEAST`
     a unit) gets a MinHash signature of ``num_perm`` values, cut into ``b`` bands of ``r`` values with
     ``(b, r) = optimal_bands(threshold, num_perm, RECALL_WEIGHTS)`` (datasketch's default weights when
-    ``verify = false``). The signatures go to a
-    temporary ``.npy`` file per shard (see :class:`SignatureSpill`); at the end of the shard the ``b`` band keys
-    and a signature digest of every window are made from it into a second file (:class:`BandSpill`), which the
-    state holds as memory maps. Every window has a global id in scan order (the shard's offset plus its index
+    ``verify = false``). The ``b`` band keys
+    and a signature digest of every window are made from each block of signatures and go to a temporary ``.npy``
+    file per shard (:class:`BandSpill`), which the state holds as memory maps once the shard is read; the
+    signatures themselves go to a file of their own (:class:`SignatureSpill`) only with ``verify = false``, whose
+    estimates read them back. Every window has a global id in scan order (the shard's offset plus its index
     within the shard). The band keys are grouped by key in a partitioned shuffle (the rule is ``keyed``, see
     :mod:`corpuscle.rules.api`): ``partition`` splits a shard's keys by key modulo the number of partitions, and
     ``reduce_partition`` groups one partition's keys from all shards (:func:`corpuscle.kernels.lsh.partition_candidates`) and
@@ -56,15 +57,15 @@ Clusters, the keep policy and the findings
     pair or "across shards" (:func:`_cluster_findings`), the largest clusters first.
 
 Temporary files
-    The signature files live in one folder per scan, ``corpuscle-minhash-<host>-<pid>-<random>`` under the option
+    The files of a scan (band keys, shingle hashes, signatures) live in one folder per scan, ``corpuscle-minhash-<host>-<pid>-<random>`` under the option
     ``signature_folder`` or, when it is empty (the default), the system temporary folder (``TMPDIR``) of the
     process that starts the scan; created at the first window and removed at the end of ``corpus()`` -- also when
     it fails -- and, should the scan be interrupted, when the process exits. The folder's path travels with the
     rule: a shard's file is written by the worker that scans it and read by the worker that reduces a partition,
     so on a cluster of several machines ``signature_folder`` must be a folder that every worker (and the process
     that starts the scan, which removes it) mounts at the same path. A local process pool or a single-machine
-    cluster needs nothing. The band files lie in the same folder (8 bytes per band and window, beside the
-    signatures' 4 bytes per permutation and window). The entries of the shuffle (window, band key, digest; 24 bytes
+    cluster needs nothing. The band files take 8 bytes per band and window, the shingle files 4 bytes per shingle
+    (verified, the default), the signature files 4 bytes per permutation and window (``verify = false``). The entries of the shuffle (window, band key, digest; 24 bytes
     each) are picked from them partition by partition; handed over in memory up to ``memory_limit_mb`` (default
     1024) megabytes, past it they go to ``.npy`` files in the same folder and are read back by memory map (see
     :meth:`NearDuplicate._spill`).
@@ -103,29 +104,28 @@ from corpuscle.kernels.keep import KeepPolicy
 from corpuscle.kernels.lsh import (
     DEFAULT_MAX_BUCKET,
     Candidates,
-    band_keys,
+    band_keys_and_digests,
     clusters,
     estimated_jaccard,
     exact_jaccard,
     optimal_bands,
     partition_candidates,
-    signature_digests,
     unique_sets,
 )
 from corpuscle.kernels.minhash import (
     MinHashSettings,
-    multilinear_shingle_hashes,
     sample_shingles,
+    sampled_shingle_hashes,
     shingle_hashes,
     signatures,
     word_shingle_hashes,
 )
+from corpuscle.kernels.order import lexorder
 from corpuscle.kernels.spill import (
     BandSpill,
     ShingleEndsSpill,
     ShingleSpill,
     SignatureSpill,
-    npy_blocks,
     read_rows,
     read_shingle_sets,
     run_folder,
@@ -618,7 +618,8 @@ class NearDuplicate(_DuplicateRule):
 
     def begin(self, shard, settings):
         state = super().begin(shard, settings)
-        state.spill = None
+        state.spill = None  # signatures, kept only for the estimate when verify is off
+        state.band_spill = None
         state.shingle_spill = None
         return state
 
@@ -633,7 +634,7 @@ class NearDuplicate(_DuplicateRule):
             sizes = flat.offsets
 
             def shingled_hashes(w0, w1):
-                return shingle_hashes(flat.values, flat.offsets[w0:w1 + 1], n)
+                return self._sampled(*shingle_hashes(flat.values, flat.offsets[w0:w1 + 1], n))
         else:
             text = document_text(batch, state.settings)
             if text.array is None:
@@ -642,16 +643,20 @@ class NearDuplicate(_DuplicateRule):
             np.cumsum(pc.binary_length(text.array).fill_null(0).to_numpy(zero_copy_only=False), out=sizes[1:])
 
             def shingled_hashes(w0, w1):
-                return word_shingle_hashes(text.array.slice(w0, w1 - w0), n)
+                return self._sampled(*word_shingle_hashes(text.array.slice(w0, w1 - w0), n))
         self._sign(state, windows, sizes, shingled_hashes)
 
     def _sign_units(self, state, windows: Windows, units: Units) -> None:
         n = self.minhash.n
 
         def shingled_hashes(w0, w1):
-            return multilinear_shingle_hashes(units.words, units.bounds[w0:w1 + 1], n)
+            return sampled_shingle_hashes(units.words, units.bounds[w0:w1 + 1], n, self.sample, SAMPLE_LEAST)
 
         self._sign(state, windows, units.bounds, shingled_hashes)
+
+    def _sampled(self, hashes: np.ndarray, offsets: np.ndarray) -> tuple:
+        """Shingle hashes with the sample MinHash takes of them: ``(hashes, offsets, sampled, sample_offsets)``."""
+        return (hashes, offsets) + sample_shingles(hashes, offsets, self.sample, SAMPLE_LEAST)
 
     def _sign(self, state, windows: Windows, sizes: np.ndarray, shingled_hashes) -> None:
         """Shingle the batch's units a range at a time (at least one unit, at most about _SHINGLE_VALUES tokens or
@@ -660,24 +665,29 @@ class NearDuplicate(_DuplicateRule):
         keep their rows, offsets, lengths and hashes."""
         shingled = []  # units with at least one shingle, by range
         for w0, w1 in _ranges(sizes, _SHINGLE_VALUES):
-            hashes, offsets = shingled_hashes(w0, w1)
+            hashes, offsets, sampled, sample_offsets = shingled_hashes(w0, w1)
             local = np.flatnonzero(offsets[1:] > offsets[:-1])
             if len(local) == 0:
                 continue
-            if state.spill is None:
-                state.spill = SignatureSpill(self.spill_folder, self.minhash.num_perm)
+            if state.band_spill is None:
+                state.band_spill = BandSpill(self.spill_folder, self.bands + 1)
                 if self.verify:
                     state.shingle_spill = (ShingleSpill(self.spill_folder), ShingleEndsSpill(self.spill_folder))
+                else:
+                    state.spill = SignatureSpill(self.spill_folder, self.minhash.num_perm)
             if self.verify:
                 first, last = int(offsets[local[0]]), int(offsets[local[-1] + 1])
                 state.shingle_spill[0].append(hashes[first:last].reshape(-1, 1))
                 state.shingle_spill[1].append_counts(np.diff(offsets)[local])
-            sampled, sample_offsets = sample_shingles(hashes, offsets, self.sample, SAMPLE_LEAST)
             for lo in range(0, len(local), _SIGNATURE_WINDOWS):
                 chosen = local[lo:lo + _SIGNATURE_WINDOWS]
                 first, last = int(chosen[0]), int(chosen[-1])
-                block = signatures(sampled, sample_offsets[first:last + 2], self.minhash.num_perm, self.minhash.seed)
-                state.spill.append(block[chosen - first])
+                block = signatures(sampled, sample_offsets[first:last + 2], self.minhash.num_perm,
+                                   self.minhash.seed)[chosen - first]
+                if state.spill is not None:
+                    state.spill.append(block)
+                state.band_spill.append(np.column_stack(band_keys_and_digests(block, self.bands,
+                                                                              self.rows_per_band)))
             shingled.append(local + w0)
             del hashes, offsets, sampled, sample_offsets
         if shingled:
@@ -685,29 +695,29 @@ class NearDuplicate(_DuplicateRule):
             self._keep(state, windows, np.searchsorted(windows.local, np.concatenate(shingled)))
 
     def end(self, state):
-        """The shard's band keys and signature digests, made from its signature file once the shard is read.
+        """The shard's band keys and signature digests, as memory maps of its band file once the shard is read.
 
-        They are wanted only by the reduce, so they go to a file of their own (:class:`BandSpill`, a block of
-        signatures at a time) and the state holds read-only memory maps of it (``keys`` and ``digests``), which take
-        no memory until read: :class:`ShardBands` reads the file itself, block by block, rather than the maps. Held
-        in memory, they would be most of what a shard's state holds (8 bytes per band and window, of about 100)."""
+        They are made from each block of signatures as it is made, and wanted only by the reduce, so they go to a
+        file of their own (:class:`BandSpill`) and the state holds read-only memory maps of it (``keys`` and
+        ``digests``), which take no memory until read: :class:`ShardBands` reads the file itself, block by block,
+        rather than the maps. Held in memory, they would be most of what a shard's state holds (8 bytes per band and
+        window, of about 100). The signatures themselves are kept (in a file of their own) only when ``verify`` is
+        off: the estimate of a candidate pair's similarity reads them back; verified, nothing needs them."""
         closing = self._closing(state)
         if closing is not None:
             self._sign_units(state, *closing)
         state = super().end(state)
         spill = state.__dict__.pop("spill")
+        bands = state.__dict__.pop("band_spill")
         shingle_spill = state.__dict__.pop("shingle_spill", None)
         state.shingles_paths = tuple(f.close() for f in shingle_spill) if shingle_spill else None
         state.signatures_path = spill.close() if spill is not None else None
-        if spill is None or spill.windows == 0:
+        path = bands.close() if bands is not None else None
+        if path is None or bands.windows == 0:
             state.keys = np.zeros((0, self.bands), dtype=np.uint64)
             state.digests = np.zeros(0, dtype=np.uint64)
             return state
-        bands = BandSpill(self.spill_folder, self.bands + 1)
-        for _, block in npy_blocks(state.signatures_path):
-            bands.append(np.column_stack((band_keys(block, self.bands, self.rows_per_band),
-                                          signature_digests(block))))
-        stored = np.load(bands.close(), mmap_mode="r")
+        stored = np.load(path, mmap_mode="r")
         state.keys, state.digests = stored[:, :self.bands], stored[:, self.bands]
         return state
 
@@ -830,7 +840,7 @@ class NearDuplicate(_DuplicateRule):
             del mask, part
         pairs = np.concatenate(found)
         del found
-        pairs = pairs[np.lexsort((pairs[:, 1], pairs[:, 0]))]
+        pairs = pairs[lexorder((pairs[:, 1], pairs[:, 0]))]
         once = np.ones(len(pairs), dtype=bool)
         once[1:] = np.any(pairs[1:] != pairs[:-1], axis=1)
         return Candidates(pairs[once], capped, largest)
@@ -916,7 +926,7 @@ class NearDuplicate(_DuplicateRule):
         similarity = np.concatenate([p.similarity for p in partials]) if partials else np.zeros(0)
         keep = first[pairs[:, 0]] & first[pairs[:, 1]]
         pairs, similarity = pairs[keep], similarity[keep]
-        order = np.lexsort((pairs[:, 1], pairs[:, 0]))
+        order = lexorder((pairs[:, 1], pairs[:, 0]))
         pairs, similarity = pairs[order], similarity[order]
         once = np.ones(len(pairs), dtype=bool)
         once[1:] = np.any(pairs[1:] != pairs[:-1], axis=1)

@@ -34,6 +34,7 @@ from corpuscle.kernels.minhash import WORD_CLASS, sample_shingles, shingle_hash,
 from corpuscle.kernels.spill import SignatureSpill
 from corpuscle.kernels.windows import TOKENS
 from corpuscle.report import droplist, sarif
+from corpuscle.rules import duplicates
 from corpuscle.rules.duplicates import DEFAULT_SHINGLE_SAMPLE, SAMPLE_LEAST, NearDuplicate
 from corpuscle.settings import SettingsError
 from datasketch import MinHash, MinHashLSH
@@ -580,14 +581,16 @@ def test_two_jobs_give_the_same_findings_as_one_and_leave_no_files(tmp_path, mon
     assert len(clusters(one, "near-duplicate")) >= 5 and len(clusters(one, "exact-duplicate")) == 2
 
 
-def test_signatures_are_spilled_to_an_npy_file_and_removed_by_corpus(tmp_path, monkeypatch):
+@pytest.mark.parametrize("verify", [True, False])
+def test_band_keys_shingles_and_signatures_are_spilled_to_npy_files_and_removed_by_corpus(tmp_path, monkeypatch,
+                                                                                          verify):
     monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))
     rng = np.random.default_rng(4)
     write("a.parquet", {"input_ids": [rng.integers(0, VOCAB, 64).tolist() for _ in range(30)] + [[]]},
           row_group_size=7)
     from corpuscle.io.sources import discover, open_shard
 
-    rule = NearDuplicate()
+    rule = NearDuplicate(verify=verify)
     shard = discover(["a.parquet"])[0]
     settings = Settings()
     state = rule.begin(shard, settings)
@@ -597,28 +600,42 @@ def test_signatures_are_spilled_to_an_npy_file_and_removed_by_corpus(tmp_path, m
     for batch in batches:
         rule.feed(state, batch)
     state = rule.end(state)
-    assert os.path.dirname(state.signatures_path) == rule.spill_folder
     assert rule.spill_folder.startswith(str(tmp_path))
-    # Reference: NumPy's .npy reader gives back the signatures of the 30 non-empty windows.
+    # Reference: the signatures of the 30 non-empty windows, computed here from the definitions.
     rows = pq.read_table("a.parquet").column("input_ids").to_pylist()
     flat = np.concatenate([np.array(w, dtype=np.int64) for w in rows[:30]])
     # Token documents (here one per row: no eos known) are shingled with the multilinear family.
+    from corpuscle.kernels.lsh import band_keys, signature_digests
     from corpuscle.kernels.minhash import multilinear_shingle_hashes
     from corpuscle.kernels.units import as_words
 
     expected = signatures(*sample_shingles(*multilinear_shingle_hashes(as_words(flat), np.arange(31) * 64, 5),
                                            DEFAULT_SHINGLE_SAMPLE, SAMPLE_LEAST))
-    stored = np.load(state.signatures_path, mmap_mode="r")
-    assert isinstance(stored, np.memmap) and stored.shape == (30, 128)
-    np.testing.assert_array_equal(stored, expected)
-    np.testing.assert_array_equal(np.load(state.signatures_path), expected)
-    del stored
-    assert state.rows.tolist() == list(range(30)) and state.keys.shape == (30, 12)
-    # The shingle hashes of every window, for the exact verification (NumPy's reader again).
-    shingles, ends = (np.load(path) for path in state.shingles_paths)
-    hashes, offsets = multilinear_shingle_hashes(as_words(flat), np.arange(31) * 64, 5)
-    np.testing.assert_array_equal(shingles[:, 0], hashes)
-    np.testing.assert_array_equal(ends[:, 0], offsets[1:])
+    # The band file, read with NumPy's .npy reader: the band keys and digests of those signatures.
+    band_path = duplicates._band_file(state.keys, state.digests)
+    assert os.path.dirname(band_path) == rule.spill_folder
+    b, r = rule.bands, rule.rows_per_band
+    assert (b, r) == ((12, 10) if verify else (9, 13))  # datasketch's choice for the weights (test_lsh.py)
+    assert state.rows.tolist() == list(range(30)) and state.keys.shape == (30, b)
+    stored_bands = np.load(band_path)
+    np.testing.assert_array_equal(stored_bands[:, :b], band_keys(expected, b, r))
+    np.testing.assert_array_equal(stored_bands[:, b], signature_digests(expected))
+    if verify:
+        # The shingle hashes of every window, for the exact verification (NumPy's reader again); no signature file.
+        assert state.signatures_path is None
+        shingles, ends = (np.load(path) for path in state.shingles_paths)
+        hashes, offsets = multilinear_shingle_hashes(as_words(flat), np.arange(31) * 64, 5)
+        np.testing.assert_array_equal(shingles[:, 0], hashes)
+        np.testing.assert_array_equal(ends[:, 0], offsets[1:])
+    else:
+        # The signatures themselves, for the estimate; no shingle files.
+        assert state.shingles_paths is None and os.path.dirname(state.signatures_path) == rule.spill_folder
+        stored = np.load(state.signatures_path, mmap_mode="r")
+        assert isinstance(stored, np.memmap) and stored.shape == (30, 128)
+        np.testing.assert_array_equal(stored, expected)
+        np.testing.assert_array_equal(np.load(state.signatures_path), expected)
+        del stored
+    del stored_bands
     rule.corpus([state])
     assert not os.path.exists(rule.spill_folder)
 

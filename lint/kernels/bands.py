@@ -18,6 +18,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from corpuscle.findings import Finding
+from corpuscle.kernels.order import lexorder
 from corpuscle.kernels.spill import npy_blocks, npy_layout
 from corpuscle.kernels.windows import DOCUMENTS
 
@@ -271,7 +272,7 @@ class ScanWindows:
 def content_order(content: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """``(order, new)``: ``order`` sorts windows by content hash, equal contents in window order (the sort is
     stable); ``new[k]`` says whether position ``k`` of ``order`` starts a run of equal content."""
-    order = np.lexsort((content[:, 1], content[:, 0]))
+    order = lexorder((content[:, 1], content[:, 0]))
     new = np.empty(len(order), dtype=bool)
     new[:1] = True
     for lane in (0, 1):  # one lane at a time: a sorted copy of one column, not of both

@@ -28,9 +28,10 @@ from functools import lru_cache
 from typing import NamedTuple
 
 import numpy as np
-from corpuscle.kernels.minhash import POLY, _check_int, mix64
+from corpuscle.kernels.minhash import _check_int, fixed_keys, mix64
+from corpuscle.kernels.order import lexorder
 
-#: Bytes of signatures turned into band keys per step of :func:`band_keys` (1 MiB: their column passes stay in cache).
+#: Bytes of 64-bit products made per step of :func:`band_keys_and_digests` (1 MiB: they stay in cache).
 _BAND_BLOCK_BYTES = 1 << 20
 
 DEFAULT_MAX_BUCKET = 1024
@@ -107,44 +108,70 @@ def band_keys(signatures, b: int, r: int) -> np.ndarray:
 
     Band ``k`` covers signature columns ``k * r`` to ``(k + 1) * r - 1``
     (columns past ``b * r`` are not banded, as in datasketch). Its key is
-    ``mix64(h)`` with ``h = mix64(k)`` followed, for each of the ``r``
-    values ``v``, by ``h = h * POLY + mix64(v)`` (mod 2**64; ``mix64`` and
-    ``POLY`` from :mod:`corpuscle.kernels.minhash`). Equal bands give equal keys; starting
-    from the band index keeps equal values in different bands apart. Two
-    different bands share a key with probability about 2**-64.
+    ``mix64(c_k + sum_j K_j * v_j)`` over the band's values ``v_j`` (mod 2**64), with a fixed pseudo-random
+    64-bit multiplier ``K_j`` per signature column and constant ``c_k`` per band (``mix64`` of fixed inputs,
+    :mod:`corpuscle.kernels.minhash`): multilinear hashing of the 32-bit values, so equal bands give equal keys,
+    and two different bands share a key with probability at most 2**-33 for multipliers drawn at random (from
+    memory: the multilinear family modulo 2**64; with these fixed multipliers that is a heuristic figure, and a
+    spurious shared key only makes one more candidate pair, which is verified).
     """
-    signatures = _as_signatures(signatures)
-    b = _check_int("b", b, 1, "take (b, r) from optimal_bands")
-    r = _check_int("r", r, 1, "take (b, r) from optimal_bands")
-    if b * r > signatures.shape[1]:
-        raise ValueError(
-            f"b * r = {b * r} exceeds the {signatures.shape[1]} values per signature; "
-            "hint: take (b, r) from optimal_bands"
-        )
-    keys = np.empty((len(signatures), b), dtype=np.uint64)
-    start = mix64(np.arange(b, dtype=np.uint64))
-    # A block of windows at a time: the r column passes below then read a block that stays in cache (a column of a
-    # whole signature block is one value from every row, a cache line each).
-    step = max(1, _BAND_BLOCK_BYTES // max(1, signatures.shape[1] * signatures.itemsize))
-    for w0 in range(0, len(signatures), step):
-        values = signatures[w0:w0 + step, : b * r].reshape(-1, b, r)
-        block = keys[w0:w0 + step]
-        block[:] = start
-        for j in range(r):
-            block *= np.uint64(POLY)
-            block += mix64(values[:, :, j].astype(np.uint64))
-    return mix64(keys)
+    return band_keys_and_digests(signatures, b, r)[0]
 
 
 def signature_digests(signatures) -> np.ndarray:
     """A 64-bit digest of each whole signature (uint64, one per window).
 
     Windows with identical signatures have equal digests; different
-    signatures share a digest with probability about 2**-64. Passed to
+    signatures share a digest with probability at most 2**-33 (the multilinear hash of :func:`band_keys` over
+    all columns, with its own constant; heuristic in the same way). Passed to
     :func:`candidate_pairs`, digests collapse floods of exact duplicates.
     """
     signatures = _as_signatures(signatures)
-    return band_keys(signatures, 1, signatures.shape[1])[:, 0]
+    return band_keys_and_digests(signatures, 1, signatures.shape[1])[1]
+
+
+#: Seed of the column multipliers and band constants of :func:`band_keys_and_digests`.
+_BAND_KEY_SEED = 0xB4_9D_5E_ED_0F_0B_A9_D5
+
+
+def _band_multipliers(columns: int) -> np.ndarray:
+    """``columns`` column multipliers, then the digest constant, then band constants (one per column at most)."""
+    return fixed_keys(2 * columns + 1, _BAND_KEY_SEED)
+
+
+def band_keys_and_digests(signatures, b: int, r: int) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`band_keys` and :func:`signature_digests` of the same signatures, from one pass over them: each value
+    is widened and multiplied by its column multiplier once; the band keys sum a band's products, the digest all
+    of them."""
+    signatures = _as_signatures(signatures)
+    b = _check_int("b", b, 1, "take (b, r) from optimal_bands")
+    r = _check_int("r", r, 1, "take (b, r) from optimal_bands")
+    columns = signatures.shape[1]
+    if b * r > columns:
+        raise ValueError(
+            f"b * r = {b * r} exceeds the {columns} values per signature; "
+            "hint: take (b, r) from optimal_bands"
+        )
+    multipliers = _band_multipliers(columns)
+    factors, digest_constant, band_constants = multipliers[:columns], multipliers[columns], \
+        multipliers[columns + 1:columns + 1 + b]
+    keys = np.empty((len(signatures), b), dtype=np.uint64)
+    digests = np.empty(len(signatures), dtype=np.uint64)
+    # A block of windows at a time (about _BAND_BLOCK_BYTES of 64-bit products): the products stay in cache
+    # between their multiplication and the two sums.
+    step = max(1, _BAND_BLOCK_BYTES // (8 * max(1, columns)))
+    scratch = np.empty((min(step, len(signatures)), columns), dtype=np.uint64)
+    for w0 in range(0, len(signatures), step):
+        chunk = signatures[w0:w0 + step]
+        products = scratch[:len(chunk)]
+        products[:] = chunk
+        products *= factors
+        banded = products[:, :b * r].reshape(len(chunk), b, r)
+        np.sum(banded, axis=2, out=keys[w0:w0 + step])
+        np.sum(products, axis=1, out=digests[w0:w0 + step])
+    keys += band_constants
+    digests += digest_constant
+    return mix64(keys), mix64(digests)
 
 
 def candidate_pairs(keys, window_ids=None, *, digests=None, max_bucket: int = DEFAULT_MAX_BUCKET) -> Candidates:
@@ -186,7 +213,7 @@ def candidate_pairs(keys, window_ids=None, *, digests=None, max_bucket: int = DE
         digests = np.asarray(digests)
         if digests.shape != (len(keys),) or digests.dtype != np.uint64:
             raise TypeError("digests must be one uint64 per window; hint: pass the result of signature_digests")
-        order = np.lexsort((ids, digests))
+        order = lexorder((ids, digests))
         ordered = ids[order]
         first = np.ones(len(order), dtype=bool)
         first[1:] = digests[order][1:] != digests[order][:-1]
@@ -222,7 +249,7 @@ def partition_candidates(keys, window_ids, *, digests=None, max_bucket: int = DE
         if digests.shape != keys.shape or digests.dtype != np.uint64:
             raise TypeError("digests must be one uint64 per entry; hint: the signature_digests of each entry's window")
     if np.any(ids[1:] < ids[:-1]):  # entries in window id order (as the shards give them, usually already)
-        order = np.argsort(ids, kind="stable")
+        order = lexorder((ids,))
         keys, ids = keys[order], ids[order]
         digests = digests[order] if digests is not None else None
     found = []
@@ -231,7 +258,7 @@ def partition_candidates(keys, window_ids, *, digests=None, max_bucket: int = DE
         window = np.ones(len(ids), dtype=bool)
         window[1:] = ids[1:] != ids[:-1]
         w_ids, w_digests = ids[window], digests[window]
-        by_digest = np.lexsort((w_ids, w_digests))
+        by_digest = lexorder((w_ids, w_digests))
         ordered, ordered_digests = w_ids[by_digest], w_digests[by_digest]
         first = np.ones(len(ordered), dtype=bool)
         first[1:] = ordered_digests[1:] != ordered_digests[:-1]
@@ -248,10 +275,7 @@ def partition_candidates(keys, window_ids, *, digests=None, max_bucket: int = DE
 def _bucket_pairs(bucket_keys: np.ndarray, members: np.ndarray, max_bucket: int, found: list) -> Candidates:
     """Group ``(key, window)`` entries by key and pair the windows of each bucket (capped as described in
     :func:`candidate_pairs`); ``found`` holds pairs made before (identical signatures)."""
-    if np.any(members[1:] < members[:-1]):
-        order = np.lexsort((members, bucket_keys))
-    else:  # members in id order already: a stable sort by key alone keeps it within a key, and is much faster
-        order = np.argsort(bucket_keys, kind="stable")
+    order = lexorder((members, bucket_keys))
     bucket_keys, members = bucket_keys[order], members[order]
     repeated = np.zeros(len(members), dtype=bool)
     repeated[1:] = (bucket_keys[1:] == bucket_keys[:-1]) & (members[1:] == members[:-1])
@@ -279,7 +303,7 @@ def _bucket_pairs(bucket_keys: np.ndarray, members: np.ndarray, max_bucket: int,
     # Members are sorted by id, so every pair is (smaller, larger) already; a
     # window id given twice could still pair with itself.
     pairs = pairs[pairs[:, 0] != pairs[:, 1]]
-    pairs = pairs[np.lexsort((pairs[:, 1], pairs[:, 0]))]
+    pairs = pairs[lexorder((pairs[:, 1], pairs[:, 0]))]
     keep = np.ones(len(pairs), dtype=bool)
     keep[1:] = np.any(pairs[1:] != pairs[:-1], axis=1)
     return Candidates(pairs[keep], int(len(large)), largest)

@@ -80,7 +80,7 @@ WORD_CLASS = r"\p{L}\p{M}\p{Nd}\p{Nl}\p{Pc}"
 """Unicode classes of word characters, in syntax shared by RE2 and ``regex``."""
 
 POLY = 0xD6E8FEB86659FD93
-"""Odd multiplier of the polynomial hashes (shingles, words, LSH band keys)."""
+"""Odd multiplier of the polynomial hashes (shingles, words)."""
 
 _MASK64 = (1 << 64) - 1
 _GAMMA = 0x9E3779B97F4A7C15
@@ -208,11 +208,17 @@ _HIGH = 1 if sys.byteorder == "little" else 0
 _SHINGLE_KEY_SEED = 0x51A6_1E5E_ED00_C0DE
 
 
-@lru_cache(maxsize=8)
-def _multilinear_keys(n: int) -> np.ndarray:
-    keys = mix64(np.arange(2 * n + 1, dtype=np.uint64) ^ np.uint64(_SHINGLE_KEY_SEED))
+@lru_cache(maxsize=16)
+def fixed_keys(count: int, seed: int) -> np.ndarray:
+    """``count`` fixed pseudo-random 64-bit keys, ``mix64(i ^ seed)`` for ``i`` in ``0 .. count - 1`` (read-only,
+    cached): the multipliers of the multilinear hashes here and in :mod:`corpuscle.kernels.lsh`."""
+    keys = mix64(np.arange(count, dtype=np.uint64) ^ np.uint64(seed))
     keys.flags.writeable = False
     return keys
+
+
+def _multilinear_keys(n: int) -> np.ndarray:
+    return fixed_keys(2 * n + 1, _SHINGLE_KEY_SEED)
 
 
 def multilinear_shingle_hashes(words, offsets, n: int = DEFAULT_N) -> tuple[np.ndarray, np.ndarray]:
@@ -232,6 +238,19 @@ def multilinear_shingle_hashes(words, offsets, n: int = DEFAULT_N) -> tuple[np.n
     hash family of :func:`shingle_hash` (which mixes every token first and is what datasketch is fed in the tests):
     cheaper, and used where no signature is compared with datasketch's.
     """
+    hashes, shingle_offsets, _, _ = _multilinear(words, offsets, n, None)
+    return hashes, shingle_offsets
+
+
+def sampled_shingle_hashes(words, offsets, n: int, rate: int,
+                           least: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`multilinear_shingle_hashes` and :func:`sample_shingles` of its result in one pass:
+    ``(hashes, shingle_offsets, sampled, sample_offsets)``, the same arrays as the two calls give. The sample is
+    taken group by group while a group's hashes are still in the cache, which saves a pass over every hash."""
+    return _multilinear(words, offsets, n, (rate, least))
+
+
+def _multilinear(words, offsets, n: int, sample: tuple[int, int] | None):
     _check_n(n)
     words = np.asarray(words)
     if words.ndim != 1 or words.dtype not in (np.uint32, np.uint64):
@@ -245,6 +264,8 @@ def multilinear_shingle_hashes(words, offsets, n: int = DEFAULT_N) -> tuple[np.n
     # words are widened here, a cache-sized group at a time, rather than in every multiplication).
     scratch = np.empty((3 if words.dtype == np.uint32 else 2, widest), dtype=np.uint64)
     steps = np.arange(1, n, dtype=np.int64)
+    highest = None if sample is None or sample[0] <= 1 else _sample_limits(counts, *sample)
+    taken = []  # per group: the sampled hashes' positions in ``hashes``
     for w0, w1 in zip(cuts[:-1].tolist(), cuts[1:].tolist()):
         lo, hi = int(offsets[w0]), int(offsets[w1])
         group, size, count = words[lo:hi], lengths[w0:w1], counts[w0:w1]
@@ -252,7 +273,8 @@ def multilinear_shingle_hashes(words, offsets, n: int = DEFAULT_N) -> tuple[np.n
             wide = scratch[2][:hi - lo]
             wide[:] = group
             group = wide
-        out = hashes[shingle_offsets[w0]:shingle_offsets[w1]]
+        base = int(shingle_offsets[w0])
+        out = hashes[base:int(shingle_offsets[w1])]
         is_long = size >= n
         short = np.flatnonzero((size > 0) & ~is_long)
         if is_long.any():
@@ -282,7 +304,20 @@ def multilinear_shingle_hashes(words, offsets, n: int = DEFAULT_N) -> tuple[np.n
                 live = length > k
                 partial[live] += group[start[live] + k] * keys[k]
             out[local[short]] = (partial >> np.uint64(32)).astype(np.uint32)
-    return hashes, shingle_offsets
+        if highest is not None:
+            taken.append(np.flatnonzero(out <= np.repeat(highest[w0:w1], count)) + base)
+    if sample is None:
+        return hashes, shingle_offsets, None, None
+    if highest is None:
+        return hashes, shingle_offsets, hashes, shingle_offsets
+    taken = np.concatenate(taken) if taken else np.zeros(0, dtype=np.int64)
+    return hashes, shingle_offsets, hashes[taken], np.searchsorted(taken, shingle_offsets).astype(np.int64)
+
+
+def _sample_limits(counts: np.ndarray, rate: int, least: int) -> np.ndarray:
+    """Per window of ``counts`` shingles, the highest hash its sample takes (see :func:`sample_shingles`)."""
+    share = np.maximum(1.0 / rate, least / np.maximum(counts, 1))
+    return (np.minimum(np.floor(share * 2.0 ** 32), 2.0 ** 32) - 1).astype(np.uint32)  # hash < limit
 
 
 def sample_shingles(hashes, shingle_offsets, rate: int, least: int) -> tuple[np.ndarray, np.ndarray]:
@@ -306,8 +341,7 @@ def sample_shingles(hashes, shingle_offsets, rate: int, least: int) -> tuple[np.
     local = shingle_offsets - lo
     view = hashes[lo:int(shingle_offsets[-1])]
     counts = np.diff(local)
-    share = np.maximum(1.0 / rate, least / np.maximum(counts, 1))
-    highest = (np.minimum(np.floor(share * 2.0 ** 32), 2.0 ** 32) - 1).astype(np.uint32)  # hash < limit
+    highest = _sample_limits(counts, rate, least)
     # The positions taken, and per window the count of them before its start (a search among the few taken
     # positions, rather than a sum over every shingle).
     taken = np.flatnonzero(view <= np.repeat(highest, counts))
