@@ -145,8 +145,9 @@ def main():
 @click.option("--html", "html_path", type=click.Path(dir_okay=False),
               help="Write a self-contained HTML report with plots here (no network needed to open it).")
 @click.option("--drop-list", "drop_list_path", type=click.Path(dir_okay=False),
-              help="Write the windows to drop here, one JSON line {\"uri\", \"row\"} each: every exact or near "
-                   "duplicate but the first copy (scan order), from the rules exact-duplicate and near-duplicate.")
+              help="Write the copies to drop here, one JSON line each (uri, row, offset, length, the cluster, the "
+                   "copy kept and why): every member of a duplicate cluster but the one kept (keep, prefer and "
+                   "protect under [rule.exact-duplicate] and [rule.near-duplicate]).")
 @click.option("--fail-at", type=click.Choice(FAIL_AT), help="Exit 1 when a finding is at or above this level [default: error].")
 @click.option("--jobs", type=click.IntRange(min=1), help=("Cores to scan with: shards, and parts of large shards, are scanned by this many processes, each "
                     "decoding with one Arrow thread [default: number of cores]."))

@@ -67,7 +67,7 @@ def test_verified_similarity_is_datasketch_jaccard(tmp_path, monkeypatch):
     # Small blocks and chunks: rows of one chunk of pairs come from several blocks of both files.
     monkeypatch.setattr(spill_files, "_VERIFY_BLOCK_ROWS", 5)
     monkeypatch.setattr(duplicates, "_VERIFY_PAIRS", 37)
-    rule = NearDuplicate(signature_folder=str(tmp_path))
+    rule = NearDuplicate(signature_folder=str(tmp_path), num_perm=128)
     rng = np.random.default_rng(8)
     bases = [rng.integers(0, 10 ** 6, 80).tolist() for _ in range(4)]
     sketches, paths = [], []

@@ -387,19 +387,20 @@ def test_candidate_rate_of_the_rules_bands_follows_the_banding_curve():
     # The (b, r) near-duplicate takes when it verifies candidates: datasketch's optimisation with weights 0.2 for
     # false positives and 0.8 for false negatives. Mining of Massive Datasets, section 3.4: a pair of Jaccard
     # similarity s becomes a candidate with probability 1 - (1 - s**r)**b.
-    from corpuscle.rules.duplicates import RECALL_WEIGHTS
+    from corpuscle.rules.duplicates import DEFAULT_NUM_PERM, RECALL_WEIGHTS
 
-    b, r = optimal_bands(0.8, 128, RECALL_WEIGHTS)
-    assert (b, r) == (12, 10)  # the bands datasketch's search chooses for these weights
-    rng = np.random.default_rng(7)
-    per_similarity = 400
-    for similarity in (0.5, 0.7, 0.8, 0.9):
-        hashes, offsets = flatten(pairs_with_exact_jaccard(rng, similarity, per_similarity))
-        found = candidate_pairs(band_keys(signatures(hashes, offsets), b, r)).pairs
-        partners = found[(found[:, 0] % 2 == 0) & (found[:, 1] == found[:, 0] + 1)]
-        expected = 1 - (1 - similarity**r) ** b
-        low, high = binomial_interval(per_similarity, expected)
-        assert low <= len(partners) <= high, (similarity, len(partners), expected * per_similarity)
+    for num_perm, bands in ((DEFAULT_NUM_PERM, (8, 8)), (128, (12, 10))):  # the rule's default, and 128
+        b, r = optimal_bands(0.8, num_perm, RECALL_WEIGHTS)
+        assert (b, r) == bands  # the bands datasketch's search chooses for these weights
+        rng = np.random.default_rng(7)
+        per_similarity = 400
+        for similarity in (0.5, 0.7, 0.8, 0.9):
+            hashes, offsets = flatten(pairs_with_exact_jaccard(rng, similarity, per_similarity))
+            found = candidate_pairs(band_keys(signatures(hashes, offsets, num_perm), b, r)).pairs
+            partners = found[(found[:, 0] % 2 == 0) & (found[:, 1] == found[:, 0] + 1)]
+            expected = 1 - (1 - similarity**r) ** b
+            low, high = binomial_interval(per_similarity, expected)
+            assert low <= len(partners) <= high, (similarity, len(partners), expected * per_similarity)
 
 
 def test_candidates_of_sampled_shingles_follow_the_curve_of_the_samples_jaccard():
@@ -408,15 +409,15 @@ def test_candidates_of_sampled_shingles_follow_the_curve_of_the_samples_jaccard(
     # pairs lies within 4 standard deviations of the sum of those probabilities (a sum of independent Bernoulli
     # trials; normal approximation), and s' lies close to s.
     from corpuscle.kernels.minhash import sample_shingles
-    from corpuscle.rules.duplicates import DEFAULT_SHINGLE_SAMPLE, SAMPLE_LEAST
+    from corpuscle.rules.duplicates import DEFAULT_NUM_PERM, DEFAULT_SHINGLE_SAMPLE, SAMPLE_LEAST
 
-    b, r = 12, 10
+    b, r = 8, 8  # the rule's bands for its default of 64 permutations (test above)
     rng = np.random.default_rng(8)
     for similarity, union in ((0.9, 1600), (0.8, 3200), (0.9, 60)):
         windows = pairs_with_exact_jaccard(rng, similarity, 300, union=union)
         hashes, offsets = flatten(windows)
         sampled, sample_offsets = sample_shingles(hashes, offsets, DEFAULT_SHINGLE_SAMPLE, SAMPLE_LEAST)
-        found = candidate_pairs(band_keys(signatures(sampled, sample_offsets), b, r)).pairs
+        found = candidate_pairs(band_keys(signatures(sampled, sample_offsets, DEFAULT_NUM_PERM), b, r)).pairs
         partners = len(found[(found[:, 0] % 2 == 0) & (found[:, 1] == found[:, 0] + 1)])
         probabilities = []
         for i in range(0, len(windows), 2):
