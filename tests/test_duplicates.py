@@ -485,15 +485,25 @@ def test_the_drop_list_leaves_no_duplicate_on_a_rescan(tmp_path):
     # Reference: every exact copy but the first (Python equality) and every window of a cluster of the exact
     # reference (Python sets, Jaccard >= 0.8) but its first, with the exact copies of its members; once each, in
     # scan order.
+    # A cluster whose similarity lies near the threshold (the planted pair of Jaccard 0.82) may or may not be found
+    # by the LSH search, a heuristic: its members are dropped as a whole or not at all; every other one must be.
     window = {(f"data/{name}.parquet", row): w for name, rows in shards.items() for row, w in enumerate(rows)}
     reference = exact_clusters({key: (tuple(w), shingles_of(w)) for key, w in window.items()})
     first = {}
     for key, w in window.items():
         first.setdefault(tuple(w), key)
     expected = {key for key, w in window.items() if first[tuple(w)] != key}
+    optional = []
     for cluster in reference:
         head = min(cluster, key=lambda k: (k[0], k[1]))
-        expected |= {key for key, w in window.items() if first[tuple(w)] in cluster and key != head}
+        members = {key for key, w in window.items() if first[tuple(w)] in cluster and key != head}
+        sure = min(jaccard(window[x], window[y]) for x in cluster for y in cluster if x < y) >= 0.9
+        if sure:
+            expected |= members
+        else:
+            optional.append(members)
+    assert len(optional) == 1  # the pair of about 0.82
+    expected |= optional[0] if optional[0] <= set(dropped) else set()
     assert set(dropped) == expected and len(dropped) == len(expected)
     assert dropped == sorted(dropped)  # a.parquet before b.parquet, rows ascending
     # Rewrite the shards without the dropped rows (pyarrow), then scan again: nothing left to report.

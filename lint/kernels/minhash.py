@@ -59,7 +59,6 @@ MinHash signatures
 from __future__ import annotations
 
 import operator
-import sys
 from dataclasses import dataclass
 from functools import lru_cache
 
@@ -202,8 +201,6 @@ def _shingle_group(values, offsets, lengths, counts, n: int, out: np.ndarray, mi
         out[local[short]] = _finish(partial)
 
 
-#: Index of the high 32-bit half of a uint64 viewed as two uint32 (the top bits of a hash, read without a shift).
-_HIGH = 1 if sys.byteorder == "little" else 0
 #: Keys of :func:`multilinear_shingle_hashes`: one per token position of a shingle, then one per shingle length.
 _SHINGLE_KEY_SEED = 0x51A6_1E5E_ED00_C0DE
 
@@ -217,8 +214,12 @@ def fixed_keys(count: int, seed: int) -> np.ndarray:
     return keys
 
 
+@lru_cache(maxsize=8)
 def _multilinear_keys(n: int) -> np.ndarray:
-    return fixed_keys(2 * n + 1, _SHINGLE_KEY_SEED)
+    """The 32-bit keys of :func:`multilinear_shingle_hashes`: the top halves of :func:`fixed_keys`."""
+    keys = (fixed_keys(2 * n + 1, _SHINGLE_KEY_SEED) >> np.uint64(32)).astype(np.uint32)
+    keys.flags.writeable = False
+    return keys
 
 
 def multilinear_shingle_hashes(words, offsets, n: int = DEFAULT_N) -> tuple[np.ndarray, np.ndarray]:
@@ -226,17 +227,22 @@ def multilinear_shingle_hashes(words, offsets, n: int = DEFAULT_N) -> tuple[np.n
     shingle hashes of token documents (:mod:`corpuscle.kernels.units`), where they are made for every token of a
     corpus and verified exactly afterwards.
 
-    ``words`` are the token ids modulo 2**32 as uint64 (:func:`corpuscle.kernels.units.Units`), ``offsets`` as for
-    :func:`shingle_hashes`, and the windowing is the same (a window shorter than ``n`` is one shingle of all its
-    tokens). A shingle ``s_0 .. s_{L-1}`` (L = n, or the length of a short window) hashes to the top 32 bits of::
+    ``words`` are the token ids modulo 2**32 as uint32 (:func:`corpuscle.kernels.units.as_words`; uint64 is taken
+    modulo 2**32), ``offsets`` as for :func:`shingle_hashes`, and the windowing is the same (a window shorter than
+    ``n`` is one shingle of all its tokens). A shingle ``s_0 .. s_{L-1}`` (L = n, or the length of a short window)
+    hashes to::
 
-        k_{n + L} + sum_j k_j * s_j   (mod 2**64)
+        k_{n + L} + sum_j k_j * s_j   (mod 2**32)
 
-    with fixed pseudo-random 64-bit keys ``k`` (``mix64`` of fixed inputs): the multilinear family of
-    :mod:`corpuscle.kernels.hashing`, whose top 32 bits are strongly universal for keys drawn at random (from
-    memory: Lemire and Kaser, 2014) -- so two different shingles collide with probability about 2**-32. Not the
-    hash family of :func:`shingle_hash` (which mixes every token first and is what datasketch is fed in the tests):
-    cheaper, and used where no signature is compared with datasketch's.
+    with fixed pseudo-random 32-bit keys ``k`` (the top halves of ``mix64`` of fixed inputs): multilinear hashing
+    modulo 2**32, all in 32-bit arithmetic (numpy multiplies 32-bit integers several times faster than 64-bit ones,
+    and the words need no widening). For keys drawn at random, two different shingles collide with probability
+    ``2**(z - 32)``, where ``z`` is the least number of trailing zero bits among their nonzero differences per
+    position: 2**-32 when some position differs by an odd amount, about 2**-28 averaged over random ids (from
+    memory: the multilinear family modulo a power of two). Its low bits follow the ids' low bits linearly; what
+    uses the hashes only compares them, takes those under a threshold (the top bits) or mixes them first
+    (:func:`signatures`). Not the hash family of :func:`shingle_hash` (which mixes every token first and is what
+    datasketch is fed in the tests): cheaper, and used where no signature is compared with datasketch's.
     """
     hashes, shingle_offsets, _, _ = _multilinear(words, offsets, n, None)
     return hashes, shingle_offsets
@@ -255,24 +261,20 @@ def _multilinear(words, offsets, n: int, sample: tuple[int, int] | None):
     words = np.asarray(words)
     if words.ndim != 1 or words.dtype not in (np.uint32, np.uint64):
         raise TypeError("words must be a 1-D uint32 or uint64 array of token ids modulo 2**32; hint: Units.words")
+    if words.dtype != np.uint32:
+        words = words.astype(np.uint32)  # modulo 2**32
     offsets = _check_offsets(offsets, len(words), "offsets")
     keys = _multilinear_keys(n)
     lengths, counts, shingle_offsets, cuts = _shingle_layout(offsets, n)
     hashes = np.empty(int(shingle_offsets[-1]), dtype=np.uint32)
     widest = int(np.max(offsets[cuts[1:]] - offsets[cuts[:-1]])) if len(cuts) > 1 else 0
-    # Two buffers for the sums and products, and a third for the group's words widened to 64 bits once (32-bit
-    # words are widened here, a cache-sized group at a time, rather than in every multiplication).
-    scratch = np.empty((3 if words.dtype == np.uint32 else 2, widest), dtype=np.uint64)
+    scratch = np.empty((2, widest), dtype=np.uint32)  # the sums and the products of a group
     steps = np.arange(1, n, dtype=np.int64)
     highest = None if sample is None or sample[0] <= 1 else _sample_limits(counts, *sample)
     taken = []  # per group: the sampled hashes' positions in ``hashes``
     for w0, w1 in zip(cuts[:-1].tolist(), cuts[1:].tolist()):
         lo, hi = int(offsets[w0]), int(offsets[w1])
         group, size, count = words[lo:hi], lengths[w0:w1], counts[w0:w1]
-        if group.dtype != np.uint64:
-            wide = scratch[2][:hi - lo]
-            wide[:] = group
-            group = wide
         base = int(shingle_offsets[w0])
         out = hashes[base:int(shingle_offsets[w1])]
         is_long = size >= n
@@ -289,11 +291,10 @@ def _multilinear(words, offsets, n: int, sample: tuple[int, int] | None):
             valid = np.ones(starts, dtype=bool)
             crossing = (np.cumsum(size)[:, None] - steps).ravel()
             valid[crossing[(crossing >= 0) & (crossing < starts)]] = False
-            top = full.view(np.uint32)[_HIGH::2]  # the top 32 bits of each 64-bit sum, without a shift
             if len(short):
-                out[np.repeat(is_long, count)] = top[valid]
+                out[np.repeat(is_long, count)] = full[valid]
             else:
-                out[:] = top[valid]
+                out[:] = full[valid]
         if len(short):
             local = np.zeros(len(size) + 1, dtype=np.int64)
             np.cumsum(count, out=local[1:])
@@ -303,7 +304,7 @@ def _multilinear(words, offsets, n: int, sample: tuple[int, int] | None):
             for k in range(n - 1):
                 live = length > k
                 partial[live] += group[start[live] + k] * keys[k]
-            out[local[short]] = (partial >> np.uint64(32)).astype(np.uint32)
+            out[local[short]] = partial
         if highest is not None:
             taken.append(np.flatnonzero(out <= np.repeat(highest[w0:w1], count)) + base)
     if sample is None:
