@@ -39,14 +39,15 @@ Near-duplicates
     estimates read them back. Every window has a global id in scan order (the shard's offset plus its index
     within the shard). The band keys are grouped by key in a partitioned shuffle (the rule is ``keyed``, see
     :mod:`corpuscle.rules.api`): ``partition`` splits a shard's keys by key modulo the number of partitions, and
-    ``reduce_partition`` groups one partition's keys from all shards (:func:`corpuscle.kernels.lsh.partition_candidates`) and
-    verifies its candidate pairs by the exact Jaccard similarity of their shingle sets (the shingle hashes read
-    back from the shards' files a chunk of pairs at a time, :func:`corpuscle.kernels.lsh.exact_jaccard`), or, with
-    ``verify = false``, estimates it from their signatures (:func:`read_rows`).
-    Locally this runs in one process; on a cluster the keys stay on the workers and only the candidate pairs come
-    back. The reduce step (``corpus``) folds exact copies into their first copy (a pair is kept when both ends
-    are first copies), counts each pair once, and joins the pairs at or above the threshold into clusters
-    (:func:`corpuscle.kernels.lsh.clusters`). The result is the same for any number of partitions.
+    ``reduce_partition`` groups one partition's keys from all shards
+    (:func:`corpuscle.kernels.lsh.partition_candidates`) into candidate pairs. Locally this runs in one process; on
+    a cluster the keys stay on the workers and only the candidate pairs come back. The reduce step (``corpus``)
+    folds exact copies into their first copy (a pair is kept when both ends are first copies), counts each pair
+    once -- a pair of near copies shares most of its bands, found in several partitions -- and verifies it once:
+    by the exact Jaccard similarity of the two shingle sets (the shingle hashes read back from the shards' files a
+    chunk of pairs at a time, :func:`corpuscle.kernels.lsh.exact_jaccard`), or, with ``verify = false``, by the
+    estimate from their signatures (:func:`read_rows`). It then joins the pairs at or above the threshold into
+    clusters (:func:`corpuscle.kernels.lsh.clusters`). The result is the same for any number of partitions.
 
 Clusters, the keep policy and the findings
     A near-duplicate cluster holds at least two *distinct* contents; its members are all their units, exact copies
@@ -57,15 +58,17 @@ Clusters, the keep policy and the findings
     pair or "across shards" (:func:`_cluster_findings`), the largest clusters first.
 
 Temporary files
-    The files of a scan (band keys, shingle hashes, signatures) live in one folder per scan, ``corpuscle-minhash-<host>-<pid>-<random>`` under the option
-    ``signature_folder`` or, when it is empty (the default), the system temporary folder (``TMPDIR``) of the
-    process that starts the scan; created at the first window and removed at the end of ``corpus()`` -- also when
-    it fails -- and, should the scan be interrupted, when the process exits. The folder's path travels with the
-    rule: a shard's file is written by the worker that scans it and read by the worker that reduces a partition,
-    so on a cluster of several machines ``signature_folder`` must be a folder that every worker (and the process
-    that starts the scan, which removes it) mounts at the same path. A local process pool or a single-machine
-    cluster needs nothing. The band files take 8 bytes per band and window, the shingle files 4 bytes per shingle
-    (verified, the default), the signature files 4 bytes per permutation and window (``verify = false``). The entries of the shuffle (window, band key, digest; 24 bytes
+    The files of a scan (band keys, shingle hashes, signatures) live in one folder per scan,
+    ``corpuscle-minhash-<host>-<pid>-<random>`` under the option ``signature_folder`` or, when it is empty (the
+    default), the system temporary folder (``TMPDIR``) of the process that starts the scan; created at the first
+    window and removed at the end of ``corpus()`` -- also when it fails -- and, should the scan be interrupted, when
+    the process exits. The folder's path travels with the rule: a shard's band file is written by the worker that
+    scans it and read by the worker that reduces a partition, its shingle (or signature) file read by the process
+    that starts the scan, which verifies the candidates; so on a cluster of several machines ``signature_folder``
+    must be a folder that every worker (and the process that starts the scan, which removes it) mounts at the same
+    path. A local process pool or a single-machine cluster needs nothing. The band files take 8 bytes per band and
+    window, the shingle files 4 bytes per shingle (verified, the default), the signature files 4 bytes per
+    permutation and window (``verify = false``). The entries of the shuffle (window, band key, digest; 24 bytes
     each) are picked from them partition by partition; handed over in memory up to ``memory_limit_mb`` (default
     1024) megabytes, past it they go to ``.npy`` files in the same folder and are read back by memory map (see
     :meth:`NearDuplicate._spill`).
@@ -459,6 +462,8 @@ class _DuplicateRule(Rule):
         merged = super().merge(first, second)
         for name in ("rows", "offsets", "lengths", "domains", "content"):
             setattr(merged, name, np.concatenate([getattr(first, name), getattr(second, name)]))
+        if hasattr(first, "spill_files"):  # near-duplicate: each part's own files, in window order
+            merged.spill_files = first.spill_files + second.spill_files
         return merged
 
     def _max_clusters(self) -> int:
@@ -720,6 +725,9 @@ class NearDuplicate(_DuplicateRule):
         shingle_spill = state.__dict__.pop("shingle_spill", None)
         state.shingles_paths = tuple(f.close() for f in shingle_spill) if shingle_spill else None
         state.signatures_path = spill.close() if spill is not None else None
+        # The files the verification reads, with the count of windows they cover (a shard scanned in parts has
+        # one entry per part once its states are merged).
+        state.spill_files = [(len(state.rows), state.shingles_paths, state.signatures_path)]
         path = bands.close() if bands is not None else None
         if path is None or bands.windows == 0:
             state.keys = np.zeros((0, self.bands), dtype=np.uint64)
@@ -776,8 +784,9 @@ class NearDuplicate(_DuplicateRule):
         return out
 
     def reduce_partition(self, pieces):
-        """Reduce side: the candidate pairs of the partition's buckets (global window ids in scan order) and their
-        estimated Jaccard similarity, the signatures read back from the shards' signature files."""
+        """Reduce side: the candidate pairs of the partition's buckets (global window ids in scan order). They are
+        verified in ``corpus``, once all partitions are in: a pair of near copies shares most of its bands, which
+        fall into several partitions, and would otherwise be verified once in each."""
         offsets = np.zeros(len(pieces) + 1, dtype=np.int64)
         np.cumsum([piece.windows for piece in pieces], out=offsets[1:])
         # The entries of all pieces, each piece picked and copied into place in turn.
@@ -793,11 +802,7 @@ class NearDuplicate(_DuplicateRule):
             del window, piece_keys, piece_digests
         found = self._bucket_candidates(keys, ids, digests)
         del keys, ids, digests
-        if self.verify and all(piece.shingles for piece in pieces if piece.windows):
-            similarity = self._verify_exact(found.pairs, offsets, [piece.shingles for piece in pieces])
-        else:
-            similarity = self._verify(found.pairs, offsets, [piece.signatures for piece in pieces])
-        return NearPartial(found.pairs, similarity, found.capped_buckets, found.largest_bucket)
+        return NearPartial(found.pairs, found.capped_buckets, found.largest_bucket)
 
     def _verify_exact(self, pairs: np.ndarray, offsets: np.ndarray, paths: list) -> np.ndarray:
         """The exact Jaccard similarity of each pair's shingle sets (of their 32-bit shingle hashes), read back
@@ -868,10 +873,10 @@ class NearDuplicate(_DuplicateRule):
         ids = np.arange(scan.count)
         first = scan.first_copy == ids
         distinct = np.flatnonzero(first)
-        found, similarity = self._candidates(partials, first)
+        found = self._candidates(partials, first)
         pairs = found.pairs
-        same = scan.domains[pairs[:, 0]] == scan.domains[pairs[:, 1]]  # a document never pairs a window
-        pairs, similarity = pairs[same], similarity[same]
+        pairs = pairs[scan.domains[pairs[:, 0]] == scan.domains[pairs[:, 1]]]  # a document never pairs a window
+        similarity = self._similarity(pairs, scan)
         kept = similarity >= self.threshold
         pairs, similarity = pairs[kept], similarity[kept]
 
@@ -927,20 +932,28 @@ class NearDuplicate(_DuplicateRule):
                 "MinHash LSH estimate (heuristic)"}
 
     @staticmethod
-    def _candidates(partials: list, first: np.ndarray) -> tuple[Candidates, np.ndarray]:
+    def _candidates(partials: list, first: np.ndarray) -> Candidates:
         """The candidate pairs of all partitions between first copies (an exact copy pairs through its first
-        copy), each pair once, sorted, with its similarity: what candidate_pairs gives on all the keys at once."""
+        copy), each pair once, sorted: what candidate_pairs gives on all the keys at once."""
         pairs = np.concatenate([p.pairs for p in partials]) if partials else np.zeros((0, 2), np.int64)
-        similarity = np.concatenate([p.similarity for p in partials]) if partials else np.zeros(0)
-        keep = first[pairs[:, 0]] & first[pairs[:, 1]]
-        pairs, similarity = pairs[keep], similarity[keep]
-        order = lexorder((pairs[:, 1], pairs[:, 0]))
-        pairs, similarity = pairs[order], similarity[order]
+        pairs = pairs[first[pairs[:, 0]] & first[pairs[:, 1]]]
+        pairs = pairs[lexorder((pairs[:, 1], pairs[:, 0]))]
         once = np.ones(len(pairs), dtype=bool)
         once[1:] = np.any(pairs[1:] != pairs[:-1], axis=1)
         capped = sum(p.capped_buckets for p in partials)
         largest = max((p.largest_bucket for p in partials), default=0)
-        return Candidates(pairs[once], capped, largest), similarity[once]
+        return Candidates(pairs[once], capped, largest)
+
+    def _similarity(self, pairs: np.ndarray, scan: ScanWindows) -> np.ndarray:
+        """Each pair's exact Jaccard similarity from the shards' shingle files, or with ``verify = false`` its
+        MinHash estimate from their signature files (both in the scan's folder, which the process that starts the
+        scan mounts too)."""
+        files = [entry for st in scan.states for entry in st.spill_files]
+        offsets = np.zeros(len(files) + 1, dtype=np.int64)
+        np.cumsum([count for count, _, _ in files], out=offsets[1:])
+        if self.verify and all(shingles for count, shingles, _ in files if count):
+            return self._verify_exact(pairs, offsets, [shingles for _, shingles, _ in files])
+        return self._verify(pairs, offsets, [signatures for _, _, signatures in files])
 
     def _verify(self, pairs: np.ndarray, offsets: np.ndarray, paths: list) -> np.ndarray:
         """Estimated Jaccard similarity of each pair, reading the signatures of a chunk of pairs at a time from the

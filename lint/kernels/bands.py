@@ -170,10 +170,9 @@ def band_file(keys: np.ndarray, digests: np.ndarray) -> str | None:
 @dataclass
 class NearPartial:
     """What one partition gives back: its candidate pairs (global ids, possibly exact copies, possibly also found
-    by another partition), their estimated Jaccard similarity, and its bucket figures."""
+    by another partition) and its bucket figures. The pairs are verified once all partitions are in, each once."""
 
     pairs: np.ndarray
-    similarity: np.ndarray
     capped_buckets: int
     largest_bucket: int
 

@@ -7,11 +7,13 @@ Writes one shard of packed windows (input_ids, shifted labels, position_ids rest
 lists) of random documents (log-normal lengths, eos after each) with at least ``--tokens`` tokens, in which a share
 ``--duplicates`` of the documents are exact copies of earlier documents and the same share near copies (one token
 in 200 changed, at least one), packed wherever they fall: at offsets unrelated to the windows, often running over two windows. Then
-measures in this one run:
-  (a) pyarrow reading the shard batch by batch (same batch size as the scan, one thread),
-  (b) the scan in a child process with ``--jobs 1`` (one core, one Arrow thread), reduce step included: all rules
-      (``--rules all``, the default scan) or only near-duplicate and exact-duplicate (``--rules dedup``),
-  (c) the ratio b / a (each the fastest of ``--repeat`` alternating runs: the machine may be shared),
+measures in this one run, ``--repeat`` times and alternating (the machine may be shared):
+  (a) pyarrow reading the shard batch by batch with one thread (the scan's batch size), in a fresh process, timed
+      around the read alone: the second, warm read of that process (the first is printed too; see bench_scan.py),
+  (b) the whole scan command with ``--jobs 1`` (one core, one Arrow thread), ``--eos-id 2``, a drop list and a JSON
+      report, from its start to its exit: all rules (``--rules all``, the default scan) or only near-duplicate and
+      exact-duplicate (``--rules dedup``),
+  (c) the ratio b / a of each run, their median and the highest,
   (d) the peak resident memory of the scanning process (VmHWM in /proc/self/status),
   (e) the planted near copies whose exact Jaccard similarity to their original (5-token shingles, Python sets) is
       at least 0.9, and how many of them the drop list names -- each at its first token (row, offset) -- with the
@@ -23,10 +25,9 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import subprocess
+import statistics
 import sys
 import tempfile
-import time
 
 import numpy as np
 import pyarrow as pa
@@ -36,7 +37,7 @@ VOCAB, EOS = 50_000, 2
 NEAR_SHARE = 200  # a near copy has one token in this many changed (at least one)
 ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from bench_scan import time_read  # noqa: E402  (the same batch-by-batch read as the scan benchmark)
+from bench_scan import byte_compile, child_read, warm_page_cache, whole_scan  # noqa: E402  (the same measures)
 
 
 def plant(tokens: int, duplicates: float, seed: int = 7):
@@ -90,28 +91,21 @@ def shingle_set(doc: np.ndarray, n: int = 5) -> set:
     return {tuple(doc[i:i + n].tolist()) for i in range(len(doc) - n + 1)} if len(doc) >= n else {tuple(doc)}
 
 
-def time_scan(path: str, rules: str, drop_list: str) -> tuple[float, int, dict]:
-    only = "only=('near-duplicate', 'exact-duplicate'), " if rules == "dedup" else ""
-    code = ("import time, json; from corpuscle import scan, Settings; from corpuscle.engine.registry import registry; "
-            "from corpuscle.report import droplist, write_atomic; registry(); t=time.perf_counter(); "
-            "c=time.process_time(); "
-            f"r=scan([{path!r}], Settings({only}vocab_size={VOCAB}, eos_id={EOS}, "
-            "rule={'near-duplicate': {'max_clusters': 10**6}, 'exact-duplicate': {'max_clusters': 10**6}}), jobs=1); "
-            "s=time.perf_counter()-t; c=time.process_time()-c; "
-            f"write_atomic({drop_list!r}, droplist.render(r)); "
-            "print(json.dumps([s, c, [int(l.split()[1]) for l in open('/proc/self/status') if l.startswith('VmHWM')][0], "
-            "r.metrics['nearDuplicates'], r.metrics['exactDuplicates']]))")
-    out = subprocess.run([sys.executable, "-c", code], check=True, capture_output=True, text=True, cwd=ROOT).stdout
-    seconds, cpu, peak, near, exact = json.loads(out.strip().splitlines()[-1])
-    return seconds, cpu, peak * 1024, {"near": near, "exact": exact}
-
-
-def cpu_read(path: str, batch_size: int) -> tuple[float, float]:
-    """(wall, CPU) seconds of the one-thread read (CPU time: what the process itself used, less sensitive to the
-    other processes of a shared machine than the wall clock)."""
-    started = time.process_time()
-    wall = time_read(path, batch_size, use_threads=False)
-    return wall, time.process_time() - started
+def time_scan(path: str, rules: str, folder: str) -> tuple[float, float, int, dict]:
+    """The whole scan command with ``--eos-id``, a drop list and a JSON report (for the figures): (wall, CPU,
+    peak resident bytes, the duplicate rules' metrics)."""
+    config = os.path.join(folder, "corpuscle.toml")
+    with open(config, "w") as fh:
+        fh.write("[rule.near-duplicate]\nmax_clusters = 1000000\n[rule.exact-duplicate]\nmax_clusters = 1000000\n")
+    report = os.path.join(folder, "report.json")
+    extra = ["--eos-id", str(EOS), "--config", config, "--drop-list", os.path.join(folder, "drop.jsonl"),
+             "--json", report]
+    if rules == "dedup":
+        extra += ["--only", "near-duplicate,exact-duplicate"]
+    wall, cpu, peak, _ = whole_scan(path, "all", tuple(extra))
+    with open(report) as fh:
+        metrics = json.load(fh)["metrics"]
+    return wall, cpu, peak, {"near": metrics["nearDuplicates"], "exact": metrics["exactDuplicates"]}
 
 
 def main() -> None:
@@ -134,17 +128,20 @@ def main() -> None:
     from corpuscle.io.sources import DEFAULT_BATCH_TOKENS
 
     batch_rows = max(1, DEFAULT_BATCH_TOKENS // args.seq_len)
-    time_read(path, batch_rows)  # warm the page cache
+    warm_page_cache(path)
+    byte_compile()
     drop_path = os.path.join(folder, "drop.jsonl")
-    reads, scans, read_cpu, scan_cpu = [], [], [], []
+    reads, scans, read_cpu, scan_cpu, firsts = [], [], [], [], []
     for _ in range(args.repeat):  # alternating, so that both see the same load of a shared machine
-        wall, cpu = cpu_read(path, batch_rows)  # one thread, as the scan with --jobs 1 decodes
+        first, _, wall, cpu = child_read(path, batch_rows)  # one thread, as the scan with --jobs 1 decodes
         reads.append(wall)
         read_cpu.append(cpu)
-        scan_s, cpu, peak, figures = time_scan(path, args.rules, drop_path)
+        firsts.append(first)
+        scan_s, cpu, peak, figures = time_scan(path, args.rules, folder)
         scans.append(scan_s)
         scan_cpu.append(cpu)
-    read_s, scan_s = min(reads), min(scans)
+    ratios = sorted(sc / rd for sc, rd in zip(scans, reads))
+    read_s, scan_s = statistics.median(reads), statistics.median(scans)
     with open(drop_path) as fh:
         dropped = {(e["row"], e["offset"]): e for e in map(json.loads, fh)}
     inside = [(s, c) for s, c in exact + near if starts[c] + lengths[c] <= tokens]
@@ -168,12 +165,14 @@ def main() -> None:
     print(f"shard: {rows:,} windows x {args.seq_len} = {tokens:,} tokens, {len(starts):,} documents, "
           f"{os.path.getsize(path) / 1e6:,.0f} MB; planted {len(exact):,} exact and {len(near):,} near copies")
     what = "all rules (default scan)" if args.rules == "all" else "near-duplicate,exact-duplicate"
-    print(f"    fastest of {args.repeat} alternating runs each (reads {', '.join(f'{t:.2f}' for t in reads)} s; "
-          f"scans {', '.join(f'{t:.2f}' for t in scans)} s)")
-    print(f"(a) pyarrow read, one thread             : {read_s:8.2f} s")
-    print(f"(b) scan --jobs 1, {what:<22}: {scan_s:8.2f} s  ({tokens / scan_s / 1e6:,.1f} M tokens/s)")
-    print(f"(c) ratio scan / read                    : {scan_s / read_s:8.2f} x  (CPU time: "
-          f"{min(scan_cpu):.2f} s / {min(read_cpu):.2f} s = {min(scan_cpu) / min(read_cpu):.2f} x)")
+    print(f"    {args.repeat} alternating runs (warm reads {', '.join(f'{t:.2f}' for t in reads)} s, as the first read "
+          f"of a process {', '.join(f'{t:.2f}' for t in firsts)} s; scan commands "
+          f"{', '.join(f'{t:.2f}' for t in scans)} s)")
+    print(f"(a) pyarrow read, one thread             : {read_s:8.2f} s  (median, warm)")
+    print(f"(b) scan --jobs 1, {what:<22}: {scan_s:8.2f} s  (median, the whole command; "
+          f"{tokens / scan_s / 1e6:,.1f} M tokens/s)")
+    print(f"(c) ratio scan / read                    : {statistics.median(ratios):8.2f} x  (median of the runs; highest "
+          f"{ratios[-1]:.2f}x; CPU time: median {statistics.median(c / r for c, r in zip(scan_cpu, read_cpu)):.2f}x)")
     print(f"(d) peak memory of the scan              : {peak / 2**20:8.0f} MiB")
     print(f"(e) near copies with exact Jaccard >= 0.9: {len(strong):,}, in the drop list at their first token with "
           f"the original kept: {found(strong):,}; exact copies {len(exact_in):,}, found {found(exact_in):,}")
@@ -183,7 +182,8 @@ def main() -> None:
           f"{near_figures['rowsPerBand']}, {near_figures['similarity']}")
     if not args.keep:
         os.remove(path)
-        os.remove(drop_path)
+        for name in ("drop.jsonl", "report.json", "corpuscle.toml"):
+            os.remove(os.path.join(folder, name))
         os.rmdir(folder)
 
 
