@@ -235,12 +235,12 @@ def multilinear_shingle_hashes(words, offsets, n: int = DEFAULT_N) -> tuple[np.n
         k_{n + L} + sum_j k_j * s_j   (mod 2**32)
 
     with fixed pseudo-random 32-bit keys ``k`` (the top halves of ``mix64`` of fixed inputs): multilinear hashing
-    modulo 2**32, all in 32-bit arithmetic (numpy multiplies 32-bit integers several times faster than 64-bit ones,
-    and the words need no widening). For keys drawn at random, two different shingles collide with probability
+    modulo 2**32, all in 32-bit arithmetic (numpy multiplies 32-bit integers about twice as fast as 64-bit ones, and
+    the words need no widening). For keys drawn at random, two different shingles collide with probability at most
     ``2**(z - 32)``, where ``z`` is the least number of trailing zero bits among their nonzero differences per
     position: 2**-32 when some position differs by an odd amount, about 2**-28 averaged over random ids (from
-    memory: the multilinear family modulo a power of two). Its low bits follow the ids' low bits linearly; what
-    uses the hashes only compares them, takes those under a threshold (the top bits) or mixes them first
+    memory: the multilinear family modulo a power of two). Its low bits follow the ids' low bits linearly; what uses
+    the hashes only compares them, takes those under a threshold (the top bits) or mixes them first
     (:func:`signatures`). Not the hash family of :func:`shingle_hash` (which mixes every token first and is what
     datasketch is fed in the tests): cheaper, and used where no signature is compared with datasketch's.
     """

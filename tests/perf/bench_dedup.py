@@ -171,8 +171,9 @@ def main() -> None:
     print(f"(a) pyarrow read, one thread             : {read_s:8.2f} s  (median, warm)")
     print(f"(b) scan --jobs 1, {what:<22}: {scan_s:8.2f} s  (median, the whole command; "
           f"{tokens / scan_s / 1e6:,.1f} M tokens/s)")
-    print(f"(c) ratio scan / read                    : {statistics.median(ratios):8.2f} x  (median of the runs; highest "
-          f"{ratios[-1]:.2f}x; CPU time: median {statistics.median(c / r for c, r in zip(scan_cpu, read_cpu)):.2f}x)")
+    cpu = statistics.median(c / r for c, r in zip(scan_cpu, read_cpu))
+    print(f"(c) ratio scan / read                    : {statistics.median(ratios):8.2f} x  (median of the runs; "
+          f"highest {ratios[-1]:.2f}x; CPU time: median {cpu:.2f}x)")
     print(f"(d) peak memory of the scan              : {peak / 2**20:8.0f} MiB")
     print(f"(e) near copies with exact Jaccard >= 0.9: {len(strong):,}, in the drop list at their first token with "
           f"the original kept: {found(strong):,}; exact copies {len(exact_in):,}, found {found(exact_in):,}")
