@@ -1,3 +1,3 @@
-from corpuscle.cli import main
+from corpuscle.cli import program
 
-main()
+program()

@@ -110,6 +110,19 @@ def main():
     """Lint language-model pretraining shards (JSON Lines, Parquet, Arrow IPC) before they cost GPU time."""
 
 
+#: True when corpuscle runs as a program (the console script, ``python -m corpuscle``), not called in-process.
+_AS_PROGRAM = False
+
+
+def program() -> None:
+    """The ``corpuscle`` command: :func:`main` as a program. Once a scan's reports are written, a late Ctrl-C ends
+    the process the default way (status 130 as the shell reports it) instead of raising KeyboardInterrupt into the
+    summary or into the interpreter's exit, where it would print "Aborted!" or a traceback."""
+    global _AS_PROGRAM
+    _AS_PROGRAM = True
+    main()
+
+
 @main.command()
 @click.argument("paths", nargs=-1, required=True)
 @click.option("--config", "config_path", type=click.Path(dir_okay=False), help="Settings file (default: corpuscle.toml or [tool.corpuscle] in pyproject.toml).")
@@ -227,6 +240,8 @@ def scan(paths, config_path, sarif_path, json_path, html_path, drop_list_path, j
         click.echo(f"interrupted ({signal.Signals(stop.signum).name}): no report written; older reports were left "
                    "as they were", err=True)
         sys.exit(128 + stop.signum)
+    if _AS_PROGRAM:  # the reports are written: a Ctrl-C from here on just ends the process (see program)
+        signal.signal(signal.SIGINT, signal.SIG_DFL)
     if drop_list_path and droplist.NAME not in report.outputs:
         click.echo(f"note: the drop list {drop_list_path} is empty: {_why_no_output(droplist.NAME, rules)}", err=True)
     click.echo(printable(text.render(report, stats=stats, long=summary_format == "long")), nl=False)

@@ -3,6 +3,7 @@ the pool's processes and the spill folders are gone, an older report is left as 
 processes end by themselves and the next run removes the spill folder left behind."""
 from __future__ import annotations
 
+import json
 import os
 import signal
 import subprocess
@@ -14,6 +15,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
+from tests.shards import validate_sarif
+
 pytestmark = pytest.mark.skipif(not os.path.isdir("/proc") or os.name != "posix",
                                 reason="needs POSIX signals and /proc to find the scan's processes")
 
@@ -21,8 +24,9 @@ pytestmark = pytest.mark.skipif(not os.path.isdir("/proc") or os.name != "posix"
 CORPUSCLE = [os.path.join(os.path.dirname(sys.executable), "corpuscle")]
 
 
-def corpus(folder, shards=16, rows=6000, width=512):
-    """Tokenized shards large enough that a scan with the duplicate rules takes a few seconds."""
+def corpus(folder, shards=16, rows=12000, width=512):
+    """Tokenized shards large enough that a scan with the duplicate rules takes a few seconds (with 6,000 rows a
+    shard it took about 1.3 s, short enough that on a busy machine the signal could arrive after its end)."""
     rng = np.random.default_rng(7)
     folder.mkdir()
     for i in range(shards):
@@ -128,3 +132,26 @@ def test_after_sigkill_the_pool_ends_itself_and_the_next_run_removes_the_spill_f
     again = subprocess.run([*CORPUSCLE, "scan", str(small), "--jobs", "1", "--quiet"], env=env, capture_output=True)
     assert again.returncode in (0, 1), again.stderr
     assert spills(str(tmp)) == []
+
+
+def test_a_ctrl_c_after_the_reports_are_written_ends_the_process_without_a_traceback(tmp_path):
+    # The summary is being printed when SIGINT arrives (click.echo wrapped to send it): the report is complete, and
+    # the process ends the default way for SIGINT (killed by the signal: the shell shows 130), printing neither a
+    # traceback nor click's "Aborted!".
+    shard = tmp_path / "a.jsonl"
+    shard.write_text('{"input_ids": [5, 6, 7, 2]}\n{"input_ids": [5, 6, 7]}\n')
+    report = tmp_path / "r.sarif"
+    code = ("import os, signal, sys, click\n"
+            "import corpuscle.cli as cli\n"
+            "echo = click.echo\n"
+            "def interrupting(message=None, *args, **kwargs):\n"
+            "    if message and not kwargs.get('err'):\n"
+            "        os.kill(os.getpid(), signal.SIGINT)\n"
+            "    return echo(message, *args, **kwargs)\n"
+            "cli.click.echo = interrupting\n"
+            f"sys.argv = ['corpuscle', 'scan', {str(shard)!r}, '--jobs', '1', '--sarif', {str(report)!r}]\n"
+            "cli.program()\n")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True)
+    assert done.returncode == -signal.SIGINT, done.stderr
+    assert b"Traceback" not in done.stderr and b"Aborted" not in done.stderr
+    assert validate_sarif(json.loads(report.read_text()))["runs"][0]["invocations"][0]["executionSuccessful"]
