@@ -98,13 +98,18 @@ def test_a_signal_stops_the_pool_removes_spill_folders_and_leaves_the_older_repo
     tmp = tmp_path / "tmp"
     tmp.mkdir()
     report = tmp_path / "old.sarif"
-    report.write_text('{"an": "older report"}')
-    scan = start(data, tmp, report)
-    # Signal once the scan is under way: the pool has started and the near-duplicate rule has spilled.
-    assert wait_until(lambda: spills(str(tmp)) and len(descendants(scan.pid)) >= 2, 60), scan.stderr.read()
-    family = descendants(scan.pid)
-    scan.send_signal(signum)
-    _, err = scan.communicate(timeout=60)
+    for attempt in range(3):
+        report.write_text('{"an": "older report"}')
+        scan = start(data, tmp, report)
+        # Signal once the scan is under way: the pool has started and the near-duplicate rule has spilled.
+        assert wait_until(lambda: spills(str(tmp)) and len(descendants(scan.pid)) >= 2, 60), scan.stderr.read()
+        family = descendants(scan.pid)
+        scan.send_signal(signum)
+        _, err = scan.communicate(timeout=60)
+        # On a busy machine this process may see the scan under way only as it ends (it takes about 2 s), and the
+        # signal then comes too late: a scan that ended normally is run again (a signal ignored every time fails).
+        if scan.returncode != 0:
+            break
     assert scan.returncode == status, err
     assert b"Traceback" not in err and b"interrupted" in err
     assert wait_until(lambda: not alive(family), 10), alive(family)
