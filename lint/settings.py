@@ -415,6 +415,18 @@ def check_limits(settings: "Settings") -> None:
                                 f"(default {LIMITS[key]:,})")
 
 
+def glob_set_end(text: str, start: int) -> int:
+    """The index of the ``]`` that closes the ``[...]`` set opening at ``text[start]``, or -1 when it never closes
+    (then the ``[`` is a literal bracket); a ``]`` right after ``[`` or ``[!`` belongs to the set, as in fnmatch
+    and glob."""
+    j = start + 1
+    if j < len(text) and text[j] == "!":
+        j += 1
+    if j < len(text) and text[j] == "]":
+        j += 1
+    return text.find("]", j)
+
+
 def check_glob(pattern) -> None:
     """A ``[paths."GLOB"]`` pattern must be a non-empty string whose ``[`` sets are closed (fnmatch would read an
     unclosed ``[`` as a literal bracket and silently match nothing)."""
@@ -423,12 +435,7 @@ def check_glob(pattern) -> None:
     i = 0
     while i < len(pattern):
         if pattern[i] == "[":
-            j = i + 1
-            if j < len(pattern) and pattern[j] == "!":
-                j += 1
-            if j < len(pattern) and pattern[j] == "]":
-                j += 1
-            close = pattern.find("]", j)
+            close = glob_set_end(pattern, i)
             if close < 0:
                 raise SettingsError(f"[paths.{pattern!r}]: the '[' at character {i + 1} is never closed; write "
                                     "[[] for a literal bracket")

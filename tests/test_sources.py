@@ -6,6 +6,7 @@ the test from the lines it writes.
 """
 from __future__ import annotations
 
+import glob
 import gzip
 import json
 import os
@@ -122,6 +123,16 @@ def test_a_file_name_with_glob_characters_is_taken_as_given(tmp_path):
     write("part1.jsonl", {"n": [2]})
     assert uris(discover(["part[1].jsonl"])) == ["part[1].jsonl"]
     assert uris(discover(["part[0-9].jsonl"])) == ["part1.jsonl"]  # not an existing name: a glob (fnmatch rules)
+
+
+def test_a_recursive_glob_with_an_unclosed_bracket_set_matches_as_stdlib_glob_does(tmp_path):
+    # "[]" and "[!]" open sets that never close: literal brackets. Reference: the stdlib's glob.glob.
+    write("a/x[].jsonl", {"n": [1]})
+    write("a/y[!].jsonl", {"n": [2]})
+    write("a/z1.jsonl", {"n": [3]})
+    for pattern in ("**/x[].jsonl", "**/y[!].jsonl", "**/z[0-9].jsonl"):
+        assert uris(discover([pattern])) == sorted(glob.glob(pattern, recursive=True)), pattern
+    assert uris(discover(["**/x[].jsonl"])) == ["a/x[].jsonl"]
 
 
 def test_no_shard_found_names_the_expected_suffixes(tree):

@@ -26,6 +26,7 @@ import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 import pyarrow.types as pat
 from corpuscle.io.batch import Batch, Shard
+from corpuscle.settings import glob_set_end
 
 #: Lines per sampling unit of a JSON Lines shard (see :mod:`corpuscle.engine.sampling`).
 LINE_BLOCK = 1024
@@ -220,13 +221,8 @@ def _glob_regex(pattern: str) -> re.Pattern:
                 piece.append("[^/]*")
             elif ch == "?":
                 piece.append("[^/]")
-            elif ch == "[" and "]" in part[i + 2:] + part[i + 1:i + 2]:
-                j = i + 1
-                if j < len(part) and part[j] == "!":
-                    j += 1
-                if j < len(part) and part[j] == "]":
-                    j += 1
-                j = part.index("]", j)
+            elif ch == "[" and glob_set_end(part, i) >= 0:
+                j = glob_set_end(part, i)
                 body = part[i + 1:j]
                 body = "^" + body[1:] if body.startswith("!") else body
                 piece.append("[" + body.replace("\\", "\\\\") + "]")
