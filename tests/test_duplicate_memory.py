@@ -30,7 +30,7 @@ from datasketch import MinHash
 from tests.test_duplicates import (
     clusters,
     exact_clusters,
-    jaccard,
+    far_above_threshold,
     run_dedup,
     shingles_of,
     text_corpus,
@@ -127,7 +127,7 @@ def test_the_steps_that_bound_memory_do_not_change_a_token_report(monkeypatch):
     def members(cluster):
         return frozenset(k for k in window if first[tuple(window[k])] in cluster)
 
-    sure = {members(c) for c in reference if min(jaccard(window[x], window[y]) for x in c for y in c if x < y) >= 0.9}
+    sure = {members(c) for c in reference if far_above_threshold(c, window)}
     found = {frozenset(c) for c in clusters(small, "near-duplicate")}
     assert len(sure) == len(reference) - 1 and sure <= found <= {members(c) for c in reference}
     groups: dict = {}

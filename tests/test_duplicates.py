@@ -68,6 +68,12 @@ def jaccard(a: list, b: list) -> float:
     return len(sa & sb) / len(sa | sb)
 
 
+def far_above_threshold(cluster, window: dict) -> bool:
+    """Whether every pair of a reference cluster has exact Jaccard >= 0.9: then the LSH search misses none of them
+    but with a small chance (the planted pairs near 0.8 are found or not)."""
+    return min(jaccard(window[x], window[y]) for x in cluster for y in cluster if x < y) >= 0.9
+
+
 def datasketch_clusters(windows: dict, threshold: float = 0.8) -> list[frozenset]:
     """Near-duplicate clusters by datasketch: MinHash (affine32, our shingle hash), MinHashLSH candidates,
     MinHash.jaccard >= threshold, connected components by graph search; exact copies folded into their first copy
@@ -91,9 +97,14 @@ def datasketch_clusters(windows: dict, threshold: float = 0.8) -> list[frozenset
                 edges[a].add(b)
                 edges[b].add(a)
                 similarity[frozenset((a, b))] = sketch.jaccard(sketches[other])
+    return components(edges, [key for key in edges if first_copy[key] == key]), similarity
+
+
+def components(edges: dict, starts: list) -> list[frozenset]:
+    """The connected components of at least two nodes reached from ``starts`` (graph search over ``edges``)."""
     found, done = [], set()
-    for start in edges:
-        if start in done or first_copy[start] != start:
+    for start in starts:
+        if start in done:
             continue
         component, todo = set(), [start]
         while todo:
@@ -104,7 +115,7 @@ def datasketch_clusters(windows: dict, threshold: float = 0.8) -> list[frozenset
         done |= component
         if len(component) >= 2:
             found.append(frozenset(component))
-    return found, similarity
+    return found
 
 
 def members(finding) -> list[tuple[str, int]]:
@@ -114,17 +125,12 @@ def members(finding) -> list[tuple[str, int]]:
 
 def clusters_of(finding) -> list[list[tuple[str, int]]]:
     """The clusters a finding lists in its evidence, each as (uri, row) of its members in scan order."""
-    return [sorted([(m["uri"], m["row"]) for m in [c["kept"], *c["others"]]], key=_scan_order)
-            for c in finding.evidence["clusterList"]]
+    return [sorted((m["uri"], m["row"]) for m in [c["kept"], *c["others"]]) for c in finding.evidence["clusterList"]]
 
 
 def clusters(report, rule_id) -> list[list[tuple[str, int]]]:
     """All clusters of a rule in a report (over its findings)."""
     return [c for f in findings(report, rule_id) for c in clusters_of(f)]
-
-
-def _scan_order(key):
-    return key
 
 
 def exact_clusters(windows: dict, threshold: float = 0.8) -> list[frozenset]:
@@ -143,20 +149,7 @@ def exact_clusters(windows: dict, threshold: float = 0.8) -> list[frozenset]:
             if len(sets[a] & sets[b]) / len(sets[a] | sets[b]) >= threshold:
                 edges[a].add(b)
                 edges[b].add(a)
-    found, done = [], set()
-    for start in heads:
-        if start in done:
-            continue
-        component, todo = set(), [start]
-        while todo:
-            node = todo.pop()
-            if node not in component:
-                component.add(node)
-                todo += edges[node]
-        done |= component
-        if len(component) >= 2:
-            found.append(frozenset(component))
-    return found
+    return components(edges, heads)
 
 
 def miss_probability(s: float, b: int, r: int) -> float:
@@ -497,8 +490,7 @@ def test_the_drop_list_leaves_no_duplicate_on_a_rescan(tmp_path):
     for cluster in reference:
         head = min(cluster, key=lambda k: (k[0], k[1]))
         members = {key for key, w in window.items() if first[tuple(w)] in cluster and key != head}
-        sure = min(jaccard(window[x], window[y]) for x in cluster for y in cluster if x < y) >= 0.9
-        if sure:
+        if far_above_threshold(cluster, window):
             expected |= members
         else:
             optional.append(members)
