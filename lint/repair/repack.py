@@ -458,6 +458,20 @@ def best_fit_assign(sizes: np.ndarray, seq_len: int, opens: np.ndarray | None = 
             del occupied[bisect.bisect_left(occupied, r)]
         return taken
 
+    def place(ids: list[int], r: int, s: int, c: int) -> None:
+        """``c`` pieces of size ``s`` into the windows ``ids`` of room ``r``, ``r // s`` in each in turn (the last
+        window may take fewer); each window then goes to its room left."""
+        nonlocal pos
+        k = r // s
+        m, j = divmod(c, k)
+        window[pos:pos + m * k] = np.repeat(ids[:m], k)
+        pos += m * k
+        add(r % s, ids[:m])
+        if j:
+            window[pos:pos + j] = ids[m]
+            pos += j
+            add(r - j * s, [ids[m]])
+
     if opens.any():  # each opener in a window of its own, before anything else is placed
         first = sizes[order[:int(opens.sum())]]
         opened = first.size
@@ -477,35 +491,13 @@ def best_fit_assign(sizes: np.ndarray, seq_len: int, opens: np.ndarray | None = 
                 break
             r = occupied[i]
             w, k = len(rooms[r]), r // s
-            if c >= w * k:
-                ids = take(r, w)
-                window[pos:pos + w * k] = np.repeat(ids, k)
-                pos += w * k
-                c -= w * k
-                add(r % s, ids)
-            else:
-                m, j = divmod(c, k)
-                ids = take(r, m + (1 if j else 0))
-                window[pos:pos + m * k] = np.repeat(ids[:m], k)
-                pos += m * k
-                add(r % s, ids[:m])
-                if j:
-                    window[pos:pos + j] = ids[m]
-                    pos += j
-                    add(r - j * s, [ids[m]])
-                c = 0
-        if c:
-            k = seq_len // s
-            m, j = divmod(c, k)
-            ids = list(range(opened, opened + m + (1 if j else 0)))
-            opened += len(ids)
-            window[pos:pos + m * k] = np.repeat(ids[:m], k)
-            pos += m * k
-            add(seq_len % s, ids[:m])
-            if j:
-                window[pos:pos + j] = ids[m]
-                pos += j
-                add(seq_len - j * s, [ids[m]])
+            placed = min(c, w * k)  # every window of room r takes k pieces, or the pieces run out
+            place(take(r, -(-placed // k)), r, s, placed)
+            c -= placed
+        if c:  # no open window fits: new ones of room seq_len
+            count = -(-c // (seq_len // s))
+            place(list(range(opened, opened + count)), seq_len, s, c)
+            opened += count
     return order, window, opened
 
 
