@@ -748,9 +748,7 @@ class NearDuplicate(_DuplicateRule):
         del slim.keys, slim.digests
         source = ShardBands(state.keys, state.digests, _first_copies(state.content), parts)
         count = len(state.rows)
-        shingles = getattr(state, "shingles_paths", None)
-        return slim, self._spill([BandPiece(count, state.signatures_path, source=source, part=p, shingles=shingles)
-                                  for p in range(parts)])
+        return slim, self._spill([BandPiece(count, source=source, part=p) for p in range(parts)])
 
     def _spill(self, pieces: list) -> list:
         """Bound the band keys held for the reduce (``memory_limit_mb``).
@@ -780,7 +778,7 @@ class NearDuplicate(_DuplicateRule):
                 with os.fdopen(fd, "wb") as fh:
                     np.save(fh, values)
                 mapped.append(np.load(path, mmap_mode="r"))
-            out.append(BandPiece(piece.windows, piece.signatures, entries=tuple(mapped), shingles=piece.shingles))
+            out.append(BandPiece(piece.windows, entries=tuple(mapped)))
         return out
 
     def reduce_partition(self, pieces):

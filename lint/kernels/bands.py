@@ -32,8 +32,7 @@ _PARTITION_WINDOWS = 1 << 14
 class BandPiece:
     """One shard's band keys that fall into one partition: an entry per (window, band) -- the window's index in the
     shard (``window``, int64), the band key (``keys``, uint64) and the window's signature digest (``digests``,
-    uint64), in window then band order; ``windows`` is the shard's count of windows (for global ids) and
-    ``signatures`` the path of its signature file.
+    uint64), in window then band order; ``windows`` is the shard's count of windows (for global ids).
 
     :meth:`NearDuplicate.partition` makes a shard's pieces as views of its band keys (a :class:`ShardBands` and a
     partition number): a piece picks its entries when they are asked for (:meth:`entries`, a chunk of windows at a
@@ -41,13 +40,11 @@ class BandPiece:
     shard's state holds. A piece that is pickled -- sent to the process that reduces its partition -- carries its
     own entries only. A piece made with ``entries`` holds them (e.g. memory maps of spilled files)."""
 
-    def __init__(self, windows: int, signatures: str | None, entries: tuple | None = None,
-                 source: "ShardBands | None" = None, part: int = 0, shingles: tuple | None = None):
+    def __init__(self, windows: int, entries: tuple | None = None, source: "ShardBands | None" = None,
+                 part: int = 0):
         if (entries is None) == (source is None):
             raise ValueError("a BandPiece takes either its entries or the ShardBands it picks them from")
         self.windows = windows
-        self.signatures = signatures
-        self.shingles = shingles  # (shingle file, shingle-ends file) of the shard, for exact verification
         self._entries = entries
         self._source = source
         self._part = part
@@ -73,8 +70,7 @@ class BandPiece:
     digests = property(lambda self: self.entries()[2])
 
     def __getstate__(self):
-        return {"windows": self.windows, "signatures": self.signatures, "_entries": self.entries(),
-                "_source": None, "_part": 0, "shingles": self.shingles}
+        return {"windows": self.windows, "_entries": self.entries(), "_source": None, "_part": 0}
 
     def __setstate__(self, state):
         self.__dict__.update(state)
