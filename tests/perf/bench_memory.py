@@ -3,12 +3,12 @@
     python tests/perf/bench_memory.py [--sizes-mb 1024,4096] [--seq-len 2048] [--only RULES] [--keep DIR]
 
 For each size, writes one tokenized Parquet shard of packed windows (as tests/perf/bench_scan.py does) of about that
-many megabytes, scans it with ``python -m lint scan SHARD --jobs 1`` (all rules unless ``--only`` is given) and
-reads the peak resident memory of that child process (``VmHWM`` from its ``/proc/self/status``, read as it exits:
-unlike ``ru_maxrss`` it does not carry over the peak of the process that started it). The reader reads a batch
-of about ``DEFAULT_BATCH_TOKENS`` tokens at a time, so both peaks should be about equal; what grows with the shard
-is only the per-window state of the duplicate rules (a few dozen bytes per window in memory, the MinHash
-signatures and band keys on disk); the last line gives the growth between the smallest and the largest shard in
+many megabytes, scans it with the whole command ``python -m corpuscle scan --jobs 1 --quiet SHARD`` (all rules
+unless ``--only`` is given; :func:`bench_scan.whole_scan`) and reads the peak resident memory of that child
+process (``VmHWM`` from its ``/proc/self/status``, read as it exits: unlike ``ru_maxrss`` it does not carry over
+the peak of the process that started it). The reader reads a batch of about ``DEFAULT_BATCH_TOKENS`` tokens at a
+time, so both peaks should be about equal; what grows with the shard is the per-unit state of the duplicate rules
+(29 bytes per document kept, more while the corpus-wide steps run; shingle hashes and band keys on disk); the last line gives the growth between the smallest and the largest shard in
 bytes per window. The shards are deleted afterwards unless ``--keep`` is given.
 """
 from __future__ import annotations
@@ -22,33 +22,20 @@ import tempfile
 import pyarrow.parquet as pq
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from bench_scan import VOCAB, run_cli, write_shard  # noqa: E402
+from bench_scan import whole_scan, write_shard  # noqa: E402
 
 #: Bytes per token of a shard written by bench_scan.write_shard (three int32 columns, snappy): measured once on a
 #: 10M-token shard, used only to aim at the size asked for.
 BYTES_PER_TOKEN = 5.4
 
 
-#: Runs ``python -m lint`` with the arguments after ``-c``; at exit, prints the process's VmHWM (KiB) on stderr.
-CHILD = ("import atexit, runpy, sys\n"
-         "def peak():\n"
-         "    hwm = [l.split()[1] for l in open('/proc/self/status') if l.startswith('VmHWM')][0]\n"
-         "    sys.stderr.write(f'VmHWM {hwm}\\n')\n"
-         "atexit.register(peak)\n"
-         "sys.argv[0] = 'lint'\n"
-         "runpy.run_module('lint', run_name='__main__', alter_sys=True)\n")
-
-
 def peak_of_scan(path: str, only: str | None) -> tuple[int, float]:
     """Peak resident memory in bytes of the process scanning ``path``, and its wall-clock seconds."""
-    command = [sys.executable, "-c", CHILD, "scan", path, "--jobs", "1", "--quiet", "--vocab-size", str(VOCAB)]
-    if only:
-        command += ["--only", only]
-    done, seconds = run_cli(command)
-    peaks = [line.split()[1] for line in done.stderr.splitlines() if line.startswith("VmHWM ")]
-    if not peaks:
-        raise SystemExit(f"the scan reported no peak memory: {done.stderr}")
-    return int(peaks[-1]) * 1024, seconds
+    extra = ("--quiet",) + (("--only", only) if only else ())
+    seconds, _, peak, _ = whole_scan(path, "all", extra)
+    if not peak:
+        raise SystemExit("the scan reported no peak memory")
+    return peak, seconds
 
 
 def main() -> None:

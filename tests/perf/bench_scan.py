@@ -82,14 +82,6 @@ def run_cli(command: list[str]) -> tuple[subprocess.CompletedProcess, float]:
     return done, seconds
 
 
-def time_read(path: str, batch_size: int, use_threads: bool = True) -> float:
-    started = time.perf_counter()
-    pf = pq.ParquetFile(path)
-    for _ in pf.iter_batches(batch_size=batch_size, use_threads=use_threads):
-        pass
-    return time.perf_counter() - started
-
-
 def child_read(path: str, batch_size: int) -> tuple[float, float, float, float]:
     """(wall, CPU) seconds of a one-thread read of the shard in a fresh process, timed around the read alone: the
     first read of the process (what a one-off read job costs) and a second one right after it (warm: pyarrow's
